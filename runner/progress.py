@@ -1,0 +1,64 @@
+"""Progress while a grid runs: one live line on a terminal, one line per job elsewhere."""
+from __future__ import annotations
+
+import statistics
+import sys
+import time
+
+__all__ = ["Progress"]
+
+
+def _clock(seconds: float) -> str:
+    seconds = int(round(seconds))
+    h, rest = divmod(seconds, 3600)
+    m, s = divmod(rest, 60)
+    return f"{h}:{m:02d}:{s:02d}" if h else f"{m}:{s:02d}"
+
+
+class Progress:
+    def __init__(self, total: int, metric: str, goal: str, stream=None, live: bool | None = None,
+                 quiet: bool = False):
+        self.total = total
+        self.metric = metric
+        self.goal = goal
+        self.stream = stream or sys.stderr
+        self.live = self.stream.isatty() if live is None else live
+        self.quiet = quiet
+        self.start = time.monotonic()
+        self.counts = {"done": 0, "diverged": 0, "failed": 0, "timeout": 0}
+        self.values: dict[str, list[float]] = {}
+        self.finished = 0
+
+    def update(self, label: str, seed: int, status: str, value: float | None, seconds: float) -> None:
+        self.finished += 1
+        self.counts[status] = self.counts.get(status, 0) + 1
+        if value is not None and status == "done":
+            self.values.setdefault(label, []).append(value)
+        if self.quiet:
+            return
+        elapsed = time.monotonic() - self.start
+        left = elapsed / self.finished * (self.total - self.finished)
+        if self.live:
+            best = self._best()
+            line = (f"[{self.finished}/{self.total}] failed {self.counts['failed']}, diverged "
+                    f"{self.counts['diverged']} | {_clock(elapsed)} elapsed, ~{_clock(left)} left"
+                    + (f" | best {best[0]}: {best[1]:.4f}" if best else ""))
+            self.stream.write("\r\033[K" + line)
+        else:
+            shown = f"{self.metric}={value:.4f}" if value is not None else ""
+            self.stream.write(f"[{self.finished}/{self.total}] {status:<8} {label} seed {seed} "
+                              f"{shown} ({seconds:.1f}s; ~{_clock(left)} left)\n")
+        self.stream.flush()
+
+    def close(self) -> None:
+        if self.live and not self.quiet and self.finished:
+            self.stream.write("\n")
+            self.stream.flush()
+
+    def _best(self):
+        if not self.values:
+            return None
+        means = {k: statistics.fmean(v) for k, v in self.values.items()}
+        pick = max if self.goal == "max" else min
+        label = pick(means, key=means.get)
+        return label, means[label]
