@@ -132,9 +132,9 @@ def _csv(raw: bytes, label: str, target: str | None):
     if target not in header:
         from .params import suggest
         near = suggest(target, header)
-        raise DataError("target column not in the CSV header" + (f'; did you mean "{near}"?' if near else ""),
-                        where=label, line=numbered[0][0], key="data.target", value=target,
-                        allowed=", ".join(f'"{h}"' for h in header))
+        raise DataError("target column not in the CSV header", where=label, line=numbered[0][0],
+                        key="data.target", value=target, allowed=", ".join(f'"{h}"' for h in header),
+                        hint=f'Did you mean "{near}"?' if near else None)
     t = header.index(target)
     names = tuple(h for i, h in enumerate(header) if i != t)
     if not names:
@@ -150,6 +150,10 @@ def _csv(raw: bytes, label: str, target: str | None):
         for i, cell in enumerate(row):
             if i == t:
                 continue
+            if not cell.strip():
+                raise DataError(f'column "{header[i]}" has a missing value', where=label, line=line,
+                                allowed="numbers (missing values are not accepted)",
+                                hint="Fill or drop rows with missing values")
             try:
                 X[r, c] = float(cell)
             except ValueError:
@@ -157,7 +161,7 @@ def _csv(raw: bytes, label: str, target: str | None):
                                 value=cell.strip(), allowed="numbers (missing values are not accepted)",
                                 hint="Encode categories as numbers or drop the column") from None
             if not np.isfinite(X[r, c]):
-                raise DataError(f'column "{header[i]}" has a missing or infinite value', where=label,
+                raise DataError(f'column "{header[i]}" has an infinite or NaN value', where=label,
                                 line=line, value=cell.strip())
             c += 1
     if any(v == "" for v in y_raw):

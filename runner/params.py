@@ -20,10 +20,11 @@ __all__ = ["Constraint", "Real", "Integer", "Choice", "Boolean", "Text", "IntLis
 class Invalid(ValueError):
     """A value broke a constraint; ``problem`` says how, ``allowed`` says what would do."""
 
-    def __init__(self, problem: str, allowed: str):
+    def __init__(self, problem: str, allowed: str, hint: str | None = None):
         super().__init__(problem)
         self.problem = problem
         self.allowed = allowed
+        self.hint = hint
 
 
 class Constraint:
@@ -98,8 +99,7 @@ class Choice(Constraint):
     def check(self, value: Any) -> str:
         if not isinstance(value, str) or value not in self.options:
             near = suggest(value, self.options) if isinstance(value, str) else None
-            problem = "unknown choice" + (f'; did you mean "{near}"?' if near else "")
-            raise Invalid(problem, self.allowed())
+            raise Invalid("unknown choice", self.allowed(), f'Did you mean "{near}"?' if near else None)
         return value
 
     def allowed(self) -> str:
@@ -154,12 +154,15 @@ class Either(Constraint):
     options: tuple[Constraint, ...]
 
     def check(self, value: Any) -> Any:
+        problems = []
         for option in self.options:
             try:
                 return option.check(value)
-            except Invalid:
-                continue
-        raise Invalid("not an accepted value", self.allowed())
+            except Invalid as bad:
+                problems.append(bad)
+        # Report the option of the value's own kind: a string against the choices, else the first.
+        pick = problems[-1] if isinstance(value, str) else problems[0]
+        raise Invalid(pick.problem, self.allowed(), pick.hint)
 
     def allowed(self) -> str:
         return " or ".join(o.allowed() for o in self.options)
@@ -207,5 +210,6 @@ def validate_table(raw: Any, table: Mapping[str, Param], prefix: str) -> dict[st
         try:
             out[key] = param.constraint.check(value)
         except Invalid as bad:
-            raise RecipeError(bad.problem, key=path, value=value, allowed=bad.allowed) from None
+            raise RecipeError(bad.problem, key=path, value=value, allowed=bad.allowed,
+                              hint=bad.hint) from None
     return out

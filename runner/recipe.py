@@ -179,8 +179,8 @@ def _rank_by(value: Any) -> str:
                           value=value, allowed=allowed)
     if metric not in METRICS:
         near = suggest(metric, METRICS)
-        raise RecipeError("unknown metric" + (f'; did you mean "val.{near}"?' if near else ""),
-                          key="rank_by", value=value, allowed=allowed)
+        raise RecipeError("unknown metric", key="rank_by", value=value, allowed=allowed,
+                          hint=f'Did you mean "val.{near}"?' if near else None)
     return value
 
 
@@ -199,7 +199,7 @@ def _check_level(param: Param, value: Any, key: str) -> Any:
     try:
         return param.constraint.check(value)
     except Invalid as bad:
-        raise RecipeError(bad.problem, key=key, value=value, allowed=bad.allowed) from None
+        raise RecipeError(bad.problem, key=key, value=value, allowed=bad.allowed, hint=bad.hint) from None
 
 
 def _factors(raw: Any, sections: dict) -> tuple[Factor, ...]:
@@ -319,7 +319,7 @@ def _line_of(text: str, key: str | None) -> int | None:
     if len(parts) == 1:
         for n, line in enumerate(lines, 1):
             if re.match(rf'\s*"?{re.escape(parts[0])}"?\s*=', line) or \
-               re.match(rf"\s*\[\s*{re.escape(parts[0])}\s*\]", line):
+               re.match(rf"\s*\[\[?\s*{re.escape(parts[0])}\s*\]", line):
                 return n
         return None
     section, name = parts[0], parts[1]

@@ -1,0 +1,69 @@
+"""summary/render: the leaderboard from the store, in every format, without training."""
+import csv
+import io
+import json
+
+import numpy as np
+import pytest
+from scipy import stats as st
+
+from conftest import invoke
+
+
+@pytest.fixture
+def finished(tmp_path, tiny_recipe):
+    store = tmp_path / "s.sqlite"
+    assert invoke("run", tiny_recipe, "--store", store, "--workers", 1, "-q").exit_code == 0
+    return tiny_recipe, store
+
+
+def test_json_document_keys_and_values(finished):
+    recipe, store = finished
+    result = invoke("board", recipe, "--store", store, "--format", "json")
+    assert result.exit_code == 0
+    doc = json.loads(result.stdout)
+    assert doc["format"] == "recipe-leaderboard" and doc["version"] == 1
+    assert doc["metric"] == "val.accuracy" and doc["goal"] == "max"
+    assert len(doc["rows"]) == 2
+    for row in doc["rows"]:
+        assert set(row) >= {"levels", "n", "mean", "std", "ci95", "per_seed", "test_mean", "counts"}
+        values = list(row["per_seed"].values())
+        assert row["n"] == 2 and set(row["per_seed"]) == {"1", "2"}
+        assert row["mean"] == pytest.approx(np.mean(values))
+        assert row["std"] == pytest.approx(np.std(values, ddof=1))
+        half = st.t.ppf(0.975, 1) * row["std"] / np.sqrt(2)  # 12.7062 for 1 df (t table)
+        assert row["ci95"] == [pytest.approx(row["mean"] - half), pytest.approx(row["mean"] + half)]
+    means = [r["mean"] for r in doc["rows"]]
+    assert means == sorted(means, reverse=True)
+    assert any("optimistic" in c for c in doc["cautions"])
+
+
+def test_table_markdown_csv(finished):
+    recipe, store = finished
+    table = invoke("board", recipe, "--store", store).stdout
+    assert "train.optimizer" in table and "95% CI" in table and "optimistic" in table
+    md = invoke("board", recipe, "--store", store, "--format", "markdown").stdout
+    assert "| rank | train.optimizer |" in md
+    rows = list(csv.DictReader(io.StringIO(invoke("board", recipe, "--store", store, "--format", "csv").stdout)))
+    assert len(rows) == 2 and {"seed_1", "seed_2", "ci95_low"} <= set(rows[0])
+
+
+def test_board_without_store_is_a_clear_error(tiny_recipe, tmp_path):
+    result = invoke("board", tiny_recipe, "--store", tmp_path / "none.sqlite")
+    assert result.exit_code == 2 and "no results store here yet" in result.stderr
+    assert not (tmp_path / "none.sqlite").exists()
+
+
+def test_status_counts(finished):
+    recipe, store = finished
+    assert "4 jobs: 4 done" in invoke("status", recipe, "--store", store).stdout
+
+
+def test_pending_jobs_are_shown_as_absent(tmp_path, tiny_recipe):
+    store = tmp_path / "s.sqlite"
+    invoke("run", tiny_recipe, "--store", store, "--workers", 1, "-q")
+    tiny_recipe.write_text(tiny_recipe.read_text().replace('["sgd", "adam"]', '["sgd", "adam", "adagrad"]'))
+    doc = json.loads(invoke("board", tiny_recipe, "--store", store, "--format", "json").stdout)
+    pending = [r for r in doc["rows"] if r["levels"]["train.optimizer"] == "adagrad"][0]
+    assert pending["n"] == 0 and pending["mean"] is None and pending["rank"] is None
+    assert pending["counts"]["pending"] == 2

@@ -1,0 +1,80 @@
+"""data: bundled datasets, CSV parsing, seeded splits, scaling fitted on training rows only."""
+import numpy as np
+import pytest
+from sklearn.model_selection import train_test_split
+
+from runner.data import load_dataset, split_and_scale
+from runner.errors import DataError
+from runner.recipe import resolve
+
+from conftest import DATA
+
+
+def settings(**data):
+    return resolve({"data": data}, {})["data"]
+
+
+def test_digits_shape_and_classes():
+    """scikit-learn's bundled digits: 1797 images of 8x8, 10 classes (sklearn docs)."""
+    ds = load_dataset(settings(source="digits"), DATA)
+    assert ds.X.shape == (1797, 1, 8, 8)
+    assert len(ds.classes) == 10 and ds.task == "classification"
+    assert ds.X.max() == 16 and ds.X.min() == 0
+
+
+def test_bundled_shapes():
+    """Shapes of the bundled sets: iris 150x4, wine 178x13, breast_cancer 569x30, diabetes 442x10."""
+    shapes = {name: load_dataset(settings(source=name), DATA).X.shape
+              for name in ("iris", "wine", "breast_cancer", "diabetes")}
+    assert shapes == {"iris": (150, 4), "wine": (178, 13), "breast_cancer": (569, 30), "diabetes": (442, 10)}
+    assert load_dataset(settings(source="diabetes"), DATA).task == "regression"
+
+
+def test_split_matches_sklearn_stratified_80_20():
+    """With test = 0, val 0.2 and seed 0, the split is sklearn's stratified 80/20 (1437/360)."""
+    ds = load_dataset(settings(source="digits"), DATA)
+    sp = split_and_scale(ds, settings(source="digits", split={"val": 0.2, "test": 0.0}), seed=0)
+    assert len(sp.y_train) == 1437 and len(sp.y_val) == 360
+    _, _, _, y_ref = train_test_split(ds.X, ds.y, test_size=0.2, random_state=0, stratify=ds.y)
+    assert np.array_equal(np.sort(sp.y_val), np.sort(y_ref))
+    counts = np.bincount(sp.y_val, minlength=10)
+    assert np.all(np.abs(counts - np.bincount(ds.y) * 0.2) <= 1)
+
+
+def test_standardization_uses_training_rows_only():
+    """Fitted mean equals the training split's mean; digits has constant training columns
+    that keep scale 1 (no NaN)."""
+    ds = load_dataset(settings(source="digits"), DATA)
+    data = settings(source="digits", split={"val": 0.2, "test": 0.2})
+    sp = split_and_scale(ds, data, seed=3)
+    flat = ds.X.reshape(len(ds.X), -1)
+    idx = np.arange(len(ds.y))
+    rest, _ = train_test_split(idx, test_size=0.2, random_state=3, stratify=ds.y)
+    train_idx, _ = train_test_split(rest, test_size=0.25, random_state=3, stratify=ds.y[rest])
+    assert np.allclose(sp.scaler_mean, flat[train_idx].mean(axis=0), atol=1e-5)
+    assert not np.allclose(sp.scaler_mean, flat.mean(axis=0), atol=1e-3)
+    assert np.isfinite(sp.X_train).all() and np.isfinite(sp.X_val).all()
+    assert np.allclose(sp.X_train.reshape(len(sp.X_train), -1).mean(axis=0), 0, atol=1e-4)
+
+
+def test_csv_text_target_is_classification_and_comments_are_skipped():
+    ds = load_dataset(settings(source="iris_sample.csv", target="species"), DATA)
+    assert ds.X.shape == (50, 4) and ds.classes == ("setosa", "versicolor", "virginica")
+
+
+def test_csv_numeric_target_regression(tmp_path):
+    lines = (DATA / "iris_sample.csv").read_text().splitlines()
+    (tmp_path / "num.csv").write_text("\n".join(l.rsplit(",", 1)[0] for l in lines[1:]) + "\n")
+    ds = load_dataset(settings(source="num.csv", target="petal_length"), tmp_path)
+    assert ds.task == "regression" and ds.X.shape == (50, 3)
+
+
+def test_csv_errors_name_the_column_and_line(tmp_path):
+    bad = tmp_path / "bad.csv"
+    bad.write_text("a,b,y\n1,2,0\n1,,1\n")
+    with pytest.raises(DataError, match=r'bad.csv:3: column "b" has a missing value'):
+        load_dataset(settings(source="bad.csv", target="y"), tmp_path)
+    short = tmp_path / "short.csv"
+    short.write_text("a,b,y\n1,2\n")
+    with pytest.raises(DataError, match="row has 2 fields"):
+        load_dataset(settings(source="short.csv", target="y"), tmp_path)
