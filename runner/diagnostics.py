@@ -52,8 +52,12 @@ def at_init(net: nn.Module, x: torch.Tensor, y: torch.Tensor, loss_fn) -> dict:
         g = layer.weight.grad
         norms.append(float(g.norm()) if g is not None else 0.0)
     net.zero_grad(set_to_none=True)
-    last = norms[-1] if norms else 0.0
-    ratio = norms[0] / last if len(norms) > 1 and last > 0 else None
+    ratio = None
+    if len(norms) > 1:
+        if norms[-1] > 0:
+            ratio = norms[0] / norms[-1]
+        elif not any(norms):
+            ratio = 0.0  # no gradient reaches any layer: vanishing at its most extreme
     return {
         "init_act_mean": [float(o.mean()) for o in outputs],
         "init_act_std": [float(o.std()) if o.numel() > 1 else 0.0 for o in outputs],

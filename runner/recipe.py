@@ -44,8 +44,11 @@ class Factor:
     name: str
     paths: tuple[str, ...]
     levels: tuple[tuple[Any, ...], ...]  # levels[i][j] = value of paths[j] at level i
+    names: tuple[str, ...] | None = None  # optional level names of a linked factor
 
     def label(self, i: int) -> str:
+        if self.names:
+            return self.names[i]
         return "/".join(_fmt(v) for v in self.levels[i])
 
 
@@ -208,7 +211,10 @@ def _factors(raw: Any, sections: dict) -> tuple[Factor, ...]:
     factors, seen = [], {}
     for name, spec in raw.items():
         key = f'factors."{name}"'
+        names = None
         if isinstance(spec, dict):  # linked: several paths, equal-length level lists
+            spec = dict(spec)
+            names = spec.pop("labels", None)
             if not spec:
                 raise RecipeError("a linked factor needs at least one path", key=key)
             paths = tuple(spec)
@@ -238,7 +244,15 @@ def _factors(raw: Any, sections: dict) -> tuple[Factor, ...]:
         levels = tuple(zip(*columns))
         if len(set(map(_freeze, levels))) != len(levels):
             raise RecipeError("levels must not repeat", key=key, value=[list(l) for l in levels])
-        factors.append(Factor(name=name, paths=paths, levels=levels))
+        if names is not None:
+            ok = (isinstance(names, list) and len(names) == len(levels)
+                  and all(isinstance(n, str) and n.strip() for n in names) and len(set(names)) == len(names))
+            if not ok:
+                raise RecipeError("labels must be distinct non-empty strings, one per level",
+                                  key=f"{key}.labels", value=names,
+                                  allowed=f"a list of {len(levels)} distinct names")
+            names = tuple(names)
+        factors.append(Factor(name=name, paths=paths, levels=levels, names=names))
     return tuple(factors)
 
 
@@ -277,6 +291,8 @@ def _baseline(raw: Any, factors: tuple[Factor, ...]) -> dict[str, int]:
         factor = by_name[name]
         wanted = tuple(value) if len(factor.paths) > 1 and isinstance(value, list) else (value,)
         matches = [i for i, lvl in enumerate(factor.levels) if _freeze(lvl) == _freeze(wanted)]
+        if not matches and factor.names and value in factor.names:
+            matches = [factor.names.index(value)]
         if not matches:
             raise RecipeError("is not one of the factor's levels", key=f'baseline."{name}"',
                               value=value, allowed=", ".join(factor.label(i) for i in range(len(factor.levels))))

@@ -54,6 +54,9 @@ def _head(doc: dict) -> list[str]:
     env = doc.get("environment") or {}
     if env.get("distinct", 0) > 1:
         lines.append("Note: stored jobs ran in differing environments (" + ", ".join(env["differs_in"]) + ").")
+    if env.get("recipe_versions", 0) > 1:
+        lines.append(f"Note: results come from {env['recipe_versions']} versions of the recipe file; "
+                     "each job's own settings are the ones shown.")
     return lines
 
 

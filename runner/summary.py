@@ -172,15 +172,17 @@ def _totals(rows: list[dict]) -> dict:
 
 
 def _environment(stored) -> dict:
-    """The environments the stored jobs ran in; more than one means results may not compare."""
-    seen = {}
+    """The environments the stored jobs ran in; more than one means results may not compare.
+    Recipe versions are counted apart: an edited recipe keeps the results of unchanged jobs."""
+    seen, recipes = {}, set()
     for job in stored:
         env = {k: v for k, v in job["env"].items() if k != "pid"}
-        env["recipe_hash"] = job.get("recipe_hash")
         seen[tuple(sorted(env.items()))] = env
+        recipes.add(job.get("recipe_hash"))
     values = list(seen.values())
     differing = sorted({k for env in values for k in env if len({str(e.get(k)) for e in values}) > 1})
-    return {"distinct": len(values), "differs_in": differing, "first": values[0] if values else None}
+    return {"distinct": len(values), "differs_in": differing, "first": values[0] if values else None,
+            "recipe_versions": len(recipes)}
 
 
 def _cautions(rows: list[dict], grid: Grid) -> list[str]:

@@ -26,7 +26,7 @@ from .models import build_model, weight_tensors
 from .optimizers import build_optimizer
 from .schedules import lr_at
 
-__all__ = ["JobSpec", "JobResult", "run_job", "environment"]
+__all__ = ["JobSpec", "JobResult", "run_job", "train_model", "environment"]
 
 
 @dataclass(frozen=True)
@@ -81,19 +81,25 @@ class _Stop(Exception):
 
 def run_job(spec: JobSpec, ds: Dataset) -> JobResult:
     """Never raises for a job's own failure: it is returned as status "failed"."""
+    return train_model(spec, ds)[1]
+
+
+def train_model(spec: JobSpec, ds: Dataset):
+    """(trained network or None, JobResult). The network is what the metrics were taken on."""
     start = time.perf_counter()
     result = JobResult(key=spec.key, status="done", env=environment())
+    net = None
     try:
-        _train(spec, ds, result, start)
+        net = _train(spec, ds, result, start)
     except _Stop as stop:
         result.status, result.error = stop.status, stop.reason
     except Exception as exc:  # a job's bug or bad numbers must not stop the grid
         result.status, result.error = "failed", f"{type(exc).__name__}: {exc}"
     result.duration = time.perf_counter() - start
-    return result
+    return net, result
 
 
-def _train(spec: JobSpec, ds: Dataset, result: JobResult, start: float) -> None:
+def _train(spec: JobSpec, ds: Dataset, result: JobResult, start: float):
     data, model_s, train = spec.settings["data"], spec.settings["model"], spec.settings["train"]
     sp = split_and_scale(ds, data, spec.seed)
     classify = ds.task == "classification"
@@ -193,6 +199,7 @@ def _train(spec: JobSpec, ds: Dataset, result: JobResult, start: float) -> None:
     if result.metrics.get("train") and result.metrics.get("val"):
         tr, va = result.metrics["train"][spec.monitor], result.metrics["val"][spec.monitor]
         result.diagnostics["gap"] = (tr - va) if goal_max else (va - tr)
+    return net
 
 
 @torch.no_grad()
