@@ -83,16 +83,22 @@ def run(recipe_path, store, workers, threads, retry_failed, quiet, fmt):
 @store_option
 @format_option
 @click.option("--out", type=click.Path(dir_okay=False), help="Write to this file instead of stdout.")
-def board(recipe_path, store, fmt, out):
+@click.option("--ablation", is_flag=True,
+              help="Add the ablation tables (main effects, interactions, regularization and optimizer views).")
+def board(recipe_path, store, fmt, out, ablation):
     """Print the leaderboard of RECIPE from its store, without training."""
-    from .render import render
+    from .render import render, render_ablation
     from .store import Store
     from .summary import leaderboard
 
     try:
         recipe, grid = _load(recipe_path)
         with Store(_store_path(recipe, store), create=False) as db:
-            text = render(leaderboard(grid, db), fmt or "table")
+            doc = leaderboard(grid, db)
+        fmt = fmt or "table"
+        text = render(doc, fmt)
+        if ablation and fmt in ("table", "markdown"):
+            text += render_ablation(doc["ablation"], markdown=fmt == "markdown")
     except UserError as err:
         _fail(err)
     if out:
@@ -122,6 +128,25 @@ def status(recipe_path, store):
     pending = len(keys) - sum(counts.values())
     click.echo(f"{len(keys)} jobs: {counts['done']} done, {counts['diverged']} diverged, "
                f"{counts['failed']} failed, {counts['timeout']} timed out, {pending} pending")
+
+
+@cli.command()
+@click.argument("old", type=click.Path())
+@click.argument("new", type=click.Path())
+@click.option("--format", "fmt", type=click.Choice(["table", "markdown", "json"]), default="table",
+              show_default=True)
+@click.option("--fail-on-worse", is_flag=True, help="Exit 1 when any configuration got clearly worse.")
+def diff(old, new, fmt, fail_on_worse):
+    """Compare two leaderboards: OLD and NEW are JSON exports, stores, or recipes."""
+    from .diff import diff as compare, load_board, render_diff
+
+    try:
+        result = compare(load_board(old), load_board(new))
+    except UserError as err:
+        _fail(err)
+    click.echo(render_diff(result, fmt), nl=False)
+    if fail_on_worse and result["summary"]["worse"]:
+        sys.exit(1)
 
 
 def main() -> None:

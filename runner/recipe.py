@@ -66,6 +66,7 @@ class Recipe:
     exclude: tuple[Mapping[str, Any], ...]
     baseline: Mapping[str, int]    # factor name -> level index
     diagnostics: Mapping[str, float]
+    baseline_given: bool = False   # the recipe has a [baseline] table of its own
 
     @property
     def base_dir(self) -> Path:
@@ -138,7 +139,8 @@ def _build(raw: dict, text: str, path: Path) -> Recipe:
         path=path.resolve(), text=text, hash=hashlib.sha256(text.encode()).hexdigest(),
         name=name, description=description, seeds=seeds, rank_by=rank_by,
         sections=MappingProxyType(copy.deepcopy(sections)), factors=factors, exclude=exclude,
-        baseline=MappingProxyType(baseline), diagnostics=MappingProxyType(diagnostics))
+        baseline=MappingProxyType(baseline), diagnostics=MappingProxyType(diagnostics),
+        baseline_given="baseline" in raw)
 
 
 def resolve(sections: Mapping[str, Any], assignments: Mapping[str, Any]) -> dict[str, dict]:

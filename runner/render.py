@@ -104,3 +104,66 @@ def render(doc: dict, fmt: str) -> str:
     if fmt == "json":
         return json.dumps(doc, indent=2, sort_keys=False) + "\n"
     return {"table": _table, "markdown": _markdown, "csv": _csv}[fmt](doc)
+
+
+def _grid_text(header: list[str], body: list[list[str]], markdown: bool) -> list[str]:
+    if markdown:
+        esc = lambda s: s.replace("|", "\\|")  # noqa: E731
+        return (["| " + " | ".join(header) + " |", "|" + "|".join("---" for _ in header) + "|"]
+                + ["| " + " | ".join(esc(c) for c in r) + " |" for r in body])
+    widths = [max(len(r[i]) for r in [header, *body]) for i in range(len(header))]
+    fmt = lambda cells: "  ".join(c.ljust(w) for c, w in zip(cells, widths)).rstrip()  # noqa: E731
+    return [fmt(header), fmt(["-" * w for w in widths])] + [fmt(r) for r in body]
+
+
+def _p(value) -> str:
+    return "-" if value is None else f"{value:.2g}"
+
+
+def render_ablation(ab: dict, markdown: bool = False) -> str:
+    """The ablation tables of a leaderboard document, as text or markdown."""
+    title = (lambda t: f"#### {t}") if markdown else (lambda t: t)
+    out: list[str] = []
+    body = []
+    for eff in ab["main_effects"]:
+        for lvl in eff["levels"]:
+            d = lvl["diff_vs_baseline"]
+            is_base = lvl["label"] == eff["baseline"]
+            body.append([eff["factor"], lvl["label"] + (" (baseline)" if is_base else ""), _num(lvl["mean"]),
+                         _ci(lvl["ci95"]), "-" if d is None else f"{d['diff_mean']:+.4f}",
+                         "-" if d is None else _ci(d["ci95"]), "-" if d is None else _p(d["p_value"]),
+                         "-" if d is None else f"{d['n_pairs']}/{d['n_seeds']}"])
+    if body:
+        out += ["", title(f"Main effects on {ab['metric']}: each level averaged over the other factors; "
+                          "difference to the baseline paired over matched configurations and seeds"), ""]
+        out += _grid_text(["factor", "level", "mean", "95% CI", "vs baseline", "95% CI", "p",
+                           "pairs/seeds"], body, markdown)
+    ofat = ab.get("one_at_a_time")
+    if ofat and ofat["rows"]:
+        base = ", ".join(f"{k} = {v}" for k, v in ofat["baseline"].items())
+        out += ["", title(f"One factor at a time from the baseline ({base}; mean {_num(ofat['baseline_mean'])})"), ""]
+        out += _grid_text(["factor", "changed to", "mean", "vs baseline", "95% CI", "p", "seeds"],
+                          [[r["factor"], r["label"], _num(r["mean"]),
+                            "-" if r["diff_mean"] is None else f"{r['diff_mean']:+.4f}", _ci(r["ci95"]),
+                            _p(r["p_value"]), str(r["n_pairs"])] for r in ofat["rows"]], markdown)
+    for inter in ab["interactions"]:
+        a_levels = list(next(iter(inter["means"].values())).keys()) if inter["means"] else []
+        rows = [[bl, *[_num(row[a]) for a in a_levels], inter["best_a_by_b"][bl] or "-"]
+                for bl, row in inter["means"].items()]
+        verdict = "depends on" if inter["depends"] else "does not depend on"
+        out += ["", title(f"Interaction: the best {inter['a']} {verdict} {inter['b']} (means)"), ""]
+        out += _grid_text([f"{inter['b']} \\ {inter['a']}", *a_levels, "best"], rows, markdown)
+    if ab["regularization"]:
+        out += ["", title("Regularization: val metric, train-val gap and weight sparsity"), ""]
+        out += _grid_text(["factor", "level", "n", "mean", "gap", "zero w", "near-zero w"],
+                          [[r["factor"], r["label"], str(r["n"]), _num(r["mean"]), _num(r["gap"]),
+                            _num(r["zero_fraction"], 3), _num(r["near_zero_fraction"], 3)]
+                           for r in ab["regularization"]], markdown)
+    if ab["optimization"]:
+        out += ["", title("Optimization: epochs to reach 95% of each job's best val metric, final train loss, "
+                          "divergences"), ""]
+        out += _grid_text(["factor", "level", "n", "mean", "epochs to 95%", "final loss", "diverged"],
+                          [[r["factor"], r["label"], str(r["n"]), _num(r["mean"]), _num(r["epochs_to_95pct"], 1),
+                            _num(r["final_train_loss"]), str(r["diverged"])] for r in ab["optimization"]],
+                          markdown)
+    return "\n".join(out) + ("\n" if out else "")

@@ -11,6 +11,7 @@ import statistics
 from typing import Any
 
 from . import stats
+from .ablation import ablation
 from .grid import Grid
 from .store import Store
 
@@ -86,11 +87,32 @@ def leaderboard(grid: Grid, store: Store) -> dict:
         "seeds": list(grid.recipe.seeds),
         "factors": [{"name": f.name, "paths": list(f.paths),
                      "levels": [f.label(i) for i in range(len(f.levels))]} for f in grid.recipe.factors],
+        "base_settings": _base_settings(grid),
+        "data": sorted({c.data_id for c in grid.configs}),
         "jobs": _totals(rows),
         "rows": rows,
+        "ablation": ablation(grid, store),
         "environment": _environment(rows_by_key.values()),
         "cautions": _cautions(rows, grid),
     }
+
+
+def _base_settings(grid: Grid) -> dict:
+    """The resolved settings every configuration shares: those no factor varies."""
+    varied = {p for f in grid.recipe.factors for p in f.paths}
+    flat = {}
+
+    def walk(node, prefix):
+        for key, value in node.items():
+            path = f"{prefix}.{key}"
+            if isinstance(value, dict):
+                walk(value, path)
+            elif path not in varied:
+                flat[path] = list(value) if isinstance(value, tuple) else value
+
+    for section, values in grid.configs[0].settings.items():
+        walk(values, section)
+    return flat
 
 
 def _compare_with_best(rows: list[dict]) -> None:
