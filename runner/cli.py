@@ -47,12 +47,21 @@ def cli():
               help="Worker processes (default: the number of cores; 1 runs in this process).")
 @click.option("--threads", type=click.IntRange(1), default=1, show_default=True,
               help="Torch threads per worker; results are bitwise-reproducible for a fixed value.")
+@click.option("--on", "on", default=None, metavar="WHERE",
+              help='Where jobs run: "local" (default), "dask-local", or "dask://HOST:PORT".')
 @click.option("--retry-failed", is_flag=True, help="Run failed and timed-out jobs again.")
+@click.option("--max-attempts", type=click.IntRange(1), default=2, show_default=True,
+              help="Tries per job when its worker process dies.")
+@click.option("--time-limit", type=click.FloatRange(0, min_open=True), default=None,
+              help="Seconds one job may train before it is stopped as timed out.")
+@click.option("--fresh", is_flag=True, help="Delete this grid's stored results first (asks to confirm).")
+@click.option("--yes", "-y", is_flag=True, help="Confirm --fresh without asking.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines; print only the leaderboard.")
 @format_option
-def run(recipe_path, store, workers, threads, retry_failed, quiet, fmt):
+def run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, time_limit, fresh, yes,
+        quiet, fmt):
     """Train every job of RECIPE that has no stored result, then print the leaderboard."""
-    from .jobs import execute, plan
+    from .jobs import execute, make_executor, plan
     from .progress import Progress
     from .render import render
     from .schedule import default_workers
@@ -61,13 +70,18 @@ def run(recipe_path, store, workers, threads, retry_failed, quiet, fmt):
 
     try:
         recipe, grid = _load(recipe_path)
+        where = on or recipe.run.get("on", "local")
+        workers = workers or recipe.run.get("workers") or default_workers()
         with Store(_store_path(recipe, store)) as db:
+            if fresh:
+                _confirm_fresh(db, grid, yes)
             todo = plan(grid, db, retry_failed)
             if not quiet:
                 click.echo(todo.describe(), err=True)
             progress = Progress(len(todo.to_run), grid.rank_by, grid.goal, quiet=quiet)
+            executor = make_executor(where, workers, threads, max_attempts, time_limit)
             try:
-                execute(grid, db, todo.to_run, workers or default_workers(), threads, progress)
+                execute(grid, db, todo.to_run, executor, progress, time_limit)
             except KeyboardInterrupt:
                 done = len(db.finished_keys() & {j.key for j in grid})
                 click.echo(f"\nInterrupted: {done} of {todo.total} jobs are stored. Run the same "
@@ -76,6 +90,22 @@ def run(recipe_path, store, workers, threads, retry_failed, quiet, fmt):
             click.echo(render(leaderboard(grid, db), fmt or "table"), nl=False)
     except UserError as err:
         _fail(err)
+
+
+def _confirm_fresh(db, grid, yes: bool) -> None:
+    from . import checkpoint
+    from .jobs import checkpoint_dir
+
+    keys = [j.key for j in grid]
+    stored = len(db.finished_keys() & set(keys))
+    if not yes:
+        if not sys.stdin.isatty():
+            raise UserError("--fresh would delete stored results and needs confirmation",
+                            value=f"{stored} stored jobs", hint="Add --yes to confirm without a terminal")
+        click.confirm(f"Delete the {stored} stored results of this grid and start over?", abort=True, err=True)
+    db.forget(keys)
+    for key in keys:
+        checkpoint.remove(str(checkpoint_dir(db) / f"{key}.pt"))
 
 
 @cli.command()
@@ -119,15 +149,17 @@ def status(recipe_path, store):
         path = _store_path(recipe, store)
         keys = {j.key for j in grid}
         counts = {"done": 0, "diverged": 0, "failed": 0, "timeout": 0}
+        running = set()
         if path.exists():
             with Store(path, create=False) as db:
                 for row in db.jobs(keys):
                     counts[row["status"]] += 1
+                running = db.running_keys() & keys
     except UserError as err:
         _fail(err)
-    pending = len(keys) - sum(counts.values())
-    click.echo(f"{len(keys)} jobs: {counts['done']} done, {counts['diverged']} diverged, "
-               f"{counts['failed']} failed, {counts['timeout']} timed out, {pending} pending")
+    pending = len(keys) - sum(counts.values()) - len(running)
+    click.echo(f"{len(keys)} jobs: {counts['done']} done, {len(running)} running, {pending} pending, "
+               f"{counts['failed']} failed, {counts['diverged']} diverged, {counts['timeout']} timed out")
 
 
 @cli.command()

@@ -17,6 +17,7 @@ from .metrics import METRICS, for_task
 from .optimizers import check_optimizer
 from .recipe import Recipe, resolve
 from .schedules import check_schedule
+from .settings import identity
 from .train import JobSpec
 
 __all__ = ["Config", "Job", "Grid", "expand", "canonical"]
@@ -46,9 +47,10 @@ class Job:
     seed: int
     monitor: str
 
-    def spec(self) -> JobSpec:
+    def spec(self, checkpoint: str | None = None, time_limit: float | None = None) -> JobSpec:
         return JobSpec(key=self.key, seed=self.seed, settings=dict(self.config.settings),
-                       monitor=self.monitor, data_id=self.config.data_id)
+                       monitor=self.monitor, data_id=self.config.data_id, checkpoint=checkpoint,
+                       time_limit=time_limit)
 
 
 class Grid:
@@ -83,7 +85,7 @@ class Grid:
 
 
 def job_key(config: Config, seed: int, monitor: str) -> str:
-    text = canonical({"v": KEY_VERSION, "settings": config.settings, "data": config.data_id,
+    text = canonical({"v": KEY_VERSION, "settings": identity(config.settings), "data": config.data_id,
                       "seed": seed, "monitor": monitor})
     return hashlib.sha256(text.encode()).hexdigest()[:24]
 
@@ -136,7 +138,7 @@ def _expand(recipe: Recipe) -> Grid:
         if settings["model"]["kind"] == "cnn" and ds.image_shape is None:
             raise RecipeError('model.kind = "cnn" needs image data', key="model.kind", value="cnn",
                               allowed='"digits" or an NPZ file with X of shape (N, H, W) or (N, C, H, W)')
-        ident = hashlib.sha256(canonical({"settings": settings, "data": ds.fingerprint}).encode())
+        ident = hashlib.sha256(canonical({"settings": identity(settings), "data": ds.fingerprint}).encode())
         configs.append(Config(index=len(configs), id=ident.hexdigest()[:12], levels=combo,
                               assignments=assign, settings=settings, data_id=ds.fingerprint))
     if not configs:

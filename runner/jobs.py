@@ -1,18 +1,20 @@
 """Run a grid's unfinished jobs into the store: the step between grid and summary.
 
 Finished jobs (done, diverged, failed, timed out) are skipped, so running a recipe again
-resumes it; ``retry_failed`` reruns the failed and timed-out ones.
+resumes it; ``retry_failed`` reruns the failed and timed-out ones. Only one runner uses a
+store at a time (store.RunnerLock); a second one refuses with a clear message.
 """
 from __future__ import annotations
 
 from dataclasses import dataclass
+from pathlib import Path
 
+from . import checkpoint
 from .grid import Grid, Job
 from .progress import Progress
-from .schedule import PoolExecutor, SerialExecutor
-from .store import FINISHED, Store
+from .store import FINISHED, RunnerLock, Store
 
-__all__ = ["Plan", "plan", "execute"]
+__all__ = ["Plan", "plan", "execute", "make_executor", "checkpoint_dir"]
 
 
 @dataclass(frozen=True)
@@ -32,28 +34,56 @@ def plan(grid: Grid, store: Store, retry_failed: bool = False) -> Plan:
     return Plan(total=len(jobs), done=len(jobs) - len(todo), to_run=todo)
 
 
-def execute(grid: Grid, store: Store, todo: list[Job], workers: int, threads: int = 1,
-            progress: Progress | None = None) -> None:
+def checkpoint_dir(store: Store) -> Path:
+    return store.path.with_suffix(".checkpoints")
+
+
+def make_executor(on: str, workers: int, threads: int = 1, max_attempts: int = 2,
+                  hard_limit: float | None = None):
+    """``on``: "local" (worker processes, or in-process with one worker), "dask-local" (a
+    LocalCluster on loopback) or "dask://HOST:PORT" (an existing scheduler)."""
+    from .schedule import PoolExecutor, SerialExecutor
+
+    if on == "local":
+        if workers <= 1:
+            return SerialExecutor(threads)
+        return PoolExecutor(workers, threads, max_attempts, hard_limit)
+    from .dask_executor import DaskExecutor
+
+    return DaskExecutor(on, workers, threads, max_attempts)
+
+
+def execute(grid: Grid, store: Store, todo: list[Job], executor, progress: Progress | None = None,
+            time_limit: float | None = None, on_stored=None) -> None:
     """Run ``todo``; each result is committed to the store as soon as it arrives."""
     if not todo:
         return
-    store.remember_recipe(grid.recipe)
     by_key = {j.key: j for j in todo}
     split, metric = grid.rank_by.split(".", 1)
+    ckpt_dir = checkpoint_dir(store)
+
+    def on_start(spec):
+        store.mark_running(spec.key)
 
     def on_result(spec, result, attempts):
         job = by_key[spec.key]
         labels = grid.labels(job.config)
         store.write_result(job, labels, grid.recipe.hash, result, attempts)
+        checkpoint.remove(spec.checkpoint)  # the result is safe: its checkpoint is not needed
         if progress is not None:
             value = result.metrics.get(split, {}).get(metric)
             label = ", ".join(labels.values()) or "base"
             progress.update(label, job.seed, result.status, value, result.duration)
+        if on_stored is not None:
+            on_stored(job, result)
 
-    specs = [j.spec() for j in todo]
-    executor = SerialExecutor(threads) if workers <= 1 else PoolExecutor(min(workers, len(specs)), threads)
-    try:
-        executor.run(specs, grid.datasets, on_result)
-    finally:
-        if progress is not None:
-            progress.close()
+    specs = [j.spec(checkpoint=str(ckpt_dir / f"{j.key}.pt")
+                    if j.config.settings["train"]["checkpoint_every"] else None,
+                    time_limit=time_limit) for j in todo]
+    with RunnerLock(store):
+        store.remember_recipe(grid.recipe)
+        try:
+            executor.run(specs, grid.datasets, on_result, on_start)
+        finally:
+            if progress is not None:
+                progress.close()

@@ -13,7 +13,7 @@ from typing import Any, Mapping
 
 from .errors import MISSING, RecipeError
 
-__all__ = ["Constraint", "Real", "Integer", "Choice", "Boolean", "Text", "IntList", "Either",
+__all__ = ["Constraint", "Real", "Integer", "Choice", "Boolean", "Text", "IntList", "Either", "Pattern",
            "Param", "Invalid", "validate_table", "suggest"]
 
 
@@ -104,6 +104,23 @@ class Choice(Constraint):
 
     def allowed(self) -> str:
         return ", ".join(f'"{o}"' for o in sorted(self.options))
+
+
+@dataclass(frozen=True, slots=True)
+class Pattern(Constraint):
+    """A string matching a regular expression (anchored at both ends)."""
+    regex: str
+    shown: str
+
+    def check(self, value: Any) -> str:
+        import re
+
+        if not isinstance(value, str) or not re.fullmatch(self.regex, value):
+            raise Invalid(f"must look like {self.shown}", self.allowed())
+        return value
+
+    def allowed(self) -> str:
+        return self.shown
 
 
 @dataclass(frozen=True, slots=True)

@@ -8,7 +8,7 @@ from __future__ import annotations
 import copy
 import hashlib
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from types import MappingProxyType
 from typing import Any, Mapping
@@ -17,13 +17,24 @@ import tomli
 
 from .errors import RecipeError, UserError
 from .metrics import METRICS
-from .params import Integer, Invalid, Param, Real, suggest, validate_table
+from .params import Choice, Either, Integer, Invalid, Param, Pattern, Real, Text, suggest, validate_table
 from .settings import SECTIONS, all_paths, param_at
 
 __all__ = ["Factor", "Recipe", "load_recipe", "parse_recipe", "resolve"]
 
 TOP_LEVEL = ("baseline", "data", "description", "diagnostics", "exclude", "factors", "model",
-             "name", "rank_by", "seeds", "train")
+             "name", "rank_by", "run", "seeds", "tracking", "train")
+
+# [run]: where and how wide the grid runs; command-line options override it. Not part of any
+# job's identity: the same job gives the same numbers wherever it runs.
+RUN = {
+    "on": Param(Either((Choice(("dask-local", "local")), Pattern(r"dask://[^\s/]+:\d+", "dask://HOST:PORT"))),
+                "local", 'where jobs run: "local", "dask-local" or "dask://HOST:PORT"'),
+    "workers": Param(Integer(1, 4096), 0, "worker processes (0 = the number of cores)"),
+}
+TRACKING = {
+    "mlflow": Param(Text(), None, "MLflow tracking URI to log every finished job to, e.g. sqlite:///mlflow.db"),
+}
 
 # Thresholds for the leaderboard's flags. They act on stored numbers, so changing them
 # needs no rerun and they are not part of a job's identity.
@@ -67,6 +78,8 @@ class Recipe:
     baseline: Mapping[str, int]    # factor name -> level index
     diagnostics: Mapping[str, float]
     baseline_given: bool = False   # the recipe has a [baseline] table of its own
+    run: Mapping[str, Any] = field(default_factory=dict)       # the [run] table
+    tracking: Mapping[str, Any] = field(default_factory=dict)  # the [tracking] table
 
     @property
     def base_dir(self) -> Path:
@@ -135,12 +148,14 @@ def _build(raw: dict, text: str, path: Path) -> Recipe:
     exclude = _exclude(raw.get("exclude", []), factors)
     baseline = _baseline(raw.get("baseline", {}), factors)
     diagnostics = validate_table(raw.get("diagnostics", {}), DIAGNOSTICS, "diagnostics")
+    run = validate_table(raw.get("run", {}), RUN, "run")
+    tracking = validate_table(raw.get("tracking", {}), TRACKING, "tracking")
     return Recipe(
         path=path.resolve(), text=text, hash=hashlib.sha256(text.encode()).hexdigest(),
         name=name, description=description, seeds=seeds, rank_by=rank_by,
         sections=MappingProxyType(copy.deepcopy(sections)), factors=factors, exclude=exclude,
         baseline=MappingProxyType(baseline), diagnostics=MappingProxyType(diagnostics),
-        baseline_given="baseline" in raw)
+        baseline_given="baseline" in raw, run=MappingProxyType(run), tracking=MappingProxyType(tracking))
 
 
 def resolve(sections: Mapping[str, Any], assignments: Mapping[str, Any]) -> dict[str, dict]:

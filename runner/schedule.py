@@ -1,18 +1,20 @@
 """Executors: run job specs and hand each result back, in the main process, as it arrives.
 
-The interface is one method, ``run(specs, on_result)``. ``SerialExecutor`` runs in-process
-(for debugging); ``PoolExecutor`` runs worker processes that import torch once each and take
-many jobs. The caller's ``on_result`` writes the store, so only the main process writes.
+The interface is ``run(specs, datasets, on_result, on_start=None)``:
+- ``SerialExecutor`` runs in this process (for debugging and one-worker runs);
+- ``PoolExecutor`` runs spawned worker processes that import torch once and take many jobs;
+- ``DaskExecutor`` (dask_executor.py) sends jobs to a dask.distributed cluster.
+The caller's ``on_result`` writes the store, so only the main process ever writes results.
 """
 from __future__ import annotations
 
 import multiprocessing
 import os
 import signal
+import time
 import warnings
 from collections import deque
-from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
-from concurrent.futures.process import BrokenProcessPool
+from multiprocessing.connection import wait
 from typing import Callable
 
 import torch
@@ -23,21 +25,30 @@ from .train import JobResult, JobSpec, run_job
 __all__ = ["SerialExecutor", "PoolExecutor", "prepare_process", "default_workers"]
 
 OnResult = Callable[[JobSpec, JobResult, int], None]  # spec, result, attempts used
+OnStart = Callable[[JobSpec], None]
 
 _DATASETS: dict[str, Dataset] = {}
 
 
+def grace(limit: float) -> float:
+    """Seconds past a hard time limit before a stuck worker is killed: 2 to 10 s."""
+    return max(2.0, min(10.0, 0.5 * limit))
+
+
 def default_workers() -> int:
-    return max(1, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1)
+    if hasattr(os, "sched_getaffinity"):
+        return max(1, len(os.sched_getaffinity(0)))
+    return max(1, os.cpu_count() or 1)
 
 
-def prepare_process(threads: int, datasets: dict[str, Dataset], worker: bool = False) -> None:
+def prepare_process(threads: int, datasets: dict[str, Dataset] | None = None, worker: bool = False) -> None:
     """Fixed threads and deterministic kernels: the conditions for bitwise-equal reruns."""
     global _DATASETS
     torch.set_num_threads(threads)
     torch.use_deterministic_algorithms(True)
-    _DATASETS = datasets
-    warnings.filterwarnings("ignore", category=UserWarning, module="sklearn")
+    if datasets is not None:
+        _DATASETS = datasets
+    warnings.filterwarnings("ignore", module="sklearn")
     if worker:
         signal.signal(signal.SIGINT, signal.SIG_IGN)  # the main process decides what Ctrl-C does
 
@@ -50,74 +61,133 @@ class SerialExecutor:
     def __init__(self, threads: int = 1):
         self.threads = threads
 
-    def run(self, specs: list[JobSpec], datasets: dict[str, Dataset], on_result: OnResult) -> None:
+    def run(self, specs, datasets, on_result: OnResult, on_start: OnStart | None = None) -> None:
         previous = torch.get_num_threads()
         prepare_process(self.threads, datasets)
         try:
             for spec in specs:
+                if on_start:
+                    on_start(spec)
                 on_result(spec, _work(spec), 1)
         finally:
             torch.set_num_threads(previous)
 
 
-class PoolExecutor:
-    """A pool of spawned worker processes.
+def _worker_main(conn, threads: int, datasets: dict) -> None:
+    prepare_process(threads, datasets, worker=True)
+    while True:
+        try:
+            spec = conn.recv()
+        except EOFError:
+            return
+        if spec is None:
+            return
+        conn.send(("start", None))  # the job's clock starts here, not while the worker boots
+        conn.send(("result", _work(spec)))
 
-    When a worker dies (killed, out of memory, a crash in native code) the pool is rebuilt and
-    the jobs it was holding are tried again, up to ``max_attempts`` in all; then the job is
-    recorded as failed with the reason.
+
+class _Worker:
+    def __init__(self, ctx, threads, datasets):
+        self.conn, child = ctx.Pipe()
+        self.proc = ctx.Process(target=_worker_main, args=(child, threads, datasets), daemon=True)
+        self.proc.start()
+        child.close()
+        self.spec: JobSpec | None = None
+        self.started: float | None = None
+
+    def read(self) -> tuple[JobResult | None, bool]:
+        """(the finished job's result or None, whether the pipe broke)."""
+        try:
+            while self.conn.poll():
+                kind, payload = self.conn.recv()
+                if kind == "start":
+                    self.started = time.monotonic()
+                else:
+                    return payload, False
+        except (EOFError, OSError):
+            return None, True
+        return None, False
+
+    def stop(self) -> None:
+        if self.proc.is_alive():
+            self.proc.kill()
+        self.proc.join(timeout=5)
+        self.conn.close()
+
+
+def _death(exitcode: int | None) -> str:
+    if exitcode is not None and exitcode < 0:
+        name = signal.Signals(-exitcode).name
+        extra = "; out of memory?" if name == "SIGKILL" else ""
+        return f"worker process died ({name}{extra})"
+    return f"worker process died (exit code {exitcode})"
+
+
+class PoolExecutor:
+    """Spawned worker processes, each holding one job at a time.
+
+    A worker that dies (killed, out of memory, a crash in native code) is replaced; the job it
+    held is tried again up to ``max_attempts`` in all, then recorded as failed with the reason.
+    Other workers' jobs are not disturbed. With ``hard_limit`` seconds, a job still running
+    a grace period past it (stuck where the job's own time check cannot run) has its worker
+    killed and is recorded as timed out (``grace``: a job's own check normally stops it first).
     """
 
-    def __init__(self, workers: int, threads: int = 1, max_attempts: int = 2):
+    def __init__(self, workers: int, threads: int = 1, max_attempts: int = 2,
+                 hard_limit: float | None = None):
         self.workers = workers
         self.threads = threads
         self.max_attempts = max_attempts
+        self.hard_limit = hard_limit
 
-    def run(self, specs: list[JobSpec], datasets: dict[str, Dataset], on_result: OnResult) -> None:
+    def run(self, specs, datasets, on_result: OnResult, on_start: OnStart | None = None) -> None:
+        ctx = multiprocessing.get_context("spawn")
         queue = deque(specs)
         attempts: dict[str, int] = {}
-        ctx = multiprocessing.get_context("spawn")
-        while queue:
-            pool = ProcessPoolExecutor(max_workers=min(self.workers, len(queue)), mp_context=ctx,
-                                       initializer=prepare_process,
-                                       initargs=(self.threads, datasets, True))
-            try:
-                self._drain(pool, queue, attempts, on_result)
-            except BaseException:
-                _stop(pool)
-                raise
-            pool.shutdown(wait=True)
-
-    def _drain(self, pool, queue, attempts, on_result) -> None:
-        # Keep at most two jobs per worker in flight, so a broken pool strands few of them.
-        inflight = {}
-        while queue or inflight:
-            while queue and len(inflight) < 2 * self.workers:
-                spec = queue.popleft()
-                inflight[pool.submit(_work, spec)] = spec
-            done, _ = wait(inflight, return_when=FIRST_COMPLETED)
-            for fut in done:
-                spec = inflight.pop(fut)
-                tries = attempts.get(spec.key, 0) + 1
-                try:
-                    result = fut.result()
-                except BrokenProcessPool:
-                    attempts[spec.key] = tries
-                    if tries < self.max_attempts:
-                        queue.append(spec)
-                    else:
-                        on_result(spec, JobResult(key=spec.key, status="failed",
-                                                  error=f"worker process died ({tries} attempts)"), tries)
-                    continue
-                on_result(spec, result, tries)
-            if any(isinstance(f.exception(), BrokenProcessPool) for f in done if f.done()):
-                for fut, spec in inflight.items():  # the rest of this pool is lost: requeue
-                    queue.appendleft(spec)
-                return
-
-
-def _stop(pool: ProcessPoolExecutor) -> None:
-    """Abandon in-flight work at once: terminate the workers, drop queued jobs."""
-    for proc in list(getattr(pool, "_processes", {}).values()):
-        proc.terminate()
-    pool.shutdown(wait=False, cancel_futures=True)
+        pool = [_Worker(ctx, self.threads, datasets) for _ in range(min(self.workers, len(queue)))]
+        try:
+            while queue or any(w.spec for w in pool):
+                for w in pool:
+                    if w.spec is None and queue:
+                        w.spec, w.started = queue.popleft(), None
+                        if on_start:
+                            on_start(w.spec)
+                        w.conn.send(w.spec)
+                ready = set(wait([w.conn for w in pool] + [w.proc.sentinel for w in pool], timeout=1.0))
+                for i, w in enumerate(list(pool)):
+                    result, broken = w.read() if w.conn in ready else (None, False)
+                    if result is not None:
+                        spec, w.spec = w.spec, None
+                        on_result(spec, result, attempts.get(spec.key, 0) + 1)
+                        continue
+                    overdue = (w.spec is not None and self.hard_limit and w.started is not None
+                               and time.monotonic() - w.started > self.hard_limit + grace(self.hard_limit))
+                    if w.proc.sentinel in ready or broken or overdue:
+                        spec = w.spec
+                        if not overdue:
+                            w.proc.join(timeout=5)  # reap it, to read how it died
+                        w.stop()
+                        code = w.proc.exitcode
+                        pool[i] = _Worker(ctx, self.threads, datasets)
+                        if spec is None:
+                            continue
+                        if overdue:
+                            on_result(spec, JobResult(key=spec.key, status="timeout",
+                                                      error=f"worker killed {grace(self.hard_limit):g} s "
+                                                            f"past the {self.hard_limit:g} s time limit"),
+                                      attempts.get(spec.key, 0) + 1)
+                            continue
+                        tries = attempts[spec.key] = attempts.get(spec.key, 0) + 1
+                        if tries < self.max_attempts:
+                            queue.appendleft(spec)
+                        else:
+                            on_result(spec, JobResult(key=spec.key, status="failed",
+                                                      error=f"{_death(code)} on each of {tries} attempts"), tries)
+        finally:
+            for w in pool:
+                if w.proc.is_alive() and w.spec is None:
+                    try:
+                        w.conn.send(None)
+                    except OSError:
+                        pass
+                w.stop()

@@ -11,7 +11,8 @@ from .optimizers import HYPERPARAMS, OPTIMIZERS
 from .params import Boolean, Choice, Either, Integer, IntList, Param, Real, Text
 from . import regularizers, schedules
 
-__all__ = ["SECTIONS", "DATA", "MODEL", "TRAIN", "BUNDLED", "all_paths", "param_at"]
+__all__ = ["SECTIONS", "DATA", "MODEL", "TRAIN", "BUNDLED", "NOT_IDENTITY", "all_paths", "param_at",
+           "identity"]
 
 BUNDLED = ("breast_cancer", "circles", "diabetes", "digits", "iris", "moons", "wine")
 
@@ -61,8 +62,12 @@ TRAIN = {
     "patience": Param(Integer(0), 0, "early stopping: epochs without val improvement; 0 = off"),
     "diverge_factor": Param(Real(1, None, low_open=True), 1e6,
                             "stop as diverged when the loss exceeds this multiple of its first value"),
-    "time_limit": Param(Real(0, None), 0.0, "seconds one job may train; 0 = no limit"),
+    "time_limit": Param(Real(0, None), 0.0, "seconds one job may train, then it stops as timed out; 0 = no limit"),
+    "checkpoint_every": Param(Integer(0), 0, "save a resumable checkpoint every N epochs; 0 = never"),
 }
+
+# Settings that change how a job is run but not what it computes: left out of its identity.
+NOT_IDENTITY = {"train": ("time_limit", "checkpoint_every")}
 
 SECTIONS = {"data": DATA, "model": MODEL, "train": TRAIN}
 
@@ -93,3 +98,12 @@ def param_at(path: str) -> Param | None:
         param = table[part]
         table = param.table
     return param if param is not None and param.table is None else None
+
+
+def identity(settings: dict) -> dict:
+    """The settings a job's key is hashed from (without NOT_IDENTITY)."""
+    out = {section: dict(values) for section, values in settings.items()}
+    for section, keys in NOT_IDENTITY.items():
+        for key in keys:
+            out.get(section, {}).pop(key, None)
+    return out

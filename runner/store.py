@@ -8,7 +8,10 @@ leaves either the complete result or none of it. Only finished jobs are stored.
 from __future__ import annotations
 
 import json
+import os
+import socket
 import sqlite3
+import threading
 import time
 from pathlib import Path
 from typing import Iterable
@@ -16,7 +19,9 @@ from typing import Iterable
 from .errors import StoreError
 from .train import JobResult
 
-__all__ = ["Store", "FINISHED", "SCHEMA_VERSION"]
+__all__ = ["Store", "RunnerLock", "FINISHED", "SCHEMA_VERSION", "STALE_AFTER"]
+
+STALE_AFTER = 60.0  # seconds without a heartbeat after which a runner's lock is abandoned
 
 SCHEMA_VERSION = 1
 FINISHED = ("done", "diverged", "failed", "timeout")
@@ -35,6 +40,8 @@ CREATE INDEX IF NOT EXISTS jobs_config ON jobs (config_id);
 CREATE TABLE IF NOT EXISTS metrics (
     job_key TEXT NOT NULL REFERENCES jobs(key) ON DELETE CASCADE, split TEXT NOT NULL,
     name TEXT NOT NULL, value REAL, PRIMARY KEY (job_key, split, name));
+CREATE TABLE IF NOT EXISTS running (
+    key TEXT PRIMARY KEY, pid INTEGER NOT NULL, host TEXT NOT NULL, started REAL NOT NULL);
 CREATE TABLE IF NOT EXISTS curves (
     job_key TEXT NOT NULL REFERENCES jobs(key) ON DELETE CASCADE, name TEXT NOT NULL,
     epoch INTEGER NOT NULL, value REAL, PRIMARY KEY (job_key, name, epoch));
@@ -96,6 +103,7 @@ class Store:
         c.execute("BEGIN IMMEDIATE")
         try:
             c.execute("DELETE FROM jobs WHERE key = ?", (job.key,))
+            c.execute("DELETE FROM running WHERE key = ?", (job.key,))
             c.execute(
                 "INSERT INTO jobs (key, config_id, seed, levels, settings, recipe_hash, status, error,"
                 " finished, duration, epochs_run, best_epoch, attempts, env, diagnostics)"
@@ -147,5 +155,124 @@ class Store:
                 out.setdefault(key, {}).setdefault(name, []).append(value)
         return out
 
+    def mark_running(self, key: str) -> None:
+        self.conn.execute("INSERT OR REPLACE INTO running VALUES (?, ?, ?, ?)",
+                          (key, os.getpid(), socket.gethostname(), time.time()))
+
+    def running_keys(self) -> set[str]:
+        """Jobs marked running by a runner that still holds the store; stale marks are ignored."""
+        if RunnerLock.holder(self) is None:
+            return set()
+        return {r[0] for r in self.conn.execute("SELECT key FROM running")}
+
+    def forget(self, keys: Iterable[str]) -> int:
+        """Delete the stored results of these jobs (for --fresh)."""
+        keys = list(keys)
+        c = self.conn
+        c.execute("BEGIN IMMEDIATE")
+        try:
+            n = 0
+            for i in range(0, len(keys), 500):
+                chunk = keys[i:i + 500]
+                marks = ",".join("?" * len(chunk))
+                n += c.execute(f"DELETE FROM jobs WHERE key IN ({marks})", chunk).rowcount
+                c.execute(f"DELETE FROM running WHERE key IN ({marks})", chunk)
+            c.execute("COMMIT")
+        except BaseException:
+            c.execute("ROLLBACK")
+            raise
+        return n
+
     def integrity(self) -> str:
         return self.conn.execute("PRAGMA integrity_check").fetchone()[0]
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+_MINE = ("DELETE FROM meta WHERE key = 'runner' AND json_extract(value, '$.pid') = ?"
+         " AND json_extract(value, '$.host') = ?")
+
+
+class RunnerLock:
+    """One runner per store at a time: a second ``recipe run`` on the same store refuses.
+
+    The holder writes a heartbeat every few seconds from a background thread. A lock whose
+    process is gone (same host) or whose heartbeat is older than STALE_AFTER seconds was left
+    by a killed runner and is taken over, and its "running" marks are cleared.
+    """
+
+    def __init__(self, store: Store):
+        self.path = store.path
+        self.store = store
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+        self.me = {"pid": os.getpid(), "host": socket.gethostname(), "started": time.time()}
+
+    @staticmethod
+    def holder(store: Store) -> dict | None:
+        row = store.conn.execute("SELECT value FROM meta WHERE key = 'runner'").fetchone()
+        if row is None:
+            return None
+        info = json.loads(row[0])
+        stale = time.time() - info.get("heartbeat", 0) > STALE_AFTER
+        gone = info.get("host") == socket.gethostname() and not _alive(info.get("pid", -1))
+        return None if (stale or gone) else info
+
+    def acquire(self) -> None:
+        c = self.store.conn
+        c.execute("BEGIN IMMEDIATE")
+        try:
+            other = self.holder(self.store)
+            if other is not None and other.get("pid") != os.getpid():
+                c.execute("ROLLBACK")
+                raise StoreError(
+                    f"another 'recipe run' (pid {other['pid']} on {other['host']}) is using this store",
+                    where=str(self.path),
+                    hint="Wait for it to finish, or give this run its own --store; a killed run's lock "
+                         f"is recovered automatically (at once on the same host, else after {STALE_AFTER:g} s)")
+            c.execute("DELETE FROM running")
+            c.execute("INSERT OR REPLACE INTO meta VALUES ('runner', ?)",
+                      (json.dumps({**self.me, "heartbeat": time.time()}),))
+            c.execute("COMMIT")
+        except StoreError:
+            raise
+        except BaseException:
+            c.execute("ROLLBACK")
+            raise
+        self._thread = threading.Thread(target=self._beat, daemon=True)
+        self._thread.start()
+
+    def _beat(self) -> None:
+        conn = sqlite3.connect(self.path, timeout=30.0)
+        try:
+            while not self._stop.wait(5.0):
+                with conn:
+                    conn.execute(_MINE.replace("DELETE FROM meta", "UPDATE meta SET value = ?"),
+                                 (json.dumps({**self.me, "heartbeat": time.time()}), *self._who()))
+        finally:
+            conn.close()
+
+    def release(self) -> None:
+        self._stop.set()
+        if self._thread:
+            self._thread.join(timeout=10)
+        if self.store.conn.execute(_MINE, self._who()).rowcount:
+            self.store.conn.execute("DELETE FROM running")
+
+    def _who(self) -> tuple:
+        return (self.me["pid"], self.me["host"])
+
+    def __enter__(self):
+        self.acquire()
+        return self
+
+    def __exit__(self, *exc):
+        self.release()

@@ -19,7 +19,7 @@ import numpy as np
 import torch
 import torch.nn.functional as F
 
-from . import diagnostics, regularizers
+from . import checkpoint, diagnostics, faults, regularizers
 from .data import Dataset, split_and_scale
 from .metrics import METRICS, evaluate
 from .models import build_model, weight_tensors
@@ -36,6 +36,8 @@ class JobSpec:
     settings: dict          # {"data": {...}, "model": {...}, "train": {...}}, fully resolved
     monitor: str            # the rank metric, watched by early stopping
     data_id: str            # the dataset's fingerprint
+    checkpoint: str | None = None     # file for mid-job checkpoints (train.checkpoint_every)
+    time_limit: float | None = None   # overrides train.time_limit when set (--time-limit)
 
 
 @dataclass
@@ -123,7 +125,10 @@ def _train(spec: JobSpec, ds: Dataset, result: JobResult, start: float):
         return F.cross_entropy(out, y) if classify else F.mse_loss(out.squeeze(1), y)
 
     probe = slice(0, min(diagnostics.PROBE_ROWS, len(Xtr)))
-    result.diagnostics.update(diagnostics.at_init(net, Xtr[probe], ytr[probe], loss_fn))
+    every = train["checkpoint_every"] if spec.checkpoint else 0
+    saved = checkpoint.load(spec.checkpoint) if every else None
+    if saved is None:
+        result.diagnostics.update(diagnostics.at_init(net, Xtr[probe], ytr[probe], loss_fn))
 
     n = len(Xtr)
     bs = n if train["batch_size"] == "full" else min(int(train["batch_size"]), n)
@@ -132,9 +137,22 @@ def _train(spec: JobSpec, ds: Dataset, result: JobResult, start: float):
     curves = {"train_loss": [], "val_loss": [], f"val_{spec.monitor}": [], "lr": []}
     best_value, best_epoch, best_state, since_best = None, None, None, 0
     first_loss = None
-    limit = train["time_limit"]
-    step = 0
-    for epoch in range(train["epochs"]):
+    limit = spec.time_limit if spec.time_limit is not None else train["time_limit"]
+    step, start_epoch = 0, 0
+    if saved is not None:
+        net.load_state_dict(saved["model"])
+        opt.load_state_dict(saved["optimizer"])
+        shuffle_gen.set_state(saved["shuffle_rng"])
+        drop_gen.set_state(saved["dropout_rng"])
+        curves, result.diagnostics = saved["curves"], saved["diagnostics"]
+        best_value, best_epoch, best_state = saved["best_value"], saved["best_epoch"], saved["best_state"]
+        since_best, first_loss, step, start_epoch = (saved["since_best"], saved["first_loss"],
+                                                     saved["step"], saved["epoch"])
+        result.diagnostics = {**result.diagnostics, "resumed_from_epoch": start_epoch}
+    fault = faults.from_environment()
+    for epoch in range(start_epoch, train["epochs"]):
+        if fault is not None:
+            fault.maybe_fire(epoch)
         net.train()
         order = torch.randperm(n, generator=shuffle_gen)
         total, count = 0.0, 0
@@ -184,6 +202,13 @@ def _train(spec: JobSpec, ds: Dataset, result: JobResult, start: float):
             since_best += 1
             if train["patience"] > 0 and since_best >= train["patience"]:
                 break
+        if every and (epoch + 1) % every == 0 and epoch + 1 < train["epochs"]:
+            checkpoint.save(spec.checkpoint, {
+                "model": net.state_dict(), "optimizer": opt.state_dict(),
+                "shuffle_rng": shuffle_gen.get_state(), "dropout_rng": drop_gen.get_state(),
+                "curves": curves, "diagnostics": result.diagnostics, "best_value": best_value,
+                "best_epoch": best_epoch, "best_state": best_state, "since_best": since_best,
+                "first_loss": first_loss, "step": step, "epoch": epoch + 1})
     if best_state is not None:
         net.load_state_dict(best_state)  # early stopping keeps the best epoch's weights
     result.best_epoch = best_epoch if train["patience"] > 0 else result.epochs_run

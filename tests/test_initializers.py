@@ -108,7 +108,7 @@ def test_zeros_init_never_breaks_symmetry():
         opt.step()
     hidden = layers_with_weights(net)[1].weight
     assert torch.allclose(hidden, hidden[:1].expand_as(hidden))
-    assert float(layers_with_weights(net)[-1].weight.abs().max()) > 0  # the net did train
+    assert float(layers_with_weights(net)[-1].weight.detach().abs().max()) > 0  # the net did train
 
 
 def test_every_initializer_is_registered_and_runs():

@@ -1,0 +1,79 @@
+"""Run jobs on a dask.distributed cluster.
+
+Workers only compute: each task gets the job spec and its dataset (scattered to the cluster
+once per dataset), sets one torch thread and deterministic kernels, trains, and returns the
+result. The main process alone writes the store, so no shared filesystem is needed. A task
+whose worker dies is rescheduled by dask; after ``max_attempts`` deaths dask gives up on it
+(KilledWorker) and the job is recorded as failed.
+"""
+from __future__ import annotations
+
+from .errors import UserError
+from .train import JobResult, run_job
+
+__all__ = ["DaskExecutor"]
+
+
+def _task(spec, dataset, threads):
+    from .schedule import prepare_process
+
+    prepare_process(threads)
+    return run_job(spec, dataset)
+
+
+class DaskExecutor:
+    def __init__(self, on: str, workers: int, threads: int = 1, max_attempts: int = 2):
+        try:
+            import distributed  # noqa: F401
+        except ImportError:
+            raise UserError("running on Dask needs the dask.distributed package", key="--on", value=on,
+                            hint='Install it with: python -m pip install -c constraints.txt -e ".[dask]"') from None
+        self.on = on
+        self.workers = workers
+        self.threads = threads
+        self.max_attempts = max_attempts
+
+    def _client(self):
+        import dask
+        from distributed import Client, LocalCluster
+
+        dask.config.set({"distributed.scheduler.allowed-failures": max(0, self.max_attempts - 1)})
+        if self.on == "dask-local":
+            cluster = LocalCluster(n_workers=self.workers, threads_per_worker=1, processes=True,
+                                   host="127.0.0.1", dashboard_address=None, silence_logs=40)
+            return Client(cluster), cluster
+        address = "tcp://" + self.on[len("dask://"):]
+        try:
+            return Client(address, timeout=20), None
+        except (OSError, TimeoutError) as exc:
+            raise UserError(f"cannot reach the Dask scheduler ({exc})", key="--on", value=self.on,
+                            hint="Start one with 'dask scheduler' and workers with 'dask worker ADDRESS'") from None
+
+    def run(self, specs, datasets, on_result, on_start=None) -> None:
+        from distributed import as_completed
+        from distributed.client import FutureCancelledError
+
+        client, cluster = self._client()
+        try:
+            remote = {key: client.scatter(ds, broadcast=False) for key, ds in datasets.items()}
+            futures = {}
+            for spec in specs:
+                fut = client.submit(_task, spec, remote[spec.data_id], self.threads, key=f"job-{spec.key}",
+                                    pure=False)
+                futures[fut] = spec
+                if on_start:
+                    on_start(spec)
+            for fut in as_completed(futures):
+                spec = futures[fut]
+                try:
+                    result = fut.result()
+                except FutureCancelledError:
+                    continue
+                except Exception as exc:  # KilledWorker and friends: the cluster gave up on it
+                    result = JobResult(key=spec.key, status="failed",
+                                       error=f"{type(exc).__name__} on the Dask cluster: {exc}")
+                on_result(spec, result, 1)
+        finally:
+            client.close()
+            if cluster is not None:
+                cluster.close()
