@@ -1,7 +1,8 @@
 """Run jobs on a dask.distributed cluster.
 
-Workers only compute: each task gets the job spec and its dataset (scattered to the cluster
-once per dataset), sets one torch thread and deterministic kernels, trains, and returns the
+Workers only compute: each task carries the job spec and its dataset (small by design; sent
+with the task rather than scattered, so a dying worker cannot take the only copy with it),
+sets one torch thread and deterministic kernels, trains, and returns the
 result. The main process alone writes the store, so no shared filesystem is needed. A task
 whose worker dies is rescheduled by dask; after ``max_attempts`` deaths dask gives up on it
 (KilledWorker) and the job is recorded as failed.
@@ -44,7 +45,7 @@ class DaskExecutor:
             return Client(cluster), cluster
         address = "tcp://" + self.on[len("dask://"):]
         try:
-            return Client(address, timeout=20), None
+            return Client(address, timeout=5), None
         except (OSError, TimeoutError) as exc:
             raise UserError(f"cannot reach the Dask scheduler ({exc})", key="--on", value=self.on,
                             hint="Start one with 'dask scheduler' and workers with 'dask worker ADDRESS'") from None
@@ -55,10 +56,9 @@ class DaskExecutor:
 
         client, cluster = self._client()
         try:
-            remote = {key: client.scatter(ds, broadcast=False) for key, ds in datasets.items()}
             futures = {}
             for spec in specs:
-                fut = client.submit(_task, spec, remote[spec.data_id], self.threads, key=f"job-{spec.key}",
+                fut = client.submit(_task, spec, datasets[spec.data_id], self.threads, key=f"job-{spec.key}",
                                     pure=False)
                 futures[fut] = spec
                 if on_start:

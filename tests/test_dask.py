@@ -1,0 +1,84 @@
+"""dask: a real LocalCluster with two worker processes on 127.0.0.1; one worker is killed
+mid-grid; the grid completes with metrics bitwise equal to a local run."""
+import os
+import signal
+import sqlite3
+
+import pytest
+
+distributed = pytest.importorskip("distributed")
+
+from runner.grid import expand  # noqa: E402
+from runner.jobs import execute, make_executor  # noqa: E402
+from runner.recipe import load_recipe  # noqa: E402
+from runner.store import Store  # noqa: E402
+
+from conftest import invoke, write_recipe  # noqa: E402
+
+RECIPE = """
+    name = "dask"
+    seeds = [1, 2, 3]
+    [data]
+    source = "wine"
+    [model]
+    hidden = [32]
+    dropout = 0.2
+    [train]
+    epochs = 30
+    batch_size = 8
+    [factors]
+    "train.optimizer" = ["sgd", "adam"]
+"""
+
+
+def values(store):
+    with sqlite3.connect(store) as c:
+        return sorted(c.execute("SELECT j.seed, j.levels, m.split, m.name, m.value FROM metrics m "
+                                "JOIN jobs j ON j.key = m.job_key"))
+
+
+def test_dask_cluster_with_a_killed_worker_matches_local(tmp_path):
+    path = write_recipe(tmp_path, RECIPE)
+    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                       dashboard_address=None, silence_logs=40)
+    client = distributed.Client(cluster)
+    try:
+        pids = list(client.run(os.getpid).values())
+        assert len(pids) == 2
+        grid = expand(load_recipe(path))
+        killed = []
+
+        def kill_one(job, result):
+            if not killed:
+                os.kill(pids[0], signal.SIGKILL)  # a worker dies with jobs still to run
+                killed.append(pids[0])
+
+        store_path = tmp_path / "dask.sqlite"
+        with Store(store_path) as db:
+            executor = make_executor(f"dask://{cluster.scheduler_address.split('://')[1]}", workers=2,
+                                     max_attempts=3)
+            execute(grid, db, list(grid), executor, on_stored=kill_one)
+            statuses = [r["status"] for r in db.jobs()]
+        assert killed and len(statuses) == 6 and set(statuses) == {"done"}
+    finally:
+        client.close()
+        cluster.close()
+    local = tmp_path / "local.sqlite"
+    assert invoke("run", path, "--store", local, "--workers", 1, "-q").exit_code == 0
+    assert values(store_path) == values(local)
+
+
+def test_dask_local_option_runs_the_grid(tmp_path):
+    path = write_recipe(tmp_path, RECIPE.replace("epochs = 30", "epochs = 3"))
+    store = tmp_path / "s.sqlite"
+    result = invoke("run", path, "--store", store, "--on", "dask-local", "--workers", 2, "-q")
+    assert result.exit_code == 0, result.stderr
+    local = tmp_path / "local.sqlite"
+    invoke("run", path, "--store", local, "--workers", 1, "-q")
+    assert values(store) == values(local)
+
+
+def test_unreachable_scheduler_is_a_clear_error(tmp_path):
+    path = write_recipe(tmp_path, RECIPE)
+    result = invoke("run", path, "--store", tmp_path / "s.sqlite", "--on", "dask://127.0.0.1:9")
+    assert result.exit_code == 2 and "cannot reach the Dask scheduler" in result.stderr
