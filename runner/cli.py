@@ -181,5 +181,27 @@ def diff(old, new, fmt, fail_on_worse):
         sys.exit(1)
 
 
+@cli.command()
+@click.argument("recipe_path", metavar="RECIPE", type=click.Path())
+@store_option
+@click.option("--out", type=click.Path(dir_okay=False), default=None,
+              help="HTML file to write (default: <name>-report.html beside the store).")
+def report(recipe_path, store, out):
+    """Write a self-contained HTML report of RECIPE's stored results."""
+    from .report import build_report
+    from .store import Store
+
+    try:
+        recipe, grid = _load(recipe_path)
+        path = _store_path(recipe, store)
+        with Store(path, create=False) as db:
+            text = build_report(grid, db)
+    except UserError as err:
+        _fail(err)
+    target = Path(out) if out else path.with_name(f"{recipe.name}-report.html")
+    target.write_text(text, encoding="utf-8")
+    click.echo(f"wrote {target}")
+
+
 def main() -> None:
     cli(prog_name="recipe")
