@@ -56,10 +56,13 @@ def cli():
               help="Seconds one job may train before it is stopped as timed out.")
 @click.option("--fresh", is_flag=True, help="Delete this grid's stored results first (asks to confirm).")
 @click.option("--yes", "-y", is_flag=True, help="Confirm --fresh without asking.")
+@click.option("--mlflow", "mlflow_uri", default=None, metavar="URI",
+              help="Also log every finished job to this MLflow tracking URI (e.g. sqlite:///mlflow.db).")
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines; print only the leaderboard.")
+@click.option("--verbose", "-v", is_flag=True, help="A line per job even on a terminal, with failure reasons.")
 @format_option
 def run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, time_limit, fresh, yes,
-        quiet, fmt):
+        mlflow_uri, quiet, verbose, fmt):
     """Train every job of RECIPE that has no stored result, then print the leaderboard."""
     from .jobs import execute, make_executor, plan
     from .progress import Progress
@@ -78,10 +81,13 @@ def run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, ti
             todo = plan(grid, db, retry_failed)
             if not quiet:
                 click.echo(todo.describe(), err=True)
-            progress = Progress(len(todo.to_run), grid.rank_by, grid.goal, quiet=quiet)
+            progress = Progress(len(todo.to_run), grid.rank_by, grid.goal, quiet=quiet,
+                                live=False if verbose else None, verbose=verbose)
             executor = make_executor(where, workers, threads, max_attempts, time_limit)
+            tracker = _Tracker(mlflow_uri or recipe.tracking.get("mlflow"), grid, db)
             try:
-                execute(grid, db, todo.to_run, executor, progress, time_limit)
+                execute(grid, db, todo.to_run, executor, progress, time_limit, on_stored=tracker.stored)
+                tracker.finish(recipe_path, quiet)
             except KeyboardInterrupt:
                 done = len(db.finished_keys() & {j.key for j in grid})
                 click.echo(f"\nInterrupted: {done} of {todo.total} jobs are stored. Run the same "
@@ -90,6 +96,42 @@ def run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, ti
             click.echo(render(leaderboard(grid, db), fmt or "table"), nl=False)
     except UserError as err:
         _fail(err)
+
+
+class _Tracker:
+    """MLflow logging beside the store: failures are reported, never fatal to the results."""
+
+    def __init__(self, uri, grid, db):
+        self.uri, self.grid, self.db = uri, grid, db
+        self.exporter = None
+        self.errors: list[str] = []
+        if uri:
+            from .mlflow_export import Exporter
+
+            self.exporter = Exporter(uri, grid, db)
+
+    def stored(self, job, result) -> None:
+        if self.exporter is None or self.errors:
+            return  # after a first failure, leave the rest to the catch-up at the end
+        try:
+            row = self.db.jobs([job.key])[0]
+            self.exporter.export(job, row, self.db.metrics().get(job.key, {}),
+                                 self.db.curves([job.key]).get(job.key, {}))
+        except Exception as exc:
+            self.errors.append(f"{type(exc).__name__}: {exc}")
+
+    def finish(self, recipe_path, quiet: bool) -> None:
+        if self.exporter is None:
+            return
+        from .mlflow_export import export_all
+
+        sent, _, errors = export_all(self.uri, self.grid, self.db)
+        if errors:
+            click.echo(f"MLflow export to {self.uri} failed for {len(errors)} job(s) (first: {errors[0][:300]}). "
+                       f"The results are safe in the store; retry with: recipe export-mlflow {recipe_path} "
+                       f"--uri {self.uri}", err=True)
+        elif not quiet:
+            click.echo(f"MLflow: all stored jobs are logged at {self.uri}", err=True)
 
 
 def _confirm_fresh(db, grid, yes: bool) -> None:
@@ -201,6 +243,28 @@ def report(recipe_path, store, out):
     target = Path(out) if out else path.with_name(f"{recipe.name}-report.html")
     target.write_text(text, encoding="utf-8")
     click.echo(f"wrote {target}")
+
+
+@cli.command("export-mlflow")
+@click.argument("recipe_path", metavar="RECIPE", type=click.Path())
+@store_option
+@click.option("--uri", required=True, help="MLflow tracking URI, e.g. sqlite:///mlflow.db.")
+def export_mlflow(recipe_path, store, uri):
+    """Log RECIPE's stored jobs to MLflow; jobs already there are skipped, so it can be retried."""
+    from .mlflow_export import export_all
+    from .store import Store
+
+    try:
+        recipe, grid = _load(recipe_path)
+        with Store(_store_path(recipe, store), create=False) as db:
+            sent, before, errors = export_all(uri, grid, db)
+    except UserError as err:
+        _fail(err)
+    click.echo(f"{sent} jobs logged to {uri}; {before} were already there.")
+    if errors:
+        click.echo(f"{len(errors)} failed (first: {errors[0][:300]}); nothing was lost: run this again to retry.",
+                   err=True)
+        sys.exit(1)
 
 
 def main() -> None:

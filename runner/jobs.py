@@ -73,7 +73,7 @@ def execute(grid: Grid, store: Store, todo: list[Job], executor, progress: Progr
         if progress is not None:
             value = result.metrics.get(split, {}).get(metric)
             label = ", ".join(labels.values()) or "base"
-            progress.update(label, job.seed, result.status, value, result.duration)
+            progress.update(label, job.seed, result.status, value, result.duration, result.error)
         if on_stored is not None:
             on_stored(job, result)
 

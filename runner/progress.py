@@ -17,7 +17,8 @@ def _clock(seconds: float) -> str:
 
 class Progress:
     def __init__(self, total: int, metric: str, goal: str, stream=None, live: bool | None = None,
-                 quiet: bool = False):
+                 quiet: bool = False, verbose: bool = False):
+        self.verbose = verbose
         self.total = total
         self.metric = metric
         self.goal = goal
@@ -29,7 +30,8 @@ class Progress:
         self.values: dict[str, list[float]] = {}
         self.finished = 0
 
-    def update(self, label: str, seed: int, status: str, value: float | None, seconds: float) -> None:
+    def update(self, label: str, seed: int, status: str, value: float | None, seconds: float,
+               error: str | None = None) -> None:
         self.finished += 1
         self.counts[status] = self.counts.get(status, 0) + 1
         if value is not None and status == "done":
@@ -48,6 +50,8 @@ class Progress:
             shown = f"{self.metric}={value:.4f}" if value is not None else ""
             self.stream.write(f"[{self.finished}/{self.total}] {status:<8} {label} seed {seed} "
                               f"{shown} ({seconds:.1f}s; ~{_clock(left)} left)\n")
+            if self.verbose and error:
+                self.stream.write(f"    {error}\n")
         self.stream.flush()
 
     def close(self) -> None:

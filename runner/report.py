@@ -176,7 +176,13 @@ def _bars_figure(doc: dict, key: str, title: str, plt):
 
 
 def build_report(grid: Grid, store: Store) -> str:
-    import matplotlib
+    try:
+        import matplotlib
+    except ImportError:
+        from .errors import UserError
+
+        raise UserError("the report needs matplotlib",
+                        hint='Install it with: python -m pip install -c constraints.txt -e ".[report]"') from None
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
