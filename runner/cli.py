@@ -267,5 +267,65 @@ def export_mlflow(recipe_path, store, uri):
         sys.exit(1)
 
 
+@cli.command()
+@click.argument("recipe_path", metavar="RECIPE", type=click.Path())
+@store_option
+@click.option("--workers", type=click.IntRange(1), default=None, help="Workers to estimate for (default: cores).")
+@click.option("--no-probe", is_flag=True, help="Skip the timed probe (no run-time estimate).")
+def check(recipe_path, store, workers, no_probe):
+    """Validate RECIPE and print its plan: factors, jobs, what is stored, a time estimate."""
+    from .plan import describe_plan
+    from .schedule import default_workers
+    from .store import Store
+
+    try:
+        recipe, grid = _load(recipe_path)
+        path = _store_path(recipe, store)
+        workers = workers or recipe.run.get("workers") or default_workers()
+        if path.exists():
+            with Store(path, create=False) as db:
+                text, _ = describe_plan(grid, db, workers, probe=not no_probe)
+        else:
+            text, _ = describe_plan(grid, None, workers, probe=not no_probe)
+    except UserError as err:
+        _fail(err)
+    click.echo(f"{recipe_path}: valid.")
+    click.echo(text, nl=False)
+
+
+@cli.command()
+def schema():
+    """Print the JSON Schema of the recipe format (for editors with TOML schema support)."""
+    import json
+
+    from .schema import recipe_schema
+
+    click.echo(json.dumps(recipe_schema(), indent=2))
+
+
+@cli.command()
+@click.argument("source")
+@click.option("--out", type=click.Path(dir_okay=False), default=None,
+              help="Recipe file to write (default: <data name>.toml here).")
+@click.option("--target", default=None, help="The target column (default: guessed from the data).")
+@click.option("--force", is_flag=True, help="Overwrite an existing file.")
+def new(source, out, target, force):
+    """Write a commented starter recipe for SOURCE: a CSV or NPZ file, or a bundled data set."""
+    from .grid import expand
+    from .recipe import parse_recipe
+    from .starter import starter_recipe
+
+    target_path = Path(out) if out else Path(f"{Path(source).stem}.toml")
+    try:
+        if target_path.exists() and not force:
+            raise UserError("file exists", where=str(target_path), hint="Choose another --out or pass --force")
+        text = starter_recipe(source, target_path, target)
+        expand(parse_recipe(text, target_path.resolve()))  # never write a starter that does not validate
+    except UserError as err:
+        _fail(err)
+    target_path.write_text(text)
+    click.echo(f"wrote {target_path}; next: recipe check {target_path}")
+
+
 def main() -> None:
     cli(prog_name="recipe")

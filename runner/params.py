@@ -76,6 +76,8 @@ class Integer(Constraint):
     high: int | None = None
 
     def check(self, value: Any) -> int:
+        if isinstance(value, float) and value.is_integer():
+            value = int(value)  # 30.0 is 30, as JSON Schema's "integer" also says
         if isinstance(value, bool) or not isinstance(value, int):
             raise Invalid("must be a whole number", self.allowed())
         if self.low is not None and value < self.low:

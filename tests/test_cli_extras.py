@@ -1,0 +1,89 @@
+"""check, new, completion and progress: the commands around a run."""
+import io
+import os
+import re
+import subprocess
+
+from runner.progress import Progress
+
+from conftest import DATA, PYTHON, ROOT, invoke, subprocess_env, write_recipe
+
+RECIPE = """
+    name = "plan"
+    seeds = [1, 2, 3]
+    [data]
+    source = "iris"
+    [model]
+    hidden = [8]
+    [train]
+    epochs = 3
+    [factors]
+    "train.optimizer" = ["sgd", "adam"]
+"""
+
+
+def test_check_counts_on_a_partly_finished_store(tmp_path):
+    path = write_recipe(tmp_path, RECIPE)
+    store = tmp_path / "s.sqlite"
+    assert invoke("run", path, "--store", store, "--workers", 1, "-q").exit_code == 0
+    path.write_text(path.read_text().replace('["sgd", "adam"]', '["sgd", "adam", "adagrad"]'))
+    result = invoke("check", path, "--store", store, "--workers", 2)
+    assert result.exit_code == 0, result.stderr
+    out = result.stdout
+    assert "3 configurations x 3 seeds = 9 jobs: 6 done, 0 diverged, 0 failed, 0 timed out, 3 to run" in out
+    assert "train.optimizer: sgd (baseline), adam, adagrad" in out
+    assert re.search(r"estimated run time: about \d+ s with 2 worker\(s\) \(an estimate", out)
+    quiet = invoke("check", path, "--store", store, "--no-probe").stdout
+    assert "estimated" not in quiet
+
+
+def test_check_without_store_and_on_a_bad_recipe(tmp_path):
+    path = write_recipe(tmp_path, RECIPE)
+    assert "0 done" in invoke("check", path, "--store", tmp_path / "none.sqlite", "--no-probe").stdout
+    assert not (tmp_path / "none.sqlite").exists()
+    bad = invoke("check", DATA / "negative_lr.toml")
+    assert bad.exit_code == 2 and "train.lr" in bad.stderr
+
+
+def test_new_writes_a_valid_starter_for_a_csv(tmp_path):
+    out = tmp_path / "kiln.toml"
+    result = invoke("new", ROOT / "data" / "kiln_batches.csv", "--out", out)
+    assert result.exit_code == 0, result.stderr
+    text = out.read_text()
+    assert 'target = "outcome"' in text and "guessed (classification)" in text
+    assert invoke("check", out, "--no-probe").exit_code == 0
+    again = invoke("new", ROOT / "data" / "kiln_batches.csv", "--out", out)
+    assert again.exit_code == 2 and "file exists" in again.stderr
+
+
+def test_new_for_a_regression_csv_and_images(tmp_path):
+    lines = (DATA / "iris_sample.csv").read_text().splitlines()
+    (tmp_path / "num.csv").write_text("\n".join(l.rsplit(",", 1)[0] for l in lines[1:]) + "\n")
+    assert invoke("new", tmp_path / "num.csv", "--out", tmp_path / "n.toml").exit_code == 0
+    assert 'target = "petal_width"   # guessed (regression)' in (tmp_path / "n.toml").read_text()
+    assert invoke("new", "digits", "--out", tmp_path / "d.toml").exit_code == 0
+    assert 'kind = "cnn"' in (tmp_path / "d.toml").read_text()
+
+
+def test_shell_completion_script_from_click():
+    env = subprocess_env()
+    env["_RECIPE_COMPLETE"] = "bash_source"
+    proc = subprocess.run([PYTHON, "-m", "runner"], env=env, capture_output=True, text=True)
+    assert proc.returncode == 0 and "_RECIPE_COMPLETE" in proc.stdout and "complete " in proc.stdout
+
+
+def test_progress_live_line_and_plain_lines():
+    live = io.StringIO()
+    p = Progress(4, "val.accuracy", "max", stream=live, live=True)
+    p.update("adam", 1, "done", 0.9, 1.0)
+    p.update("sgd", 1, "failed", None, 1.0, "ValueError: x")
+    assert "\r" in live.getvalue() and "[2/4] failed 1, diverged 0" in live.getvalue()
+    assert "best adam: 0.9000" in live.getvalue()
+    plain = io.StringIO()
+    p = Progress(2, "val.accuracy", "max", stream=plain, live=False, verbose=True)
+    p.update("sgd", 3, "failed", None, 0.5, "ValueError: x")
+    assert plain.getvalue().splitlines() == [
+        "[1/2] failed   sgd seed 3  (0.5s; ~0:00 left)", "    ValueError: x"]
+    quiet = io.StringIO()
+    Progress(2, "val.accuracy", "max", stream=quiet, quiet=True).update("a", 1, "done", 0.5, 0.1)
+    assert quiet.getvalue() == ""
