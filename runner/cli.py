@@ -54,6 +54,8 @@ def cli():
               help="Tries per job when its worker process dies.")
 @click.option("--time-limit", type=click.FloatRange(0, min_open=True), default=None,
               help="Seconds one job may train before it is stopped as timed out.")
+@click.option("--no-stack", is_flag=True,
+              help="Train every job on its own instead of stacking same-shaped jobs into one computation.")
 @click.option("--fresh", is_flag=True, help="Delete this grid's stored results first (asks to confirm).")
 @click.option("--yes", "-y", is_flag=True, help="Confirm --fresh without asking.")
 @click.option("--mlflow", "mlflow_uri", default=None, metavar="URI",
@@ -61,7 +63,7 @@ def cli():
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines; print only the leaderboard.")
 @click.option("--verbose", "-v", is_flag=True, help="A line per job even on a terminal, with failure reasons.")
 @format_option
-def run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, time_limit, fresh, yes,
+def run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, time_limit, no_stack, fresh, yes,
         mlflow_uri, quiet, verbose, fmt):
     """Train every job of RECIPE that has no stored result, then print the leaderboard."""
     from .jobs import execute, make_executor, plan
@@ -86,7 +88,8 @@ def run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, ti
             executor = make_executor(where, workers, threads, max_attempts, time_limit)
             tracker = _Tracker(mlflow_uri or recipe.tracking.get("mlflow"), grid, db)
             try:
-                execute(grid, db, todo.to_run, executor, progress, time_limit, on_stored=tracker.stored)
+                execute(grid, db, todo.to_run, executor, progress, time_limit, on_stored=tracker.stored,
+                        stack=not no_stack)
                 tracker.finish(recipe_path, quiet)
             except KeyboardInterrupt:
                 done = len(db.finished_keys() & {j.key for j in grid})

@@ -10,16 +10,16 @@ whose worker dies is rescheduled by dask; after ``max_attempts`` deaths dask giv
 from __future__ import annotations
 
 from .errors import UserError
-from .train import JobResult, run_job
+from .train import JobResult
 
 __all__ = ["DaskExecutor"]
 
 
-def _task(spec, dataset, threads):
-    from .schedule import prepare_process
+def _task(item, dataset, threads):
+    from .schedule import prepare_process, run_item
 
     prepare_process(threads)
-    return run_job(spec, dataset)
+    return run_item(item, {item[0].data_id: dataset})
 
 
 class DaskExecutor:
@@ -50,29 +50,31 @@ class DaskExecutor:
             raise UserError(f"cannot reach the Dask scheduler ({exc})", key="--on", value=self.on,
                             hint="Start one with 'dask scheduler' and workers with 'dask worker ADDRESS'") from None
 
-    def run(self, specs, datasets, on_result, on_start=None) -> None:
+    def run(self, items, datasets, on_result, on_start=None) -> None:
         from distributed import as_completed
         from distributed.client import FutureCancelledError
 
         client, cluster = self._client()
         try:
             futures = {}
-            for spec in specs:
-                fut = client.submit(_task, spec, datasets[spec.data_id], self.threads, key=f"job-{spec.key}",
-                                    pure=False)
-                futures[fut] = spec
+            for item in items:
+                fut = client.submit(_task, item, datasets[item[0].data_id], self.threads,
+                                    key=f"job-{item[0].key}-{len(item)}", pure=False)
+                futures[fut] = item
                 if on_start:
-                    on_start(spec)
+                    for spec in item:
+                        on_start(spec)
             for fut in as_completed(futures):
-                spec = futures[fut]
+                item = futures[fut]
                 try:
-                    result = fut.result()
+                    results = fut.result()
                 except FutureCancelledError:
                     continue
                 except Exception as exc:  # KilledWorker and friends: the cluster gave up on it
-                    result = JobResult(key=spec.key, status="failed",
-                                       error=f"{type(exc).__name__} on the Dask cluster: {exc}")
-                on_result(spec, result, 1)
+                    results = [JobResult(key=s.key, status="failed",
+                                         error=f"{type(exc).__name__} on the Dask cluster: {exc}") for s in item]
+                for spec, result in zip(item, results):
+                    on_result(spec, result, 1)
         finally:
             client.close()
             if cluster is not None:

@@ -54,8 +54,11 @@ def make_executor(on: str, workers: int, threads: int = 1, max_attempts: int = 2
 
 
 def execute(grid: Grid, store: Store, todo: list[Job], executor, progress: Progress | None = None,
-            time_limit: float | None = None, on_stored=None) -> None:
-    """Run ``todo``; each result is committed to the store as soon as it arrives."""
+            time_limit: float | None = None, on_stored=None, stack: bool = True) -> None:
+    """Run ``todo``; each result is committed to the store as soon as it arrives. With
+    ``stack``, same-shaped jobs train together as one stacked computation (stack.py)."""
+    from .stack import group_specs
+
     if not todo:
         return
     by_key = {j.key: j for j in todo}
@@ -63,9 +66,12 @@ def execute(grid: Grid, store: Store, todo: list[Job], executor, progress: Progr
     ckpt_dir = checkpoint_dir(store)
 
     def on_start(spec):
-        store.mark_running(spec.key)
+        if spec.key in by_key:
+            store.mark_running(spec.key)
 
     def on_result(spec, result, attempts):
+        if spec.key not in by_key:
+            return  # a stacked group's member that is already stored: written once, never again
         job = by_key[spec.key]
         labels = grid.labels(job.config)
         store.write_result(job, labels, grid.recipe.hash, result, attempts)
@@ -77,13 +83,19 @@ def execute(grid: Grid, store: Store, todo: list[Job], executor, progress: Progr
         if on_stored is not None:
             on_stored(job, result)
 
-    specs = [j.spec(checkpoint=str(ckpt_dir / f"{j.key}.pt")
-                    if j.config.settings["train"]["checkpoint_every"] else None,
-                    time_limit=time_limit) for j in todo]
+    def spec_of(j):
+        ckpt = ckpt_dir / f"{j.key}.pt" if j.config.settings["train"]["checkpoint_every"] else None
+        return j.spec(checkpoint=str(ckpt) if ckpt else None, time_limit=time_limit)
+
+    # Groups are formed over the whole grid (see stack.group_specs); a group with any job to run
+    # runs whole, and only its unfinished members' results are written.
+    everything = [spec_of(j) for j in grid] if stack else [spec_of(j) for j in todo]
+    items = [item for item in group_specs(everything, grid.datasets, enabled=stack)
+             if any(s.key in by_key for s in item)]
     with RunnerLock(store):
         store.remember_recipe(grid.recipe)
         try:
-            executor.run(specs, grid.datasets, on_result, on_start)
+            executor.run(items, grid.datasets, on_result, on_start)
         finally:
             if progress is not None:
                 progress.close()

@@ -4,7 +4,7 @@ from __future__ import annotations
 import numpy as np
 from sklearn import metrics as skm
 
-__all__ = ["METRICS", "goal", "evaluate"]
+__all__ = ["METRICS", "goal", "evaluate", "quick"]
 
 # metric -> (task, goal)
 METRICS = {
@@ -42,3 +42,31 @@ def evaluate(task: str, y_true: np.ndarray, output: np.ndarray, n_classes: int =
         "mae": float(skm.mean_absolute_error(y_true, output)),
         "r2": float(skm.r2_score(y_true, output)),
     }
+
+
+def quick(metric: str, y_true: np.ndarray, output: np.ndarray, n_classes: int = 0) -> float:
+    """One metric by its formula in numpy, for the per-epoch curves (sklearn's input checks
+    cost more than a small network's epoch). Tests hold it equal to sklearn.metrics; final
+    metrics always come from ``evaluate``."""
+    if metric == "accuracy":
+        return float(np.mean(output.argmax(axis=1) == y_true))
+    if metric == "f1_macro":
+        pred = output.argmax(axis=1)
+        cm = np.bincount(y_true * n_classes + pred, minlength=n_classes * n_classes).reshape(n_classes, n_classes)
+        tp = np.diag(cm).astype(float)
+        denom = cm.sum(axis=0) + cm.sum(axis=1)
+        f1 = np.divide(2 * tp, denom, out=np.zeros(n_classes), where=denom > 0)
+        return float(f1.mean())
+    if metric == "log_loss":
+        probs = np.clip(output, 1e-15, 1.0)
+        probs = probs / probs.sum(axis=1, keepdims=True)
+        return float(-np.mean(np.log(probs[np.arange(len(y_true)), y_true])))
+    err = y_true - output
+    if metric == "rmse":
+        return float(np.sqrt(np.mean(err ** 2)))
+    if metric == "mae":
+        return float(np.mean(np.abs(err)))
+    if metric == "r2":
+        total = np.sum((y_true - y_true.mean()) ** 2)
+        return float(1 - np.sum(err ** 2) / total) if total > 0 else 0.0
+    raise KeyError(metric)

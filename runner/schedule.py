@@ -1,6 +1,7 @@
 """Executors: run job specs and hand each result back, in the main process, as it arrives.
 
-The interface is ``run(specs, datasets, on_result, on_start=None)``:
+The interface is ``run(items, datasets, on_result, on_start=None)``, where an item is a tuple
+of job specs trained together (one spec, or a stacked group; see stack.py):
 - ``SerialExecutor`` runs in this process (for debugging and one-worker runs);
 - ``PoolExecutor`` runs spawned worker processes that import torch once and take many jobs;
 - ``DaskExecutor`` (dask_executor.py) sends jobs to a dask.distributed cluster.
@@ -53,22 +54,34 @@ def prepare_process(threads: int, datasets: dict[str, Dataset] | None = None, wo
         signal.signal(signal.SIGINT, signal.SIG_IGN)  # the main process decides what Ctrl-C does
 
 
-def _work(spec: JobSpec) -> JobResult:
-    return run_job(spec, _DATASETS[spec.data_id])
+def run_item(item: tuple[JobSpec, ...], datasets: dict[str, Dataset]) -> list[JobResult]:
+    """Train one work item: a single job, or a stacked group of same-shaped jobs."""
+    ds = datasets[item[0].data_id]
+    from .stack import stack_key, run_group
+
+    if len(item) == 1 and stack_key(item[0]) is None:
+        return [run_job(item[0], ds)]
+    return run_group(item, ds)
+
+
+def _work(item: tuple[JobSpec, ...]) -> list[JobResult]:
+    return run_item(item, _DATASETS)
 
 
 class SerialExecutor:
     def __init__(self, threads: int = 1):
         self.threads = threads
 
-    def run(self, specs, datasets, on_result: OnResult, on_start: OnStart | None = None) -> None:
+    def run(self, items, datasets, on_result: OnResult, on_start: OnStart | None = None) -> None:
         previous = torch.get_num_threads()
         prepare_process(self.threads, datasets)
         try:
-            for spec in specs:
-                if on_start:
-                    on_start(spec)
-                on_result(spec, _work(spec), 1)
+            for item in items:
+                for spec in item:
+                    if on_start:
+                        on_start(spec)
+                for spec, result in zip(item, _work(item)):
+                    on_result(spec, result, 1)
         finally:
             torch.set_num_threads(previous)
 
@@ -77,13 +90,13 @@ def _worker_main(conn, threads: int, datasets: dict) -> None:
     prepare_process(threads, datasets, worker=True)
     while True:
         try:
-            spec = conn.recv()
+            item = conn.recv()
         except EOFError:
             return
-        if spec is None:
+        if item is None:
             return
         conn.send(("start", None))  # the job's clock starts here, not while the worker boots
-        conn.send(("result", _work(spec)))
+        conn.send(("result", _work(item)))
 
 
 class _Worker:
@@ -92,11 +105,11 @@ class _Worker:
         self.proc = ctx.Process(target=_worker_main, args=(child, threads, datasets), daemon=True)
         self.proc.start()
         child.close()
-        self.spec: JobSpec | None = None
+        self.spec: tuple[JobSpec, ...] | None = None  # the work item it holds
         self.started: float | None = None
 
-    def read(self) -> tuple[JobResult | None, bool]:
-        """(the finished job's result or None, whether the pipe broke)."""
+    def read(self) -> tuple[list[JobResult] | None, bool]:
+        """(the finished item's results or None, whether the pipe broke)."""
         try:
             while self.conn.poll():
                 kind, payload = self.conn.recv()
@@ -126,8 +139,9 @@ def _death(exitcode: int | None) -> str:
 class PoolExecutor:
     """Spawned worker processes, each holding one job at a time.
 
-    A worker that dies (killed, out of memory, a crash in native code) is replaced; the job it
-    held is tried again up to ``max_attempts`` in all, then recorded as failed with the reason.
+    A worker that dies (killed, out of memory, a crash in native code) is replaced; the work it
+    held (one job or a stacked group) is tried again up to ``max_attempts`` in all, then each of
+    its jobs is recorded as failed with the reason.
     Other workers' jobs are not disturbed. With ``hard_limit`` seconds, a job still running
     a grace period past it (stuck where the job's own time check cannot run) has its worker
     killed and is recorded as timed out (``grace``: a job's own check normally stops it first).
@@ -140,9 +154,9 @@ class PoolExecutor:
         self.max_attempts = max_attempts
         self.hard_limit = hard_limit
 
-    def run(self, specs, datasets, on_result: OnResult, on_start: OnStart | None = None) -> None:
+    def run(self, items, datasets, on_result: OnResult, on_start: OnStart | None = None) -> None:
         ctx = multiprocessing.get_context("spawn")
-        queue = deque(specs)
+        queue = deque(items)
         attempts: dict[str, int] = {}
         pool = [_Worker(ctx, self.threads, datasets) for _ in range(min(self.workers, len(queue)))]
         try:
@@ -151,38 +165,40 @@ class PoolExecutor:
                     if w.spec is None and queue:
                         w.spec, w.started = queue.popleft(), None
                         if on_start:
-                            on_start(w.spec)
+                            for spec in w.spec:
+                                on_start(spec)
                         w.conn.send(w.spec)
                 ready = set(wait([w.conn for w in pool] + [w.proc.sentinel for w in pool], timeout=1.0))
                 for i, w in enumerate(list(pool)):
                     result, broken = w.read() if w.conn in ready else (None, False)
                     if result is not None:
-                        spec, w.spec = w.spec, None
-                        on_result(spec, result, attempts.get(spec.key, 0) + 1)
+                        item, w.spec = w.spec, None
+                        for spec, res in zip(item, result):
+                            on_result(spec, res, attempts.get(item[0].key, 0) + 1)
                         continue
                     overdue = (w.spec is not None and self.hard_limit and w.started is not None
                                and time.monotonic() - w.started > self.hard_limit + grace(self.hard_limit))
                     if w.proc.sentinel in ready or broken or overdue:
-                        spec = w.spec
+                        item = w.spec
                         if not overdue:
                             w.proc.join(timeout=5)  # reap it, to read how it died
                         w.stop()
                         code = w.proc.exitcode
                         pool[i] = _Worker(ctx, self.threads, datasets)
-                        if spec is None:
+                        if item is None:
                             continue
+                        tries = attempts[item[0].key] = attempts.get(item[0].key, 0) + 1
                         if overdue:
-                            on_result(spec, JobResult(key=spec.key, status="timeout",
-                                                      error=f"worker killed {grace(self.hard_limit):g} s "
-                                                            f"past the {self.hard_limit:g} s time limit"),
-                                      attempts.get(spec.key, 0) + 1)
-                            continue
-                        tries = attempts[spec.key] = attempts.get(spec.key, 0) + 1
-                        if tries < self.max_attempts:
-                            queue.appendleft(spec)
+                            error = (f"worker killed {grace(self.hard_limit):g} s past the "
+                                     f"{self.hard_limit:g} s time limit")
+                            for spec in item:
+                                on_result(spec, JobResult(key=spec.key, status="timeout", error=error), tries)
+                        elif tries < self.max_attempts:
+                            queue.appendleft(item)
                         else:
-                            on_result(spec, JobResult(key=spec.key, status="failed",
-                                                      error=f"{_death(code)} on each of {tries} attempts"), tries)
+                            for spec in item:
+                                on_result(spec, JobResult(key=spec.key, status="failed",
+                                                          error=f"{_death(code)} on each of {tries} attempts"), tries)
         finally:
             for w in pool:
                 if w.proc.is_alive() and w.spec is None:

@@ -21,12 +21,12 @@ import torch.nn.functional as F
 
 from . import checkpoint, diagnostics, faults, regularizers
 from .data import Dataset, split_and_scale
-from .metrics import METRICS, evaluate
+from .metrics import METRICS, evaluate, quick
 from .models import build_model, weight_tensors
 from .optimizers import build_optimizer
 from .schedules import lr_at
 
-__all__ = ["JobSpec", "JobResult", "run_job", "train_model", "environment"]
+__all__ = ["JobSpec", "JobResult", "run_job", "train_model", "environment", "score", "streams"]
 
 
 @dataclass(frozen=True)
@@ -71,7 +71,7 @@ def environment() -> dict:
             "pid": os.getpid()}
 
 
-def _streams(seed: int) -> tuple[torch.Generator, torch.Generator, torch.Generator]:
+def streams(seed: int) -> tuple[torch.Generator, torch.Generator, torch.Generator]:
     init_s, shuffle_s, drop_s = np.random.SeedSequence(seed).generate_state(3)
     return tuple(torch.Generator().manual_seed(int(s)) for s in (init_s, shuffle_s, drop_s))
 
@@ -115,7 +115,7 @@ def _train(spec: JobSpec, ds: Dataset, result: JobResult, start: float):
 
     Xtr, ytr = tensors(sp.X_train, sp.y_train)
     Xva, _ = tensors(sp.X_val, sp.y_val)
-    init_gen, shuffle_gen, drop_gen = _streams(spec.seed)
+    init_gen, shuffle_gen, drop_gen = streams(spec.seed)
     in_shape = tuple(Xtr.shape[1:])
     net = build_model(model_s, in_shape, n_out, init_gen, drop_gen)
     opt = build_optimizer(net, train)
@@ -183,7 +183,7 @@ def _train(spec: JobSpec, ds: Dataset, result: JobResult, start: float):
             if limit and time.perf_counter() - start > limit:
                 result.curves, result.epochs_run = curves, epoch + 1
                 raise _Stop("timeout", f"time limit of {limit:g} s reached at epoch {epoch + 1}")
-        val = _evaluate(net, Xva, sp.y_val, ds, sp)
+        val = _evaluate(net, Xva, sp.y_val, ds, sp, only=spec.monitor)
         curves["train_loss"].append(total / count)
         curves["val_loss"].append(val["loss"])
         curves[f"val_{spec.monitor}"].append(val[spec.monitor])
@@ -216,7 +216,10 @@ def _train(spec: JobSpec, ds: Dataset, result: JobResult, start: float):
     for split, X, y in (("train", sp.X_train, sp.y_train), ("val", sp.X_val, sp.y_val),
                         ("test", sp.X_test, sp.y_test)):
         if X is not None:
-            out = _evaluate(net, torch.from_numpy(np.ascontiguousarray(X)), y, ds, sp)
+            # val and test: every metric through sklearn.metrics; train: the monitored metric
+            # only (it feeds the overfitting gap), by its formula (metrics.quick).
+            out = _evaluate(net, torch.from_numpy(np.ascontiguousarray(X)), y, ds, sp,
+                            only=spec.monitor if split == "train" else None)
             out.pop("loss")
             result.metrics[split] = out
     result.diagnostics.update(diagnostics.at_end(net, Xtr[probe], model_s["activation"]))
@@ -228,21 +231,29 @@ def _train(spec: JobSpec, ds: Dataset, result: JobResult, start: float):
 
 
 @torch.no_grad()
-def _evaluate(net, X: torch.Tensor, y: np.ndarray, ds: Dataset, sp) -> dict[str, float]:
+def _evaluate(net, X: torch.Tensor, y: np.ndarray, ds: Dataset, sp, only: str | None = None) -> dict[str, float]:
     """Metrics in eval mode (dropout off, batch-norm running statistics)."""
     net.eval()
     out = net(X)
     net.train()
+    return score(out, y, ds, sp, only)
+
+
+@torch.no_grad()
+def score(out: torch.Tensor, y: np.ndarray, ds: Dataset, sp, only: str | None = None) -> dict[str, float]:
+    """Loss and metrics of a network's raw outputs ``out`` for targets ``y``: all metrics
+    through sklearn.metrics, or with ``only`` just that one (for per-epoch curves)."""
     if not torch.isfinite(out).all():
-        names = [m for m, (task, _) in METRICS.items() if task == ds.task]
+        names = [only] if only else [m for m, (task, _) in METRICS.items() if task == ds.task]
         return {**{m: float("nan") for m in names}, "loss": float("nan")}
     if ds.task == "classification":
         loss = float(F.cross_entropy(out, torch.from_numpy(y.astype(np.int64))))
         probs = torch.softmax(out.double(), dim=1).numpy()
-        metrics = evaluate("classification", y, probs, len(ds.classes))
+        metrics = ({only: quick(only, y, probs, len(ds.classes))} if only
+                   else evaluate("classification", y, probs, len(ds.classes)))
     else:
         pred = out.squeeze(1).double().numpy() * sp.y_std + sp.y_mean
         loss = float(np.mean(((y - sp.y_mean) / sp.y_std - out.squeeze(1).double().numpy()) ** 2))
-        metrics = evaluate("regression", y, pred)
+        metrics = {only: quick(only, y, pred)} if only else evaluate("regression", y, pred)
     metrics["loss"] = loss
     return metrics
