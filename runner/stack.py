@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import math
 import time
+import warnings
 from typing import Sequence
 
 import numpy as np
@@ -40,9 +41,12 @@ from .train import JobResult, JobSpec, environment, run_job, score, streams
 
 __all__ = ["stack_key", "group_specs", "run_group", "member_bytes", "GROUP_SIZE", "MEMORY_BUDGET"]
 
-GROUP_SIZE = 8  # members per stacked group: enough to share the per-operation overhead,
+GROUP_SIZE = 16  # members per stacked group: enough to share the per-operation overhead,
 # few enough that a small grid still spreads over several workers
 MEMORY_BUDGET = 512 * 2**20  # bytes of tensors one stacked group may hold in a worker
+
+# Parameters are strided views into one (K, P) buffer, which torch notes once per backward.
+warnings.filterwarnings("ignore", message="grad and param do not obey the gradient layout contract")
 
 
 def stack_key(spec: JobSpec) -> str | None:
@@ -95,7 +99,8 @@ def group_specs(specs: Sequence[JobSpec], datasets: dict[str, Dataset],
 def _member_net(spec: JobSpec, in_shape, n_out, weights, biases):
     """Member k rebuilt as the ordinary network of the single-job path."""
     throwaway = torch.Generator().manual_seed(0)
-    net = build_model(spec.settings["model"], in_shape, n_out, throwaway, throwaway)
+    shape_only = {**spec.settings["model"], "init": "zeros"}  # weights are copied in below
+    net = build_model(shape_only, in_shape, n_out, throwaway, throwaway)
     with torch.no_grad():
         for layer, w, b in zip(layers_with_weights(net), weights, biases):
             layer.weight.copy_(w.T)
@@ -125,7 +130,12 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
     model_s, train0, monitor = first["model"], first["train"], specs[0].monitor
     classify = ds.task == "classification"
     n_out = len(ds.classes) if classify else 1
-    splits = [split_and_scale(ds, s.settings["data"], s.seed) for s in specs]
+    splits, cache = [], {}
+    for s in specs:  # members with the same seed and data settings share one split
+        key = (s.seed, canonical(s.settings["data"]))
+        if key not in cache:
+            cache[key] = split_and_scale(ds, s.settings["data"], s.seed)
+        splits.append(cache[key])
     flat = lambda X: torch.from_numpy(np.ascontiguousarray(X.reshape(len(X), -1)))  # noqa: E731
     Xtr = torch.stack([flat(sp.X_train) for sp in splits])
     Xva = torch.stack([flat(sp.X_val) for sp in splits])
@@ -139,24 +149,37 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
     gens = [streams(s.seed) for s in specs]
 
     # Parameters, initialized member by member with each member's own generator, in the
-    # single-job path's order and (out, in) layout, then stored as (K, in, out).
+    # single-job path's order and (out, in) layout, then stored as (K, in, out). All of a
+    # member's parameters live in one row of a (K, P) buffer, and their gradients in one row
+    # of another, so the optimizer, clipping and penalties are a few operations per step.
     widths = [features, *model_s["hidden"], n_out]
     act_gain = gain(model_s["activation"], model_s["leaky_slope"])
+    shapes = list(zip(widths, widths[1:]))
+    P = sum(a * b + b for a, b in shapes)
+    flat, gflat = torch.zeros(K, P), torch.zeros(K, P)
+    is_weight = torch.zeros(P)
     W, B = [], []
-    for i, (a, b) in enumerate(zip(widths, widths[1:])):
-        last = i == len(widths) - 2
-        layer = torch.empty(K, a, b)
+    offset = 0
+    for i, (a, b) in enumerate(shapes):
+        last = i == len(shapes) - 1
+        w_view = flat[:, offset:offset + a * b].view(K, a, b)
         for k, s in enumerate(specs):
             w = torch.empty(b, a)
             initialize(s.settings["model"]["init"], w, 1.0 if last else act_gain,
                        s.settings["model"]["init_scale"], gens[k][0])
-            layer[k] = w.T
-        W.append(layer.requires_grad_())
-        B.append(torch.zeros(K, 1, b, requires_grad=True))
-    params = [t for pair in zip(W, B) for t in pair]
-    decays = [True, False] * len(W)
+            w_view[k] = w.T
+        is_weight[offset:offset + a * b] = 1.0
+        w_leaf = w_view.detach().requires_grad_()
+        w_leaf.grad = gflat[:, offset:offset + a * b].view(K, a, b)
+        offset += a * b
+        b_leaf = flat[:, offset:offset + b].view(K, 1, b).detach().requires_grad_()
+        b_leaf.grad = gflat[:, offset:offset + b].view(K, 1, b)
+        offset += b
+        W.append(w_leaf)
+        B.append(b_leaf)
+    flat.grad = gflat
     hyper = {h: _hyper(specs, h) for h in ("momentum", "beta1", "beta2", "eps", "weight_decay")}
-    opt = StackedOptimizer(train0["optimizer"], params, decays, hyper)
+    opt = StackedOptimizer(train0["optimizer"], [flat], [is_weight], hyper)
     l2 = _hyper(specs, "l2")
     l1 = _hyper(specs, "l1")
     l1_pen = torch.where(torch.tensor([s.settings["train"]["l1_mode"] == "penalty" for s in specs]), l1, 0.0)
@@ -165,6 +188,11 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
     p_drop = [s.settings["model"]["dropout"] for s in specs]
     p_in = [s.settings["model"]["input_dropout"] for s in specs]
     act = make_activation(model_s["activation"], model_s["leaky_slope"])
+    train_mask = is_weight.bool()
+
+    def flat_w(_W):
+        """The weight entries of every member, (K, number of weights), differentiable."""
+        return torch.cat([w.reshape(K, -1) for w in _W], dim=1)
 
     def members(k):
         return [w[k].detach() for w in W], [b[k].detach() for b in B]
@@ -214,6 +242,9 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
     limits = _hyper(specs, "diverge_factor")
     step = 0
     rows = torch.arange(K).unsqueeze(1)
+    total_steps = steps_per_epoch * train0["epochs"]
+    lr_table = torch.tensor([[lr_at(t, steps_per_epoch, s.settings["train"]) for s in specs]
+                             for t in range(total_steps)])
     fault = faults.from_environment()
     for epoch in range(train0["epochs"]):
         if fault is not None:
@@ -225,7 +256,7 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
         count = 0
         for b in range(steps_per_epoch):
             idx = orders[:, b * bs:(b + 1) * bs]
-            lrs = torch.tensor([lr_at(step, steps_per_epoch, s.settings["train"]) for s in specs])
+            lrs = lr_table[step]
             out = forward(Xtr[rows, idx], True)
             yb = ytr[rows, idx]
             if classify:
@@ -245,27 +276,24 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
                 active[k] = False
             total = per
             if bool((l2 > 0).any()):
-                total = total + l2 * sum((w * w).sum(dim=(1, 2)) for w in W)
+                total = total + l2 * (flat_w(W) ** 2).sum(1)
             if bool((l1_pen > 0).any()):
-                total = total + l1_pen * sum(w.abs().sum(dim=(1, 2)) for w in W)
-            for p in params:
-                p.grad = None
+                total = total + l1_pen * flat_w(W).abs().sum(1)
+            gflat.zero_()
             torch.where(active, total, torch.zeros_like(total)).sum().backward()
             with torch.no_grad():
-                for p in params:
-                    p.grad[~active] = 0.0
+                if not bool(active.all()):
+                    gflat[~active] = 0.0
                 if bool((clip > 0).any()):
-                    norm = torch.sqrt(sum((p.grad.reshape(K, -1) ** 2).sum(1) for p in params))
-                    coef = torch.clamp(clip / (norm + 1e-6), max=1.0)
-                    coef = torch.where(clip > 0, coef, torch.ones_like(coef))
-                    for p in params:
-                        p.grad.mul_(coef.view(-1, *([1] * (p.dim() - 1))))
+                    # torch.nn.utils.clip_grad_norm_ per member: scale by max_norm / (norm + 1e-6), at most 1
+                    coef = torch.clamp(clip / (gflat.norm(dim=1) + 1e-6), max=1.0)
+                    gflat.mul_(torch.where(clip > 0, coef, torch.ones_like(coef)).unsqueeze(1))
             opt.step(lrs, active)
             if bool((l1_prox > 0).any()):
                 with torch.no_grad():
-                    thr = torch.where(active, lrs * l1_prox, torch.zeros_like(lrs)).view(-1, 1, 1)
-                    for w in W:
-                        w.copy_(torch.sign(w) * (w.abs() - thr).clamp_(min=0.0))
+                    thr = torch.where(active, lrs * l1_prox, torch.zeros_like(lrs)).unsqueeze(1)
+                    shrunk = torch.sign(flat) * (flat.abs() - thr).clamp_(min=0.0)
+                    flat.copy_(torch.where(train_mask, shrunk, flat))  # weights only, never biases
             totals += torch.where(active, values.double(), torch.zeros_like(totals)) * idx.shape[1]
             count += idx.shape[1]
             step += 1

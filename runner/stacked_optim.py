@@ -7,7 +7,8 @@ rest. The update rules are torch.optim's (tests compare them step by step):
 - nesterov: b as momentum, p -= lr (g' + mu b)                         (Sutskever et al. 2013)
 - adam:     m, v moving averages of g', bias-corrected (Kingma & Ba 2015, Algorithm 1)
 - adamw:    p *= 1 - lr wd, then adam on g (Loshchilov & Hutter 2019)
-Weight decay is passed only for weight matrices; biases get wd = 0.
+Weight decay acts only where ``decays`` says: True/False per tensor, or a 0/1 mask over a
+flat parameter buffer (weights 1, biases 0).
 """
 from __future__ import annotations
 
@@ -24,7 +25,7 @@ def _b(x: torch.Tensor, like: torch.Tensor) -> torch.Tensor:
 
 
 class StackedOptimizer:
-    def __init__(self, kind: str, params: list[torch.Tensor], decays: list[bool], hyper: dict[str, torch.Tensor]):
+    def __init__(self, kind: str, params: list[torch.Tensor], decays: list, hyper: dict[str, torch.Tensor]):
         if kind not in STACKED_OPTIMIZERS:
             raise ValueError(f"no stacked step for {kind}")
         self.kind = kind
@@ -46,7 +47,10 @@ class StackedOptimizer:
             g = p.grad
             if g is None:
                 continue
-            wd = _b(self.h["weight_decay"], p) if decay else None
+            if isinstance(decay, torch.Tensor):
+                wd = _b(self.h["weight_decay"], p) * decay
+            else:
+                wd = _b(self.h["weight_decay"], p) if decay else None
             LR = _b(lr, p)
             if self.kind == "adamw":
                 if wd is not None:
