@@ -23,7 +23,6 @@ import time
 import warnings
 from pathlib import Path
 
-import numpy as np
 import torch
 
 ROOT = Path(__file__).resolve().parents[1]

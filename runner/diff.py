@@ -7,7 +7,6 @@ recipes (read through their default store).
 from __future__ import annotations
 
 import json
-import sqlite3
 from pathlib import Path
 
 from . import stats

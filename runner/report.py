@@ -10,7 +10,6 @@ from __future__ import annotations
 import base64
 import html
 import io
-import statistics
 
 import numpy as np
 

@@ -13,7 +13,6 @@ import platform
 import sys
 import time
 from dataclasses import dataclass, field
-from typing import Any
 
 import numpy as np
 import torch

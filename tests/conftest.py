@@ -49,3 +49,13 @@ def tiny_recipe(tmp_path):
         [factors]
         "train.optimizer" = ["sgd", "adam"]
     """)
+
+
+def stored_metrics(store) -> list[tuple]:
+    """Every stored final metric as (seed, levels, split, name, value), sorted: two stores
+    hold the same numbers exactly when these lists are equal."""
+    import sqlite3
+
+    with sqlite3.connect(store) as c:
+        return sorted(c.execute("SELECT j.seed, j.levels, m.split, m.name, m.value FROM metrics m "
+                                "JOIN jobs j ON j.key = m.job_key"))

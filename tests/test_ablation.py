@@ -3,8 +3,6 @@
 The values below are invented for these checks (not results of training): they make every
 table computable by hand.
 """
-import json
-from pathlib import Path
 
 import pytest
 

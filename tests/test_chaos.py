@@ -9,7 +9,7 @@ import time
 
 import numpy as np
 
-from conftest import PYTHON, invoke, subprocess_env, write_recipe
+from conftest import stored_metrics, PYTHON, invoke, subprocess_env, write_recipe
 
 RECIPE = """
     name = "chaos"
@@ -31,9 +31,7 @@ def snapshot(store):
     with sqlite3.connect(store) as c:
         assert c.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
         jobs = {k: (f, a) for k, f, a in c.execute("SELECT key, finished, attempts FROM jobs")}
-        values = sorted(c.execute("SELECT j.seed, j.levels, m.split, m.name, m.value FROM metrics m "
-                                  "JOIN jobs j ON j.key = m.job_key"))
-    return jobs, values
+    return jobs, stored_metrics(store)
 
 
 def test_random_kills_then_complete(tmp_path):

@@ -1,6 +1,5 @@
 """check, new, completion and progress: the commands around a run."""
 import io
-import os
 import re
 import subprocess
 

@@ -2,7 +2,6 @@
 mid-grid; the grid completes with metrics bitwise equal to a local run."""
 import os
 import signal
-import sqlite3
 
 import pytest
 
@@ -13,7 +12,7 @@ from runner.jobs import execute, make_executor  # noqa: E402
 from runner.recipe import load_recipe  # noqa: E402
 from runner.store import Store  # noqa: E402
 
-from conftest import invoke, write_recipe  # noqa: E402
+from conftest import stored_metrics, invoke, write_recipe  # noqa: E402
 
 RECIPE = """
     name = "dask"
@@ -29,12 +28,6 @@ RECIPE = """
     [factors]
     "train.optimizer" = ["sgd", "adam"]
 """
-
-
-def values(store):
-    with sqlite3.connect(store) as c:
-        return sorted(c.execute("SELECT j.seed, j.levels, m.split, m.name, m.value FROM metrics m "
-                                "JOIN jobs j ON j.key = m.job_key"))
 
 
 def test_dask_cluster_with_a_killed_worker_matches_local(tmp_path):
@@ -65,7 +58,7 @@ def test_dask_cluster_with_a_killed_worker_matches_local(tmp_path):
         cluster.close()
     local = tmp_path / "local.sqlite"
     assert invoke("run", path, "--store", local, "--workers", 1, "-q").exit_code == 0
-    assert values(store_path) == values(local)
+    assert stored_metrics(store_path) == stored_metrics(local)
 
 
 def test_dask_local_option_runs_the_grid(tmp_path):
@@ -75,7 +68,7 @@ def test_dask_local_option_runs_the_grid(tmp_path):
     assert result.exit_code == 0, result.stderr
     local = tmp_path / "local.sqlite"
     invoke("run", path, "--store", local, "--workers", 1, "-q")
-    assert values(store) == values(local)
+    assert stored_metrics(store) == stored_metrics(local)
 
 
 def test_unreachable_scheduler_is_a_clear_error(tmp_path):

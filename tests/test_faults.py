@@ -10,9 +10,8 @@ import sqlite3
 import subprocess
 import time
 
-import pytest
 
-from conftest import PYTHON, invoke, subprocess_env, write_recipe
+from conftest import stored_metrics, PYTHON, invoke, subprocess_env, write_recipe
 
 RECIPE = """
     name = "faults"
@@ -43,12 +42,6 @@ def start(args, **env):
 def rows(store):
     with sqlite3.connect(store) as c:
         return {k: (s, e, a) for k, s, e, a in c.execute("SELECT key, status, error, attempts FROM jobs")}
-
-
-def metrics(store):
-    with sqlite3.connect(store) as c:
-        return sorted(c.execute("SELECT j.seed, j.levels, m.split, m.name, m.value FROM metrics m "
-                                "JOIN jobs j ON j.key = m.job_key"))
 
 
 def wait_for(predicate, seconds=60):
@@ -97,7 +90,7 @@ def test_worker_death_is_retried_and_result_is_unchanged(tmp_path):
     # The dying worker held one stacked group (one optimizer's two seeds): both were tried again.
     assert sorted(v[2] for v in got.values()) == [1, 1, 2, 2]
     assert invoke("run", path, "--store", clean, "--workers", 1, "-q").exit_code == 0
-    assert metrics(store) == metrics(clean)
+    assert stored_metrics(store) == stored_metrics(clean)
 
 
 def test_worker_that_always_dies_is_recorded_failed(tmp_path):

@@ -2,7 +2,6 @@
 import json
 import sqlite3
 
-import numpy as np
 import pytest
 
 from runner.grid import expand
