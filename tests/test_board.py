@@ -67,3 +67,38 @@ def test_pending_jobs_are_shown_as_absent(tmp_path, tiny_recipe):
     pending = [r for r in doc["rows"] if r["levels"]["train.optimizer"] == "adagrad"][0]
     assert pending["n"] == 0 and pending["mean"] is None and pending["rank"] is None
     assert pending["counts"]["pending"] == 2
+
+
+def test_header_says_when_stored_jobs_ran_in_different_environments(finished):
+    """Each job keeps its environment; the board's header names what differs."""
+    import sqlite3
+
+    recipe, store = finished
+    with sqlite3.connect(store) as c:
+        key, env = c.execute("SELECT key, env FROM jobs LIMIT 1").fetchone()
+        env = json.loads(env)
+        assert {"python", "torch", "numpy", "sklearn", "threads", "cpu"} <= set(env)
+        env["torch"] = "0.0.1-elsewhere"
+        c.execute("UPDATE jobs SET env = ? WHERE key = ?", (json.dumps(env), key))
+    table = invoke("board", recipe, "--store", store).stdout
+    assert "Note: stored jobs ran in differing environments (torch)." in table
+    doc = json.loads(invoke("board", recipe, "--store", store, "--format", "json").stdout)
+    assert doc["environment"]["distinct"] == 2 and doc["environment"]["differs_in"] == ["torch"]
+
+
+def test_retry_failed_reruns_only_failed_jobs(finished):
+    import sqlite3
+
+    recipe, store = finished
+    with sqlite3.connect(store) as c:
+        rows = dict(c.execute("SELECT key, finished FROM jobs"))
+        failed = next(iter(rows))
+        c.execute("UPDATE jobs SET status = 'failed', error = 'made to fail here' WHERE key = ?", (failed,))
+    plain = invoke("run", recipe, "--store", store, "--workers", 1)
+    assert "4 jobs, 4 done, 0 to run" in plain.stderr  # a failed job is finished: not rerun by default
+    again = invoke("run", recipe, "--store", store, "--workers", 1, "--retry-failed")
+    assert "4 jobs, 3 done, 1 to run" in again.stderr
+    with sqlite3.connect(store) as c:
+        after = dict(c.execute("SELECT key, finished FROM jobs"))
+        assert c.execute("SELECT status FROM jobs WHERE key = ?", (failed,)).fetchone()[0] == "done"
+    assert all(after[k] == rows[k] for k in rows if k != failed) and after[failed] != rows[failed]

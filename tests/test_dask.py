@@ -75,3 +75,12 @@ def test_unreachable_scheduler_is_a_clear_error(tmp_path):
     path = write_recipe(tmp_path, RECIPE)
     result = invoke("run", path, "--store", tmp_path / "s.sqlite", "--on", "dask://127.0.0.1:9")
     assert result.exit_code == 2 and "cannot reach the Dask scheduler" in result.stderr
+
+
+def test_run_table_in_the_recipe_selects_dask_local(tmp_path):
+    path = write_recipe(tmp_path, RECIPE.replace("epochs = 30", "epochs = 2") + '\n[run]\non = "dask-local"\nworkers = 2\n')
+    result = invoke("run", path, "--store", tmp_path / "s.sqlite", "-q")
+    assert result.exit_code == 0, result.stderr
+    bad = write_recipe(tmp_path, RECIPE + '\n[run]\non = "cluster"\n', "bad.toml")
+    refused = invoke("run", bad, "--store", tmp_path / "b.sqlite")
+    assert refused.exit_code == 2 and "run.on" in refused.stderr and "dask://HOST:PORT" in refused.stderr
