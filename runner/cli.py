@@ -67,6 +67,7 @@ def run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, ti
         mlflow_uri, quiet, verbose, fmt):
     """Train every job of RECIPE that has no stored result, then print the leaderboard."""
     from .jobs import execute, make_executor, plan
+    from .mlflow_export import RunLogger
     from .progress import Progress
     from .render import render
     from .schedule import default_workers
@@ -86,11 +87,11 @@ def run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, ti
             progress = Progress(len(todo.to_run), grid.rank_by, grid.goal, quiet=quiet,
                                 live=False if verbose else None, verbose=verbose)
             executor = make_executor(where, workers, threads, max_attempts, time_limit)
-            tracker = _Tracker(mlflow_uri or recipe.tracking.get("mlflow"), grid, db)
+            tracker = RunLogger(mlflow_uri or recipe.tracking.get("mlflow"), grid, db)
             try:
                 execute(grid, db, todo.to_run, executor, progress, time_limit, on_stored=tracker.stored,
                         stack=not no_stack)
-                tracker.finish(recipe_path, quiet)
+                _report_tracking(tracker.finish(), tracker.uri, recipe_path, quiet)
             except KeyboardInterrupt:
                 done = len(db.finished_keys() & {j.key for j in grid})
                 click.echo(f"\nInterrupted: {done} of {todo.total} jobs are stored. Run the same "
@@ -101,56 +102,27 @@ def run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, ti
         _fail(err)
 
 
-class _Tracker:
-    """MLflow logging beside the store: failures are reported, never fatal to the results."""
-
-    def __init__(self, uri, grid, db):
-        self.uri, self.grid, self.db = uri, grid, db
-        self.exporter = None
-        self.errors: list[str] = []
-        if uri:
-            from .mlflow_export import Exporter
-
-            self.exporter = Exporter(uri, grid, db)
-
-    def stored(self, job, result) -> None:
-        if self.exporter is None or self.errors:
-            return  # after a first failure, leave the rest to the catch-up at the end
-        try:
-            row = self.db.jobs([job.key])[0]
-            self.exporter.export(job, row, self.db.metrics().get(job.key, {}),
-                                 self.db.curves([job.key]).get(job.key, {}))
-        except Exception as exc:
-            self.errors.append(f"{type(exc).__name__}: {exc}")
-
-    def finish(self, recipe_path, quiet: bool) -> None:
-        if self.exporter is None:
-            return
-        from .mlflow_export import export_all
-
-        sent, _, errors = export_all(self.uri, self.grid, self.db)
-        if errors:
-            click.echo(f"MLflow export to {self.uri} failed for {len(errors)} job(s) (first: {errors[0][:300]}). "
-                       f"The results are safe in the store; retry with: recipe export-mlflow {recipe_path} "
-                       f"--uri {self.uri}", err=True)
-        elif not quiet:
-            click.echo(f"MLflow: all stored jobs are logged at {self.uri}", err=True)
+def _report_tracking(errors, uri, recipe_path, quiet: bool) -> None:
+    if errors is None:
+        return
+    if errors:
+        click.echo(f"MLflow export to {uri} failed for {len(errors)} job(s) (first: {errors[0][:300]}). "
+                   f"The results are safe in the store; retry with: recipe export-mlflow {recipe_path} "
+                   f"--uri {uri}", err=True)
+    elif not quiet:
+        click.echo(f"MLflow: all stored jobs are logged at {uri}", err=True)
 
 
 def _confirm_fresh(db, grid, yes: bool) -> None:
-    from . import checkpoint
-    from .jobs import checkpoint_dir
+    from .jobs import forget
 
-    keys = [j.key for j in grid]
-    stored = len(db.finished_keys() & set(keys))
+    stored = len(db.finished_keys() & {j.key for j in grid})
     if not yes:
         if not sys.stdin.isatty():
             raise UserError("--fresh would delete stored results and needs confirmation",
                             value=f"{stored} stored jobs", hint="Add --yes to confirm without a terminal")
         click.confirm(f"Delete the {stored} stored results of this grid and start over?", abort=True, err=True)
-    db.forget(keys)
-    for key in keys:
-        checkpoint.remove(str(checkpoint_dir(db) / f"{key}.pt"))
+    forget(grid, db)
 
 
 @cli.command()

@@ -14,7 +14,7 @@ from .grid import Grid, Job
 from .progress import Progress
 from .store import FINISHED, RunnerLock, Store
 
-__all__ = ["Plan", "plan", "execute", "make_executor", "checkpoint_dir"]
+__all__ = ["Plan", "plan", "execute", "make_executor", "checkpoint_dir", "forget"]
 
 
 @dataclass(frozen=True)
@@ -36,6 +36,15 @@ def plan(grid: Grid, store: Store, retry_failed: bool = False) -> Plan:
 
 def checkpoint_dir(store: Store) -> Path:
     return store.path.with_suffix(".checkpoints")
+
+
+def forget(grid: Grid, store: Store) -> int:
+    """Delete this grid's stored results and checkpoints (``recipe run --fresh``)."""
+    keys = [j.key for j in grid]
+    removed = store.forget(keys)
+    for key in keys:
+        checkpoint.remove(str(checkpoint_dir(store) / f"{key}.pt"))
+    return removed
 
 
 def make_executor(on: str, workers: int, threads: int = 1, max_attempts: int = 2,

@@ -15,7 +15,7 @@ from .errors import UserError
 from .grid import Grid
 from .store import Store
 
-__all__ = ["Exporter", "export_all"]
+__all__ = ["Exporter", "RunLogger", "export_all"]
 
 _TABLE = """CREATE TABLE IF NOT EXISTS exports (
     uri TEXT NOT NULL, job_key TEXT NOT NULL, run_id TEXT NOT NULL, exported REAL NOT NULL,
@@ -131,3 +131,29 @@ def export_all(uri: str, grid: Grid, store: Store) -> tuple[int, int, list[str]]
             if len(errors) >= 3 and sent == 0:
                 break  # the tracking store is unusable; say so rather than try every job
     return sent, len(done & set(stored)), errors
+
+
+class RunLogger:
+    """MLflow logging beside a run: each stored job is logged as it arrives; after a first
+    failure the rest waits for the catch-up in ``finish``. Failures never touch the store."""
+
+    def __init__(self, uri: str | None, grid: Grid, store: Store):
+        self.uri, self.grid, self.store = uri, grid, store
+        self.exporter = Exporter(uri, grid, store) if uri else None
+        self.failed = False
+
+    def stored(self, job, result) -> None:
+        if self.exporter is None or self.failed:
+            return
+        try:
+            row = self.store.jobs([job.key])[0]
+            self.exporter.export(job, row, self.store.metrics().get(job.key, {}),
+                                 self.store.curves([job.key]).get(job.key, {}))
+        except Exception:
+            self.failed = True
+
+    def finish(self) -> list[str] | None:
+        """Log whatever is still missing; the errors (empty: all logged), None without MLflow."""
+        if self.exporter is None:
+            return None
+        return export_all(self.uri, self.grid, self.store)[2]
