@@ -32,3 +32,32 @@ def test_regression_metrics_match_sklearn():
     assert out["rmse"] == pytest.approx(np.sqrt(skm.mean_squared_error(y, pred)))
     assert out["mae"] == pytest.approx(skm.mean_absolute_error(y, pred))
     assert out["r2"] == pytest.approx(skm.r2_score(y, pred))
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_quick_per_epoch_metrics_equal_sklearn(seed):
+    """metrics.quick (the per-epoch curves) computes the same numbers as sklearn.metrics."""
+    from runner.metrics import quick
+
+    rng = np.random.default_rng(seed)
+    k = 3 + seed
+    y = rng.integers(0, k, 150)
+    y[:k] = np.arange(k)
+    probs = rng.dirichlet(np.ones(k), 150)
+    full = evaluate("classification", y, probs, k)
+    for name in ("accuracy", "f1_macro", "log_loss"):
+        assert quick(name, y, probs, k) == pytest.approx(full[name], rel=1e-12, abs=1e-15)
+    t = rng.normal(100, 30, 80)
+    pred = t + rng.normal(0, 10, 80)
+    full = evaluate("regression", t, pred)
+    for name in ("rmse", "mae", "r2"):
+        assert quick(name, t, pred) == pytest.approx(full[name], rel=1e-12)
+
+
+def test_quick_f1_with_a_class_never_predicted():
+    """A class absent from the predictions scores F1 0, as sklearn's zero_division=0 does."""
+    from runner.metrics import quick
+
+    y = np.array([0, 1, 2, 2, 1, 0])
+    probs = np.eye(3)[[0, 1, 1, 1, 1, 0]]
+    assert quick("f1_macro", y, probs, 3) == pytest.approx(evaluate("classification", y, probs, 3)["f1_macro"])
