@@ -135,7 +135,7 @@ def _context():
     threads and state."""
     if "forkserver" in multiprocessing.get_all_start_methods():
         ctx = multiprocessing.get_context("forkserver")
-        ctx.set_forkserver_preload(["torch", "sklearn.metrics", "runner.schedule", "runner.stack"])
+        ctx.set_forkserver_preload(["runner._preload"])
         return ctx
     return multiprocessing.get_context("spawn")
 
