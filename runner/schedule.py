@@ -56,12 +56,12 @@ def prepare_process(threads: int, datasets: dict[str, Dataset] | None = None, wo
 
 def run_item(item: tuple[JobSpec, ...], datasets: dict[str, Dataset]) -> list[JobResult]:
     """Train one work item: a single job, or a stacked group of same-shaped jobs."""
-    ds = datasets[item[0].data_id]
-    from .stack import stack_key, run_group
+    from .stack import Stacked, run_group
 
-    if len(item) == 1 and stack_key(item[0]) is None:
-        return [run_job(item[0], ds)]
-    return run_group(item, ds)
+    ds = datasets[item[0].data_id]
+    if isinstance(item, Stacked):
+        return run_group(item, ds)
+    return [run_job(spec, ds) for spec in item]
 
 
 def _work(item: tuple[JobSpec, ...]) -> list[JobResult]:

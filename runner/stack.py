@@ -39,7 +39,7 @@ from .schedules import lr_at
 from .stacked_optim import STACKED_OPTIMIZERS, StackedOptimizer
 from .train import JobResult, JobSpec, environment, run_job, score, streams
 
-__all__ = ["stack_key", "group_specs", "run_group", "member_bytes", "GROUP_SIZE", "MEMORY_BUDGET"]
+__all__ = ["Stacked", "stack_key", "group_specs", "run_group", "member_bytes", "GROUP_SIZE", "MEMORY_BUDGET"]
 
 GROUP_SIZE = 16  # members per stacked group: enough to share the per-operation overhead,
 # few enough that a small grid still spreads over several workers
@@ -47,6 +47,12 @@ MEMORY_BUDGET = 512 * 2**20  # bytes of tensors one stacked group may hold in a 
 
 # Parameters are strided views into one (K, P) buffer, which torch notes once per backward.
 warnings.filterwarnings("ignore", message="grad and param do not obey the gradient layout contract")
+
+
+class Stacked(tuple):
+    """A work item of job specs trained together on the stacked path (even a group of one)."""
+
+    __slots__ = ()
 
 
 def stack_key(spec: JobSpec) -> str | None:
@@ -92,7 +98,7 @@ def group_specs(specs: Sequence[JobSpec], datasets: dict[str, Dataset],
             buckets.setdefault(key, []).append(spec)
     for members in buckets.values():
         cap = max(1, min(GROUP_SIZE, MEMORY_BUDGET // member_bytes(members[0], datasets[members[0].data_id])))
-        items += [tuple(members[i:i + cap]) for i in range(0, len(members), cap)]
+        items += [Stacked(members[i:i + cap]) for i in range(0, len(members), cap)]
     return items
 
 

@@ -8,7 +8,7 @@ import torch
 from runner.grid import expand
 from runner.recipe import load_recipe
 from runner.schedule import prepare_process
-from runner.stack import group_specs, run_group, stack_key
+from runner.stack import Stacked, group_specs, run_group, stack_key
 from runner.stacked_optim import STACKED_OPTIMIZERS, StackedOptimizer
 from runner.train import run_job
 
@@ -143,6 +143,12 @@ def test_same_final_ranking_as_single_jobs(tmp_path):
                      "--format", "json", *flag)
         assert out.exit_code == 0, out.stderr
         docs[bool(flag)] = json.loads(out.stdout)
+    import sqlite3
+
+    for flag, store in ((False, "s0.sqlite"), (True, "s1.sqlite")):
+        with sqlite3.connect(tmp_path / store) as c:
+            paths = {'"stacked"' in d for (d,) in c.execute("SELECT diagnostics FROM jobs")}
+        assert paths == {not flag}, "--no-stack must train every job on the single-job path"
     order = {k: [r["levels"]["train.lr"] for r in d["rows"]] for k, d in docs.items()}
     assert order[False] == order[True] == [1e-2, 1e-3, 1e-4]
     for a, b in zip(docs[False]["rows"], docs[True]["rows"]):
@@ -216,4 +222,7 @@ def test_what_is_not_stacked(tmp_path):
     assert keyed[("rmsprop", False)] is None and keyed[("adam", True)] is None
     items = group_specs(specs, {specs[0].data_id: ds})
     assert sorted(len(i) for i in items) == [1, 1, 1, 1]
-    assert group_specs(specs, {specs[0].data_id: ds}, enabled=False) == [(s,) for s in specs]
+    stacked = [i for i in items if isinstance(i, Stacked)]
+    assert len(stacked) == 1 and stacked[0][0].settings["train"]["optimizer"] == "adam"
+    plain = group_specs(specs, {specs[0].data_id: ds}, enabled=False)
+    assert plain == [(s,) for s in specs] and not any(isinstance(i, Stacked) for i in plain)
