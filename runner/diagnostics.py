@@ -15,7 +15,7 @@ from torch import nn
 from .activations import ACTIVATIONS, SATURATING, make_activation
 from .models import layers_with_weights
 
-__all__ = ["at_init", "at_end", "PROBE_ROWS"]
+__all__ = ["at_init", "at_end", "init_stats", "end_stats", "PROBE_ROWS"]
 
 PROBE_ROWS = 512
 _ACT_TYPES = tuple({type(make_activation(name)) for name in ACTIVATIONS})
@@ -52,37 +52,48 @@ def at_init(net: nn.Module, x: torch.Tensor, y: torch.Tensor, loss_fn) -> dict:
         g = layer.weight.grad
         norms.append(float(g.norm()) if g is not None else 0.0)
     net.zero_grad(set_to_none=True)
-    ratio = None
-    if len(norms) > 1:
-        if norms[-1] > 0:
-            ratio = norms[0] / norms[-1]
-        elif not any(norms):
-            ratio = 0.0  # no gradient reaches any layer: vanishing at its most extreme
-    return {
-        "init_act_mean": [float(o.mean()) for o in outputs],
-        "init_act_std": [float(o.std()) if o.numel() > 1 else 0.0 for o in outputs],
-        "init_grad_norms": norms,
-        "grad_ratio": ratio,
-    }
+    return init_stats([o.reshape(1, -1) for o in outputs], [norms])[0]
+
+
+def init_stats(outputs: list[torch.Tensor], norms: list[list[float]]) -> list[dict]:
+    """Per member: ``outputs`` are each hidden activation's values, (members, values);
+    ``norms`` each member's weight-gradient norms, input layer first."""
+    means = [o.mean(dim=1).tolist() for o in outputs]
+    stds = [o.std(dim=1).tolist() if o.shape[1] > 1 else [0.0] * len(o) for o in outputs]
+    stats = []
+    for k, member_norms in enumerate(norms):
+        ratio = None
+        if len(member_norms) > 1:
+            if member_norms[-1] > 0:
+                ratio = member_norms[0] / member_norms[-1]
+            elif not any(member_norms):
+                ratio = 0.0  # no gradient reaches any layer: vanishing at its most extreme
+        stats.append({"init_act_mean": [m[k] for m in means], "init_act_std": [s[k] for s in stds],
+                      "init_grad_norms": list(member_norms), "grad_ratio": ratio})
+    return stats
 
 
 def at_end(net: nn.Module, x: torch.Tensor, activation: str) -> dict:
     outputs = _capture(net, x, grad=False)
+    # one unit per feature (dense) or channel (conv): (1, rows x positions, units)
+    units = [(o.movedim(1, -1) if o.dim() > 2 else o).reshape(1, -1, o.shape[1]) for o in outputs]
+    return end_stats(units, activation, 1)[0]
+
+
+def end_stats(outputs: list[torch.Tensor], activation: str, members: int) -> list[dict]:
+    """Per member: dead and saturated fractions of the hidden units, from each hidden
+    activation's values laid out (members, rows, units)."""
     if not outputs:
-        return {"dead_fraction": None, "saturated_fraction": None}
-    units = [o.transpose(0, 1).reshape(o.shape[1], -1) for o in outputs]  # (units, rows)
-    dead = saturated = None
-    if activation == "relu":
-        total = sum(u.shape[0] for u in units)
-        dead = sum(int((u.max(dim=1).values <= 0).sum()) for u in units) / total
+        return [{"dead_fraction": None, "saturated_fraction": None} for _ in range(members)]
+    total = sum(o.shape[2] for o in outputs)
+    dead = saturated = [None] * members
+    if activation == "relu":  # never positive on any probe row
+        dead = (sum((o.amax(dim=1) <= 0).sum(dim=1) for o in outputs).double() / total).tolist()
     bounds = SATURATING.get(activation)
     if bounds is not None:
         lo, hi = bounds
         margin = 0.01 * (hi - lo)  # within 1% of the output range of a bound
-        total = sum(u.shape[0] for u in units)
-        count = 0
-        for u in units:
-            near = ((u - lo) < margin) | ((hi - u) < margin)
-            count += int((near.float().mean(dim=1) >= 0.9).sum())  # saturated on >= 90% of rows
-        saturated = count / total
-    return {"dead_fraction": dead, "saturated_fraction": saturated}
+        count = sum(((((o - lo) < margin) | ((hi - o) < margin)).float().mean(dim=1) >= 0.9).sum(dim=1)
+                    for o in outputs)  # saturated on >= 90% of rows
+        saturated = (count.double() / total).tolist()
+    return [{"dead_fraction": d, "saturated_fraction": s} for d, s in zip(dead, saturated)]

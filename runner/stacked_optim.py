@@ -1,82 +1,131 @@
-"""Optimizer steps for K stacked models at once, each member with its own hyperparameters.
+"""Optimizer steps for K stacked models at once, each member with its own kind and
+hyperparameters.
 
-Tensors have a leading member axis; hyperparameters are (K,) tensors broadcast over the
-rest. The update rules are torch.optim's (tests compare them step by step):
+Parameters are tensors with a leading member axis (K, ...); hyperparameters are (K,)
+tensors. The update rules are torch.optim's (tests compare them step by step):
 - sgd:      p -= lr * (g + wd p)
 - momentum: b = mu b + g' (b = g' on the first step), p -= lr b        [g' = g + wd p]
 - nesterov: b as momentum, p -= lr (g' + mu b)                         (Sutskever et al. 2013)
 - adam:     m, v moving averages of g', bias-corrected (Kingma & Ba 2015, Algorithm 1)
 - adamw:    p *= 1 - lr wd, then adam on g (Loshchilov & Hutter 2019)
-Weight decay acts only where ``decays`` says: True/False per tensor, or a 0/1 mask over a
-flat parameter buffer (weights 1, biases 0).
+Weight decay acts only on the tensors ``decays`` marks (weights, not biases).
+
+Members of one kind with the same settings step together, on contiguous runs of members
+(slices, not copies): the sgd family with a per-member learning-rate column, the adam family
+through torch's fused Adam kernel (the one torch.optim.Adam(fused=True) runs), one call per
+distinct (lr, betas, eps). Inactive members are left out, so they do not move at all.
 """
 from __future__ import annotations
+
+from itertools import groupby
+from typing import Sequence
 
 import torch
 
 __all__ = ["STACKED_OPTIMIZERS", "StackedOptimizer"]
 
 STACKED_OPTIMIZERS = ("adam", "adamw", "momentum", "nesterov", "sgd")
+_ADAM = ("adam", "adamw")
 
 
-def _b(x: torch.Tensor, like: torch.Tensor) -> torch.Tensor:
-    """Broadcast a (K,) tensor over a (K, ...) tensor."""
-    return x.view(-1, *([1] * (like.dim() - 1)))
+def _column(values: Sequence[float], like: torch.Tensor) -> torch.Tensor:
+    """(len(values), 1, ...) to broadcast per member over ``like``'s trailing axes."""
+    return torch.tensor(values, dtype=like.dtype).view(-1, *([1] * (like.dim() - 1)))
+
+
+def _runs(rows: list[int]) -> list[slice]:
+    """Contiguous runs of sorted member indices, as slices."""
+    out = []
+    for _, grp in groupby(enumerate(rows), key=lambda t: t[1] - t[0]):
+        members = [k for _, k in grp]
+        out.append(slice(members[0], members[-1] + 1))
+    return out
 
 
 class StackedOptimizer:
-    def __init__(self, kind: str, params: list[torch.Tensor], decays: list, hyper: dict[str, torch.Tensor]):
-        if kind not in STACKED_OPTIMIZERS:
-            raise ValueError(f"no stacked step for {kind}")
-        self.kind = kind
-        self.params = params
-        self.decays = decays
-        self.h = hyper  # lr is set per step; momentum, beta1, beta2, eps, weight_decay: (K,)
+    def __init__(self, kinds: str | Sequence[str], params: list[torch.Tensor], grads: list[torch.Tensor],
+                 decays: list[bool], hyper: dict[str, torch.Tensor]):
+        K = params[0].shape[0]
+        self.kinds = [kinds] * K if isinstance(kinds, str) else list(kinds)
+        unknown = set(self.kinds) - set(STACKED_OPTIMIZERS)
+        if unknown:
+            raise ValueError(f"no stacked step for {sorted(unknown)}")
+        self.params, self.grads, self.decays = params, grads, decays
+        h = {name: hyper[name].tolist() if name in hyper else [0.0] * K
+             for name in ("momentum", "beta1", "beta2", "eps", "weight_decay")}
+        self.h = h
+        wd = h["weight_decay"]
+        adamw = [kind == "adamw" for kind in self.kinds]
+        self.coupled = [0.0 if a else w for a, w in zip(adamw, wd)]    # added to the gradient
+        self.decoupled = [w if a else 0.0 for a, w in zip(adamw, wd)]  # shrinks the weights
         self.t = 0
-        self.state = [{} for _ in params]
+        self.step_count = torch.zeros((), dtype=torch.float32)
+        self.moments = None  # (m, v) per tensor, for the adam family
+        self.buffers = None  # momentum buffer per tensor
+        if any(k in _ADAM for k in self.kinds):
+            self.moments = ([torch.zeros_like(p) for p in params], [torch.zeros_like(p) for p in params])
+        if any(k in ("momentum", "nesterov") for k in self.kinds):
+            self.buffers = [torch.zeros_like(p) for p in params]
+        self._coupled_cols = [_column(self.coupled, p) for p in params] if any(self.coupled) else None
+        self._mu_cols = [_column(h["momentum"], p) for p in params]
 
     @torch.no_grad()
-    def step(self, lr: torch.Tensor, active: torch.Tensor) -> None:
-        """One step; members with ``active`` False do not move."""
+    def step(self, lr: Sequence[float] | torch.Tensor, active: Sequence[bool] | torch.Tensor) -> None:
+        """One step with each member's learning rate; members with ``active`` False do not move."""
         self.t += 1
-        lr = torch.where(active, lr, torch.zeros_like(lr))
-        if self.kind in ("adam", "adamw"):
-            self._c1 = 1 - self.h["beta1"] ** self.t  # bias corrections, once per step
-            self._c2 = 1 - self.h["beta2"] ** self.t
-        for p, decay, st in zip(self.params, self.decays, self.state):
-            g = p.grad
-            if g is None:
+        self.step_count.fill_(self.t)
+        lr = lr.tolist() if isinstance(lr, torch.Tensor) else list(lr)
+        active = active.tolist() if isinstance(active, torch.Tensor) else list(active)
+        if self._coupled_cols is not None:
+            for p, g, decay, col in zip(self.params, self.grads, self.decays, self._coupled_cols):
+                if decay:
+                    g.addcmul_(p, col)
+        if any(w and a for w, a in zip(self.decoupled, active)):
+            shrink = [1.0 - r * w if a else 1.0 for r, w, a in zip(lr, self.decoupled, active)]
+            for p, decay in zip(self.params, self.decays):
+                if decay:
+                    p.mul_(_column(shrink, p))
+        classes: dict[tuple, list[int]] = {}
+        for k, kind in enumerate(self.kinds):
+            if not active[k]:
                 continue
-            if isinstance(decay, torch.Tensor):
-                wd = _b(self.h["weight_decay"], p) * decay
-            else:
-                wd = _b(self.h["weight_decay"], p) if decay else None
-            LR = _b(lr, p)
-            if self.kind == "adamw":
-                if wd is not None:
-                    p.mul_(1 - LR * wd)
-                self._adam(p, g, st, LR)
-                continue
-            if wd is not None:
-                g = g + wd * p
-            if self.kind == "sgd":
-                p.sub_(LR * g)
-            elif self.kind in ("momentum", "nesterov"):
-                mu = _b(self.h["momentum"], p)
-                if "buf" not in st:
-                    st["buf"] = g.clone()
+            key = ((kind, lr[k], self.h["beta1"][k], self.h["beta2"][k], self.h["eps"][k])
+                   if kind in _ADAM else (kind,))
+            classes.setdefault(key, []).append(k)
+        for key, rows in classes.items():
+            for run in _runs(rows):
+                if key[0] in _ADAM:
+                    self._adam(run, *key[1:])
                 else:
-                    st["buf"].mul_(mu).add_(g)
-                d = g + mu * st["buf"] if self.kind == "nesterov" else st["buf"]
-                p.sub_(LR * d)
-            else:
-                self._adam(p, g, st, LR)
+                    self._sgd(key[0], run, lr)
 
-    def _adam(self, p, g, st, LR) -> None:
-        if "m" not in st:
-            st["m"] = torch.zeros_like(p)
-            st["v"] = torch.zeros_like(p)
-        st["m"].lerp_(g, _b(1 - self.h["beta1"], p))         # b1 m + (1 - b1) g
-        st["v"].lerp_(g * g, _b(1 - self.h["beta2"], p))     # b2 v + (1 - b2) g^2
-        denom = st["v"].div(_b(self._c2, p)).sqrt_().add_(_b(self.h["eps"], p))
-        p.sub_(st["m"].div(denom).mul_(LR / _b(self._c1, p)))
+    def _sgd(self, kind: str, run: slice, lr: list[float]) -> None:
+        neg = [-r for r in lr[run]]
+        for i, (p, g) in enumerate(zip(self.params, self.grads)):
+            neg_lr = _column(neg, p)
+            if kind == "sgd":
+                p[run].addcmul_(g[run], neg_lr)
+                continue
+            buf = self.buffers[i][run]
+            mu = self._mu_cols[i][run]
+            buf.mul_(mu).add_(g[run])  # zeros on the first step, so b = g' as torch.optim
+            if kind == "nesterov":
+                p[run].addcmul_(g[run].add_(buf * mu), neg_lr)
+            else:
+                p[run].addcmul_(buf, neg_lr)
+
+    def _adam(self, run: slice, lr: float, beta1: float, beta2: float, eps: float) -> None:
+        ps = [p[run] for p in self.params]
+        gs = [g[run] for g in self.grads]
+        ms = [m[run] for m in self.moments[0]]
+        vs = [v[run] for v in self.moments[1]]
+        if hasattr(torch, "_fused_adam_") and ps[0].dtype in (torch.float32, torch.float64):
+            steps = [self.step_count] * len(ps)
+            torch._fused_adam_(ps, gs, ms, vs, [], steps, lr=lr, beta1=beta1, beta2=beta2, weight_decay=0.0,
+                               eps=eps, amsgrad=False, maximize=False)
+            return
+        c1, c2 = 1 - beta1 ** self.t, 1 - beta2 ** self.t  # Kingma & Ba 2015, Algorithm 1
+        for p, g, m, v in zip(ps, gs, ms, vs):
+            m.lerp_(g, 1 - beta1)
+            v.mul_(beta2).addcmul_(g, g, value=1 - beta2)
+            p.addcdiv_(m, (v / c2).sqrt_().add_(eps), value=-lr / c1)

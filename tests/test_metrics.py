@@ -35,8 +35,8 @@ def test_regression_metrics_match_sklearn():
 
 
 @pytest.mark.parametrize("seed", range(4))
-def test_quick_per_epoch_metrics_equal_sklearn(seed):
-    """metrics.quick (the per-epoch curves) computes the same numbers as sklearn.metrics."""
+def test_formulas_equal_sklearn(seed):
+    """metrics.quick computes the same numbers as sklearn.metrics, with classes 3..6."""
     from runner.metrics import quick
 
     rng = np.random.default_rng(seed)
@@ -44,12 +44,16 @@ def test_quick_per_epoch_metrics_equal_sklearn(seed):
     y = rng.integers(0, k, 150)
     y[:k] = np.arange(k)
     probs = rng.dirichlet(np.ones(k), 150)
-    full = evaluate("classification", y, probs, k)
+    pred = probs.argmax(1)
+    full = {"accuracy": skm.accuracy_score(y, pred),
+            "f1_macro": skm.f1_score(y, pred, average="macro", labels=np.arange(k), zero_division=0),
+            "log_loss": skm.log_loss(y, probs, labels=np.arange(k))}
     for name in ("accuracy", "f1_macro", "log_loss"):
         assert quick(name, y, probs, k) == pytest.approx(full[name], rel=1e-12, abs=1e-15)
     t = rng.normal(100, 30, 80)
     pred = t + rng.normal(0, 10, 80)
-    full = evaluate("regression", t, pred)
+    full = {"rmse": np.sqrt(skm.mean_squared_error(t, pred)), "mae": skm.mean_absolute_error(t, pred),
+            "r2": skm.r2_score(t, pred)}
     for name in ("rmse", "mae", "r2"):
         assert quick(name, t, pred) == pytest.approx(full[name], rel=1e-12)
 
@@ -60,4 +64,33 @@ def test_quick_f1_with_a_class_never_predicted():
 
     y = np.array([0, 1, 2, 2, 1, 0])
     probs = np.eye(3)[[0, 1, 1, 1, 1, 0]]
-    assert quick("f1_macro", y, probs, 3) == pytest.approx(evaluate("classification", y, probs, 3)["f1_macro"])
+    assert quick("f1_macro", y, probs, 3) == pytest.approx(
+        skm.f1_score(y, probs.argmax(1), average="macro", zero_division=0))
+
+
+@pytest.mark.parametrize("pred", [np.full(5, 3.0), np.array([3.0, 3, 3, 3, 4])])
+def test_r2_of_constant_targets_as_sklearn(pred):
+    y = np.full(5, 3.0)
+    assert quick_r2(y, pred) == skm.r2_score(y, pred)
+
+
+def test_bundled_wine_logistic_regression_metrics_match_sklearn():
+    """Real probabilities: a logistic regression on scikit-learn's bundled wine data."""
+    from sklearn.datasets import load_wine
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.preprocessing import StandardScaler
+
+    X, y = load_wine(return_X_y=True)
+    X = StandardScaler().fit_transform(X)
+    probs = LogisticRegression(C=0.05, max_iter=500).fit(X[::2], y[::2]).predict_proba(X[1::2])
+    yt = y[1::2]
+    out = evaluate("classification", yt, probs, 3)
+    assert out["accuracy"] == skm.accuracy_score(yt, probs.argmax(1))
+    assert out["f1_macro"] == pytest.approx(skm.f1_score(yt, probs.argmax(1), average="macro"), rel=1e-12)
+    assert out["log_loss"] == pytest.approx(skm.log_loss(yt, probs), rel=1e-12)
+
+
+def quick_r2(y, pred):
+    from runner.metrics import quick
+
+    return quick("r2", y, pred)

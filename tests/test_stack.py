@@ -39,7 +39,8 @@ def test_stacked_steps_match_torch_optim_member_by_member(kind):
         hyper["momentum"][2] = 0.3  # nesterov needs momentum > 0
     W = torch.randn(K, 4, 3, dtype=torch.float64, generator=g).requires_grad_()
     b = torch.randn(K, 1, 3, dtype=torch.float64, generator=g).requires_grad_()
-    stacked = StackedOptimizer(kind, [W, b], [True, False], hyper)
+    gW, gb = torch.zeros_like(W), torch.zeros_like(b)
+    stacked = StackedOptimizer(kind, [W.detach(), b.detach()], [gW, gb], [True, False], hyper)
     refs = []
     for k in range(K):
         w_k = W[k].detach().clone().requires_grad_()
@@ -56,8 +57,7 @@ def test_stacked_steps_match_torch_optim_member_by_member(kind):
     x = torch.randn(8, 4, dtype=torch.float64, generator=g)
     active = torch.ones(K, dtype=torch.bool)
     for _ in range(6):
-        W.grad = b.grad = None
-        (torch.tanh(x @ W + b) ** 2).sum().backward()
+        gW[:], gb[:] = torch.autograd.grad((torch.tanh(x @ W + b) ** 2).sum(), [W, b])
         stacked.step(hyper["lr"], active)
         for w_k, b_k, opt in refs:
             opt.zero_grad()
@@ -68,12 +68,43 @@ def test_stacked_steps_match_torch_optim_member_by_member(kind):
         assert torch.allclose(b[k], b_k, rtol=1e-12, atol=1e-12)
 
 
-def test_inactive_members_do_not_move():
-    W = torch.ones(2, 2, 2, requires_grad=True)
-    opt = StackedOptimizer("sgd", [W], [True], {"weight_decay": torch.zeros(2)})
-    W.grad = torch.ones_like(W)
-    opt.step(torch.tensor([0.1, 0.1]), torch.tensor([True, False]))
-    assert torch.all(W[1] == 1) and torch.all(W[0] == 0.9)
+@pytest.mark.parametrize("kind", STACKED_OPTIMIZERS)
+def test_inactive_members_do_not_move(kind):
+    W = torch.ones(3, 2, 2)
+    opt = StackedOptimizer(kind, [W], [torch.ones_like(W)], [True],
+                           {"weight_decay": torch.full((3,), 0.1), "momentum": torch.full((3,), 0.9),
+                            "beta1": torch.full((3,), 0.9), "beta2": torch.full((3,), 0.999),
+                            "eps": torch.full((3,), 1e-8)})
+    opt.step(torch.tensor([0.1, 0.1, 0.1]), torch.tensor([True, False, True]))
+    assert torch.all(W[1] == 1) and torch.all(W[0] < 1) and torch.equal(W[0], W[2])
+
+
+def test_members_of_mixed_kinds_step_as_each_kind_alone():
+    """One group mixing sgd, adam and nesterov members (non-contiguous) moves each member as
+    a group of that kind alone would."""
+    g = torch.Generator().manual_seed(3)
+    kinds = ["sgd", "adam", "nesterov", "adam", "sgd"]
+    K = len(kinds)
+    hyper = {"momentum": torch.full((K,), 0.9), "beta1": torch.full((K,), 0.9),
+             "beta2": torch.full((K,), 0.999), "eps": torch.full((K,), 1e-8),
+             "weight_decay": torch.tensor([0.0, 0.01, 0.1, 0.0, 0.2])}
+    lr = torch.tensor([0.1, 1e-3, 0.05, 3e-3, 0.1])
+    W0 = torch.randn(K, 4, 3, generator=g, dtype=torch.float64)
+    grads = [torch.randn(K, 4, 3, generator=g, dtype=torch.float64) for _ in range(4)]
+    W = W0.clone()
+    gW = torch.zeros_like(W)
+    mixed = StackedOptimizer(kinds, [W], [gW], [True], hyper)
+    alone = [(W0[k:k + 1].clone(), torch.zeros(1, 4, 3, dtype=torch.float64)) for k in range(K)]
+    opts = [StackedOptimizer(kinds[k], [w], [gw], [True], {n: v[k:k + 1] for n, v in hyper.items()})
+            for k, (w, gw) in enumerate(alone)]
+    for grad in grads:
+        gW.copy_(grad)
+        mixed.step(lr, torch.ones(K, dtype=torch.bool))
+        for k, (opt, (w, gw)) in enumerate(zip(opts, alone)):
+            gw.copy_(grad[k:k + 1])
+            opt.step(lr[k:k + 1], torch.ones(1, dtype=torch.bool))
+    for k, (w, _) in enumerate(alone):
+        assert torch.allclose(W[k], w[0], rtol=1e-14, atol=1e-15), kinds[k]
 
 
 def grid_of(tmp_path, body):
@@ -158,6 +189,7 @@ def test_same_final_ranking_as_single_jobs(tmp_path):
 def test_stacked_path_is_bitwise_reproducible(tmp_path):
     _, specs, ds = grid_of(tmp_path, MIXED.format(epochs=2))
     a, b = run_group(specs[:4], ds), run_group(specs[:4], ds)
+    assert all(r.diagnostics["stacked"] == 4 for r in a)
     assert [r.curves for r in a] == [r.curves for r in b] and [r.metrics for r in a] == [r.metrics for r in b]
 
 
@@ -177,6 +209,7 @@ def test_diverging_member_is_masked_out_without_disturbing_others(tmp_path):
     """)
     together = run_group(specs, ds)
     assert [r.status for r in together] == ["done", "diverged", "done"]
+    assert together[0].diagnostics["stacked"] == 3  # not the one-at-a-time fallback
     apart = run_group([specs[0], specs[2]], ds)
     for r, alone in zip([together[0], together[2]], apart):
         assert r.curves["train_loss"] == pytest.approx(alone.curves["train_loss"], rel=1e-6)
@@ -198,6 +231,7 @@ def test_early_stopping_per_member(tmp_path):
         "train.patience" = [3, 0]
     """)
     results = run_group(specs, ds)
+    assert all(r.diagnostics["stacked"] == 4 for r in results)
     stopped, full = results[:2], results[2:]
     for r in stopped:
         curve = r.curves["val_accuracy"]
