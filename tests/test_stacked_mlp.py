@@ -1,0 +1,77 @@
+"""stacked_mlp: the hand-written forward and backward against torch autograd on the
+single-job path's network (nn.Linear layers built by runner.models), member by member."""
+import pytest
+import torch
+import torch.nn.functional as F
+
+from runner.activations import ACTIVATIONS, make_activation
+from runner.stacked_mlp import StackedMLP, cross_entropy_grad, mse_grad
+
+
+def reference(net: StackedMLP, k: int, activation: str, slope: float):
+    """Member k as an nn.Sequential of nn.Linear layers holding the same weights (float64)."""
+    layers = []
+    for i, (w, b) in enumerate(zip(net.weights, net.biases)):
+        lin = torch.nn.Linear(w.shape[2], w.shape[1]).double()
+        with torch.no_grad():
+            lin.weight.copy_(w[k])
+            lin.bias.copy_(b[k])
+        layers.append(lin)
+        if i < len(net.weights) - 1:
+            layers.append(make_activation(activation, slope))
+    return layers
+
+
+def run_reference(layers, x, masks):
+    h = x if masks is None or masks[0] is None else x * masks[0]
+    j = 1
+    for layer in layers:
+        h = layer(h)
+        if not isinstance(layer, torch.nn.Linear):
+            if masks is not None and masks[j] is not None:
+                h = h * masks[j]
+            j += 1
+    return h
+
+
+@pytest.mark.parametrize("activation", sorted(ACTIVATIONS))
+@pytest.mark.parametrize("task", ["classification", "regression"])
+def test_gradients_equal_autograd(activation, task):
+    g = torch.Generator().manual_seed(7)
+    K, rows, widths, slope = 3, 9, [5, 8, 6, 4 if task == "classification" else 1], 0.1
+    net = StackedMLP(K, widths, activation, slope, dtype=torch.float64)
+    for p in net.params:
+        p.copy_(torch.randn(p.shape, generator=g, dtype=torch.float64))
+    x = torch.randn(K, rows, widths[0], generator=g, dtype=torch.float64)
+    keep = [(torch.rand(K, rows, w, generator=g) > 0.3).double() / 0.7 for w in widths[:-1]]
+    masks = [keep[0], None, keep[2]]  # input dropout, none after layer 1, dropout after layer 2
+    if task == "classification":
+        y = torch.randint(0, widths[-1], (K, rows), generator=g)
+        loss, dout = cross_entropy_grad(net.forward(x, masks, keep=True), y)
+    else:
+        y = torch.randn(K, rows, generator=g, dtype=torch.float64)
+        loss, dout = mse_grad(net.forward(x, masks, keep=True), y)
+    net.backward(dout)
+    for k in range(K):
+        layers = reference(net, k, activation, slope)
+        out = run_reference(layers, x[k], [m if m is None else m[k] for m in masks])
+        ref = F.cross_entropy(out, y[k]) if task == "classification" else F.mse_loss(out.squeeze(1), y[k])
+        ref.backward()
+        assert float(loss[k]) == pytest.approx(ref.item(), rel=1e-12)
+        linears = [m for m in layers if isinstance(m, torch.nn.Linear)]
+        for i, lin in enumerate(linears):
+            assert torch.allclose(net.gw[i][k], lin.weight.grad, rtol=1e-10, atol=1e-12), (activation, i)
+            assert torch.allclose(net.gb[i][k], lin.bias.grad, rtol=1e-10, atol=1e-12), (activation, i)
+
+
+def test_member_round_trip_and_layout():
+    net = StackedMLP(2, [3, 4, 2], "relu")
+    for i, p in enumerate(net.params):
+        p.fill_(i + 1.0)
+    saved = net.member(1)
+    assert saved.numel() == 3 * 4 + 4 * 2 + 4 + 2
+    for p in net.params:
+        p[1].zero_()
+    net.load_member(1, saved)
+    assert all(torch.equal(p[0], p[1]) for p in net.params)
+    assert [tuple(w.shape) for w in net.weights] == [(2, 4, 3), (2, 2, 4)]  # nn.Linear's (out, in)
