@@ -58,8 +58,13 @@ def at_init(net: nn.Module, x: torch.Tensor, y: torch.Tensor, loss_fn) -> dict:
 def init_stats(outputs: list[torch.Tensor], norms: list[list[float]]) -> list[dict]:
     """Per member: ``outputs`` are each hidden activation's values, (members, values);
     ``norms`` each member's weight-gradient norms, input layer first."""
-    means = [o.mean(dim=1).tolist() for o in outputs]
-    stds = [o.std(dim=1).tolist() if o.shape[1] > 1 else [0.0] * len(o) for o in outputs]
+    means, stds = [], []
+    for o in outputs:  # two passes in float64: torch's one-pass std is slow on wide rows
+        o = o.double()
+        mean = o.mean(dim=1, keepdim=True)
+        means.append(mean.squeeze(1).tolist())
+        n = o.shape[1]
+        stds.append(((o - mean).square_().sum(dim=1) / (n - 1)).sqrt_().tolist() if n > 1 else [0.0] * len(o))
     stats = []
     for k, member_norms in enumerate(norms):
         ratio = None

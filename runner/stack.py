@@ -34,11 +34,11 @@ from .activations import gain
 from .data import Dataset, split_and_scale
 from .grid import canonical
 from .initializers import initialize
-from .metrics import METRICS
+from .metrics import METRICS, for_task, quick
 from .schedules import lr_at
 from .stacked_mlp import StackedMLP, cross_entropy_grad, mse_grad
 from .stacked_optim import STACKED_OPTIMIZERS, StackedOptimizer
-from .train import JobResult, JobSpec, environment, run_job, score, streams
+from .train import JobResult, JobSpec, environment, run_job, streams
 
 __all__ = ["Stacked", "stack_key", "group_specs", "run_group", "member_bytes", "GROUP_SIZE", "MEMORY_BUDGET"]
 
@@ -130,6 +130,33 @@ def _splits(specs: list[JobSpec], ds: Dataset):
     return out
 
 
+def _scores(logits: torch.Tensor, ys: list, ds: Dataset, splits, only: str | None = None) -> list[dict]:
+    """train.score for every member at once, from logits (K, outputs, rows): the loss and
+    all metrics (or just ``only``), NaN for a member whose outputs are not all finite."""
+    finite = torch.isfinite(logits).flatten(1).all(dim=1).tolist()
+    names = [only] if only else for_task(ds.task)
+    out = []
+    if ds.task == "classification":
+        y = torch.from_numpy(np.stack(ys).astype(np.int64)).unsqueeze(1)
+        losses = (-torch.log_softmax(logits, dim=1).gather(1, y).mean(dim=(1, 2))).tolist()
+        probs = torch.softmax(logits.double(), dim=1).transpose(1, 2).numpy()  # (K, rows, classes)
+        for k, yk in enumerate(ys):
+            if not finite[k]:
+                out.append({**{m: float("nan") for m in names}, "loss": float("nan")})
+                continue
+            metrics = {m: quick(m, yk, probs[k], len(ds.classes)) for m in names}
+            out.append({**metrics, "loss": losses[k]})
+        return out
+    raw = logits[:, 0, :].double().numpy()
+    for k, (yk, sp) in enumerate(zip(ys, splits)):
+        if not finite[k]:
+            out.append({**{m: float("nan") for m in names}, "loss": float("nan")})
+            continue
+        metrics = {m: quick(m, yk, raw[k] * sp.y_std + sp.y_mean) for m in names}
+        out.append({**metrics, "loss": float(np.mean(((yk - sp.y_mean) / sp.y_std - raw[k]) ** 2))})
+    return out
+
+
 def _stacked_inputs(arrays) -> torch.Tensor:
     return torch.stack([torch.from_numpy(np.ascontiguousarray(X.reshape(len(X), -1))) for X in arrays])
 
@@ -144,17 +171,19 @@ class _Dropout:
         self.rates += [[s.settings["model"]["dropout"] for s in specs]] * (len(widths) - 2)
         self.widths = widths[:-1]
         self.used = any(any(r) for r in self.rates)
+        self._buffers: dict[int, list] = {}  # rows -> the mask tensors, refilled each step
 
     def masks(self, rows: int):
         if not self.used:
             return None
-        out = []
-        for rates, width in zip(self.rates, self.widths):
-            if not any(rates):
-                out.append(None)
-                continue
-            out.append(torch.stack([torch.empty(rows, width).bernoulli_(1.0 - p, generator=g).div_(1.0 - p)
-                                    if p > 0 else torch.ones(rows, width) for p, g in zip(rates, self.gens)]))
+        if rows not in self._buffers:
+            self._buffers[rows] = [torch.ones(len(self.gens), rows, w) if any(r) else None
+                                   for r, w in zip(self.rates, self.widths)]
+        out = self._buffers[rows]
+        for rates, mask in zip(self.rates, out):
+            for k, (p, g) in enumerate(zip(rates, self.gens)):
+                if p > 0:
+                    mask[k].bernoulli_(1.0 - p, generator=g).div_(1.0 - p)
         return out
 
 
@@ -197,6 +226,7 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
     for s, stats in zip(specs, diagnostics.init_stats([h.reshape(K, -1) for h in net.hidden], norms)):
         results.append(JobResult(key=s.key, status="done", env=env))
         results[-1].diagnostics.update(stats)
+    net.release(probe)
 
     hyper = {h: _hyper(specs, h) for h in ("momentum", "beta1", "beta2", "eps", "weight_decay")}
     opt = StackedOptimizer([t["optimizer"] for t in T], net.params, net.grads, net.decays, hyper)
@@ -218,7 +248,8 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
     limit = None  # each member's divergence limit: diverge_factor x its first mini-batch loss
     factors = _hyper(specs, "diverge_factor")
     step = 0
-    rows = torch.arange(K).unsqueeze(1)
+    X_rows, y_rows = Xtr.view(K * n, features), ytr.view(K * n)
+    offsets = (torch.arange(K) * n).unsqueeze(1)  # member k's rows start at k * n
     lr_table = [[lr_at(t, steps_per_epoch, tr) for tr in T] for t in range(steps_per_epoch * train0["epochs"])]
     fault = faults.from_environment()
     for epoch in range(train0["epochs"]):
@@ -226,14 +257,17 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
             fault.maybe_fire(epoch)
         if not any(active):
             break
-        orders = torch.stack([torch.randperm(n, generator=g[1]) for g in gens])
+        orders = torch.stack([torch.randperm(n, generator=g[1]) for g in gens]) + offsets
         totals = torch.zeros(K, dtype=torch.float64)
         count = 0
         for b in range(steps_per_epoch):
-            idx = orders[:, b * bs:(b + 1) * bs]
+            idx = orders[:, b * bs:(b + 1) * bs].reshape(-1)
+            m = len(idx) // K  # this mini-batch's rows per member
             lrs = lr_table[step]
-            logits = net.forward(Xtr[rows, idx], dropout.masks(idx.shape[1]), keep=True)
-            values, dout = loss_grad(logits, ytr[rows, idx])
+            xb = net.workspace(m).x
+            torch.index_select(X_rows, 0, idx, out=xb.view(K * m, features))
+            logits = net.forward(xb, dropout.masks(m), keep=True)
+            values, dout = loss_grad(logits, y_rows.index_select(0, idx).view(K, m))
             if limit is None:
                 limit = factors * torch.clamp(values, min=1e-12)
             bad = ~(values <= limit)  # not finite, or above the limit
@@ -263,14 +297,14 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
                 thr = [r * lam if a else 0.0 for r, lam, a in zip(lrs, prox, active)]
                 for w in net.weights:
                     regularizers.soft_threshold_(w, _column(thr, w))
-            totals.add_(values, alpha=idx.shape[1])
-            count += idx.shape[1]
+            totals.add_(values, alpha=m)
+            count += m
             step += 1
-        val_out = net.forward(Xva)
+        vals = _scores(net.forward(Xva), [sp.y_val for sp in splits], ds, splits, only=monitor)
         for k, s in enumerate(specs):
             if not active[k]:
                 continue
-            val = score(val_out[k].T, splits[k].y_val, ds, splits[k], only=monitor)
+            val = vals[k]
             c = curves[k]
             c["train_loss"].append(float(totals[k] / count))
             c["val_loss"].append(val["loss"])
@@ -305,11 +339,14 @@ def _finish(specs, ds, splits, net, results, curves, best_state, best_epoch, pro
     for k, saved in enumerate(best_state):
         if saved is not None:
             net.load_member(k, saved)  # early stopping keeps the best epoch's weights
-    outputs = {"train": net.forward(_stacked_inputs([sp.X_train for sp in splits])),
-               "val": net.forward(_stacked_inputs([sp.X_val for sp in splits]))}
-    if splits[0].X_test is not None:
-        outputs["test"] = net.forward(_stacked_inputs([sp.X_test for sp in splits]))
-    net.forward(probe_x)
+    metrics = {}
+    for split in ("train", "val", "test"):
+        if getattr(splits[0], f"X_{split}") is not None:
+            logits = net.forward(_stacked_inputs([getattr(sp, f"X_{split}") for sp in splits]))
+            metrics[split] = _scores(logits, [getattr(sp, f"y_{split}") for sp in splits], ds, splits,
+                                     only=monitor if split == "train" else None)
+            net.release(logits.shape[2])
+    net.forward(probe_x, scratch=False)
     ends = diagnostics.end_stats(net.hidden, specs[0].settings["model"]["activation"], K)
     for k, s in enumerate(specs):
         r = results[k]
@@ -319,12 +356,8 @@ def _finish(specs, ds, splits, net, results, curves, best_state, best_epoch, pro
             continue
         t = s.settings["train"]
         r.best_epoch = best_epoch[k] if t["patience"] > 0 else r.epochs_run
-        sp = splits[k]
-        for split, out in outputs.items():
-            y = {"train": sp.y_train, "val": sp.y_val, "test": sp.y_test}[split]
-            metrics = score(out[k].T, y, ds, sp, only=monitor if split == "train" else None)
-            metrics.pop("loss")
-            r.metrics[split] = metrics
+        for split, per_member in metrics.items():
+            r.metrics[split] = {m: v for m, v in per_member[k].items() if m != "loss"}
         r.diagnostics.update(ends[k])
         r.diagnostics.update(regularizers.sparsity([w[k] for w in net.weights], t["sparsity_tol"]))
         tr, va = r.metrics["train"][monitor], r.metrics["val"][monitor]

@@ -12,12 +12,12 @@ times slower on a CPU than one whose last axis is the rows.
 The backward pass is the chain rule by hand, with torch's own derivative kernels for each
 activation (the ones autograd calls; tests compare every gradient with autograd on the
 single-job network): skipping the autograd graph matters at these sizes, where the graph
-costs about as much as the arithmetic.
+costs about as much as the arithmetic. Training steps write into buffers kept from step
+to step (``_Workspace``) rather than fresh tensors.
 """
 from __future__ import annotations
 
 import torch
-import torch.nn.functional as F
 
 __all__ = ["StackedMLP", "cross_entropy_grad", "mse_grad"]
 
@@ -25,26 +25,51 @@ _aten = torch.ops.aten
 
 
 def _activation(name: str, slope: float):
-    """(forward, backward(grad, pre-activation, output)) with autograd's own derivatives."""
+    """(forward(z, out), backward(grad, z, a, out), in_place) with autograd's own derivative
+    kernels; ``in_place``: the backward needs only the output, so it may overwrite z."""
     if name == "relu":
-        return torch.relu, lambda g, z, a: _aten.threshold_backward(g, a, 0)
-    if name == "leaky_relu":
-        return (lambda z: F.leaky_relu(z, slope)), lambda g, z, a: _aten.leaky_relu_backward(g, z, slope, False)
+        return (lambda z, out: torch.relu_(z)), \
+            (lambda g, z, a, out: _aten.threshold_backward.grad_input(g, a, 0, grad_input=out)), True
     if name == "tanh":
-        return torch.tanh, lambda g, z, a: _aten.tanh_backward(g, a)
+        return (lambda z, out: torch.tanh_(z)), \
+            (lambda g, z, a, out: _aten.tanh_backward.grad_input(g, a, grad_input=out)), True
     if name == "sigmoid":
-        return torch.sigmoid, lambda g, z, a: _aten.sigmoid_backward(g, a)
+        return (lambda z, out: torch.sigmoid_(z)), \
+            (lambda g, z, a, out: _aten.sigmoid_backward.grad_input(g, a, grad_input=out)), True
+    if name == "leaky_relu":
+        return (lambda z, out: _aten.leaky_relu.out(z, slope, out=out)), \
+            (lambda g, z, a, out: _aten.leaky_relu_backward.grad_input(g, z, slope, False, grad_input=out)), False
     if name == "elu":
-        return F.elu, lambda g, z, a: _aten.elu_backward(g, 1.0, 1, 1, False, z)
+        return (lambda z, out: _aten.elu.out(z, 1.0, 1, 1, out=out)), \
+            (lambda g, z, a, out: _aten.elu_backward.grad_input(g, 1.0, 1, 1, False, z, grad_input=out)), False
     if name == "gelu":
-        return F.gelu, lambda g, z, a: _aten.gelu_backward(g, z, approximate="none")
+        return (lambda z, out: _aten.gelu.out(z, approximate="none", out=out)), \
+            (lambda g, z, a, out: _aten.gelu_backward.grad_input(g, z, approximate="none", grad_input=out)), False
     raise ValueError(f"no stacked activation {name}")
+
+
+class _Workspace:
+    """Buffers of one forward-backward at a given row count, reused step after step: fresh
+    half-megabyte tensors each step cost more in page faults than their arithmetic."""
+
+    def __init__(self, K: int, rows: int, widths: list[int], in_place: bool, dtype):
+        hidden = widths[1:-1]
+        new = lambda w: torch.empty(K, rows, w, dtype=dtype)  # noqa: E731
+        self.x = new(widths[0])
+        self.z = [new(w) for w in hidden]
+        self.a = self.z if in_place else [new(w) for w in hidden]
+        self.dropped = [new(w) for w in widths[:-1]]  # input and hidden outputs after dropout
+        self.logits = torch.empty(K, widths[-1], rows, dtype=dtype)
+        self.dh = [new(w) for w in hidden]
+        self.dz = [new(w) for w in hidden]
 
 
 class StackedMLP:
     def __init__(self, members: int, widths: list[int], activation: str, slope: float = 0.01,
                  dtype: torch.dtype = torch.float32):
         self.K = members
+        self.widths = list(widths)
+        self.dtype = dtype
         shapes = list(zip(widths[1:], widths))  # (out, in) per layer
         sizes = [members * o * i for o, i in shapes] + [members * o for o, _ in shapes]
         self.flat = torch.zeros(sum(sizes), dtype=dtype)
@@ -59,8 +84,9 @@ class StackedMLP:
         self.params = self.weights + self.biases
         self.grads = self.gw + self.gb
         self.decays = [True] * L + [False] * L  # weight decay and penalties: weights only
-        self.act, self.act_back = _activation(activation, slope)
+        self.act, self.act_back, self.in_place = _activation(activation, slope)
         self.hidden: list[torch.Tensor] = []  # each hidden activation of the last forward
+        self._work: dict[int, _Workspace] = {}
         self._saved = None
 
     def member(self, k: int) -> torch.Tensor:
@@ -74,39 +100,69 @@ class StackedMLP:
             p[k].copy_(saved[offset:offset + n].view_as(p[k]))
             offset += n
 
-    def forward(self, x: torch.Tensor, masks: list | None = None, keep: bool = False) -> torch.Tensor:
+    def workspace(self, rows: int) -> _Workspace:
+        """The reused buffers for forward-backward passes over ``rows`` rows per member."""
+        if rows not in self._work:
+            self._work[rows] = _Workspace(self.K, rows, self.widths, self.in_place, self.dtype)
+        return self._work[rows]
+
+    def release(self, rows: int) -> None:
+        self._work.pop(rows, None)
+
+    def forward(self, x: torch.Tensor, masks: list | None = None, keep: bool = False,
+                scratch: bool = True) -> torch.Tensor:
         """Logits (K, outputs, rows) for inputs ``x`` (K, rows, features). ``masks``: for the
         input and each hidden layer, a scaled dropout mask (K, rows, width) or None.
-        With ``keep``, holds what ``backward`` needs."""
-        inputs, pre = [], []
+        With ``scratch``, works in the reused buffers of ``workspace(rows)``: the logits and
+        ``hidden`` hold until the next forward over as many rows. With ``keep`` (needs
+        ``scratch``), also holds what ``backward`` needs."""
+        K, rows = x.shape[0], x.shape[1]
+        L = len(self.weights)
+        if scratch or keep:
+            ws = self.workspace(rows)
+        else:
+            new = lambda w: torch.empty(K, rows, w, dtype=self.dtype)  # noqa: E731
+            z_bufs = [new(w) for w in self.widths[1:-1]]
+            ws = None
+        inputs = []
         self.hidden = []
-        h = x if not masks or masks[0] is None else x * masks[0]
-        for i in range(len(self.weights) - 1):
+        h = x
+        if masks and masks[0] is not None:
+            h = torch.mul(x, masks[0], out=ws.dropped[0]) if ws else x * masks[0]
+        for i in range(L - 1):
             inputs.append(h)
-            z = torch.baddbmm(self.biases[i].unsqueeze(1), h, self.weights[i].transpose(1, 2))
-            a = self.act(z)
-            pre.append(z)
+            z = ws.z[i] if ws else z_bufs[i]
+            torch.baddbmm(self.biases[i].unsqueeze(1), h, self.weights[i].transpose(1, 2), out=z)
+            a = self.act(z, ws.a[i] if ws else (z if self.in_place else torch.empty_like(z)))
             self.hidden.append(a)
-            h = a if not masks or masks[i + 1] is None else a * masks[i + 1]
+            h = a
+            if masks and masks[i + 1] is not None:
+                h = torch.mul(a, masks[i + 1], out=ws.dropped[i + 1]) if ws else a * masks[i + 1]
         inputs.append(h)
-        self._saved = (inputs, pre, masks) if keep else None
-        return torch.baddbmm(self.biases[-1].unsqueeze(2), self.weights[-1], h.transpose(1, 2))
+        out = ws.logits if ws else torch.empty(K, self.widths[-1], rows, dtype=self.dtype)
+        torch.baddbmm(self.biases[-1].unsqueeze(2), self.weights[-1], h.transpose(1, 2), out=out)
+        self._saved = (inputs, ws, masks) if keep else None
+        return out
 
     def backward(self, dout: torch.Tensor) -> None:
         """Gradients of the loss into ``gw``/``gb`` (overwritten) from its gradient with
         respect to the logits of the kept forward, (K, outputs, rows)."""
-        inputs, pre, masks = self._saved
+        inputs, ws, masks = self._saved
         torch.bmm(dout, inputs[-1], out=self.gw[-1])
         torch.sum(dout, dim=2, out=self.gb[-1])
-        dh = torch.bmm(dout.transpose(1, 2), self.weights[-1])
-        for i in reversed(range(len(self.weights) - 1)):
+        last = len(self.weights) - 1
+        if last > 0:
+            torch.bmm(dout.transpose(1, 2), self.weights[-1], out=ws.dh[last - 1])
+        for i in reversed(range(last)):
+            dh = ws.dh[i]
             if masks and masks[i + 1] is not None:
-                dh = dh * masks[i + 1]
-            dz = self.act_back(dh, pre[i], self.hidden[i])
+                dh.mul_(masks[i + 1])
+            a = self.hidden[i]
+            dz = self.act_back(dh, None if self.in_place else ws.z[i], a, ws.dz[i])
             torch.bmm(dz.transpose(1, 2), inputs[i], out=self.gw[i])
             torch.sum(dz, dim=1, out=self.gb[i])
             if i > 0:
-                dh = torch.bmm(dz, self.weights[i])
+                torch.bmm(dz, self.weights[i], out=ws.dh[i - 1])
         self._saved = None
 
 

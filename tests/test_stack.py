@@ -260,3 +260,32 @@ def test_what_is_not_stacked(tmp_path):
     assert len(stacked) == 1 and stacked[0][0].settings["train"]["optimizer"] == "adam"
     plain = group_specs(specs, {specs[0].data_id: ds}, enabled=False)
     assert plain == [(s,) for s in specs] and not any(isinstance(i, Stacked) for i in plain)
+
+
+@pytest.mark.parametrize("source", ["wine", "diabetes"])
+def test_scores_of_all_members_equal_the_single_path_score(tmp_path, source):
+    """stack._scores (all members at once) gives train.score's numbers member by member,
+    including NaN for a member whose outputs overflowed."""
+    from runner.stack import _scores, _splits
+    from runner.train import score
+
+    _, specs, ds = grid_of(tmp_path, f"""
+        name = "sc"
+        seeds = [1, 2, 3]
+        [data]
+        source = "{source}"
+    """)
+    splits = _splits(specs, ds)
+    n_out = len(ds.classes) if ds.task == "classification" else 1
+    g = torch.Generator().manual_seed(0)
+    logits = torch.randn(3, n_out, len(splits[0].y_val), generator=g) * 3
+    logits[2, 0, 5] = float("inf")
+    ys = [sp.y_val for sp in splits]
+    for only in (None, specs[0].monitor):
+        together = _scores(logits, ys, ds, splits, only=only)
+        for k in range(2):
+            alone = score(logits[k].T.contiguous(), ys[k], ds, splits[k], only=only)
+            assert together[k].keys() == alone.keys()
+            for name, value in alone.items():
+                assert together[k][name] == pytest.approx(value, rel=1e-6), name
+        assert all(np.isnan(v) for v in together[2].values())
