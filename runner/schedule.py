@@ -18,6 +18,7 @@ from collections import deque
 from multiprocessing.connection import wait
 from typing import Callable
 
+import threadpoolctl
 import torch
 
 from .data import Dataset
@@ -46,6 +47,7 @@ def prepare_process(threads: int, datasets: dict[str, Dataset] | None = None, wo
     """Fixed threads and deterministic kernels: the conditions for bitwise-equal reruns."""
     global _DATASETS
     torch.set_num_threads(threads)
+    threadpoolctl.threadpool_limits(threads, user_api="blas")  # numpy's BLAS (the stacked path's products)
     torch.use_deterministic_algorithms(True)
     if datasets is not None:
         _DATASETS = datasets
@@ -74,6 +76,7 @@ class SerialExecutor:
 
     def run(self, items, datasets, on_result: OnResult, on_start: OnStart | None = None) -> None:
         previous = torch.get_num_threads()
+        blas = threadpoolctl.threadpool_limits(None)  # remembers the current limits
         prepare_process(self.threads, datasets)
         try:
             for item in items:
@@ -84,6 +87,7 @@ class SerialExecutor:
                     on_result(spec, result, 1)
         finally:
             torch.set_num_threads(previous)
+            blas.restore_original_limits()
 
 
 def _worker_main(conn, threads: int, datasets: dict) -> None:

@@ -226,7 +226,6 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
     for s, stats in zip(specs, diagnostics.init_stats([h.reshape(K, -1) for h in net.hidden], norms)):
         results.append(JobResult(key=s.key, status="done", env=env))
         results[-1].diagnostics.update(stats)
-    net.release(probe)
 
     hyper = {h: _hyper(specs, h) for h in ("momentum", "beta1", "beta2", "eps", "weight_decay")}
     opt = StackedOptimizer([t["optimizer"] for t in T], net.params, net.grads, net.decays, hyper)
@@ -300,7 +299,7 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
             totals.add_(values, alpha=m)
             count += m
             step += 1
-        vals = _scores(net.forward(Xva), [sp.y_val for sp in splits], ds, splits, only=monitor)
+        vals = _scores(net.logits(Xva), [sp.y_val for sp in splits], ds, splits, only=monitor)
         for k, s in enumerate(specs):
             if not active[k]:
                 continue
@@ -342,11 +341,10 @@ def _finish(specs, ds, splits, net, results, curves, best_state, best_epoch, pro
     metrics = {}
     for split in ("train", "val", "test"):
         if getattr(splits[0], f"X_{split}") is not None:
-            logits = net.forward(_stacked_inputs([getattr(sp, f"X_{split}") for sp in splits]))
+            logits = net.logits(_stacked_inputs([getattr(sp, f"X_{split}") for sp in splits]))
             metrics[split] = _scores(logits, [getattr(sp, f"y_{split}") for sp in splits], ds, splits,
                                      only=monitor if split == "train" else None)
-            net.release(logits.shape[2])
-    net.forward(probe_x, scratch=False)
+    net.forward(probe_x)
     ends = diagnostics.end_stats(net.hidden, specs[0].settings["model"]["activation"], K)
     for k, s in enumerate(specs):
         r = results[k]
