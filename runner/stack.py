@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import math
 import time
+from collections import OrderedDict
 from typing import Sequence
 
 import numpy as np
@@ -119,14 +120,28 @@ def run_group(specs: Sequence[JobSpec], ds: Dataset) -> list[JobResult]:
         return [run_job(s, ds) for s in specs]
 
 
+_SPLIT_CACHE: OrderedDict = OrderedDict()  # recent splits of this process, read-only here
+_SPLIT_CACHE_SIZE = 32
+_SPLIT_CACHE_MAX_BYTES = 16 * 2**20  # datasets larger than this are split afresh each time
+
+
 def _splits(specs: list[JobSpec], ds: Dataset):
-    """Each member's split; members with the same seed and data settings share one."""
-    cache, out = {}, []
+    """Each member's split. Members (and later groups in the same worker) with the same
+    dataset, seed and data settings share one: a grid repeats its seeds in every
+    configuration, and sklearn's stratified split costs a few milliseconds."""
+    out = []
     for s in specs:
-        key = (s.seed, canonical(s.settings["data"]))
-        if key not in cache:
-            cache[key] = split_and_scale(ds, s.settings["data"], s.seed)
-        out.append(cache[key])
+        key = (ds.fingerprint, s.seed, canonical(s.settings["data"]))
+        if key in _SPLIT_CACHE:
+            _SPLIT_CACHE.move_to_end(key)
+            out.append(_SPLIT_CACHE[key])
+            continue
+        sp = split_and_scale(ds, s.settings["data"], s.seed)
+        if ds.X.nbytes <= _SPLIT_CACHE_MAX_BYTES:
+            _SPLIT_CACHE[key] = sp
+            if len(_SPLIT_CACHE) > _SPLIT_CACHE_SIZE:
+                _SPLIT_CACHE.popitem(last=False)
+        out.append(sp)
     return out
 
 
@@ -228,12 +243,13 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
         results[-1].diagnostics.update(stats)
 
     hyper = {h: _hyper(specs, h) for h in ("momentum", "beta1", "beta2", "eps", "weight_decay")}
-    opt = StackedOptimizer([t["optimizer"] for t in T], net.params, net.grads, net.decays, hyper)
+    opt = StackedOptimizer([t["optimizer"] for t in T], [net.flat], [net.gflat], [net.is_weight], hyper)
     l2 = [2.0 * t["l2"] for t in T]  # gradient of l2 * sum(w^2)
     l1 = [t["l1"] if t["l1_mode"] == "penalty" else 0.0 for t in T]
     prox = [t["l1"] if t["l1_mode"] == "proximal" else 0.0 for t in T]
-    l2_cols = [_column(l2, w) for w in net.weights] if any(l2) else None
-    l1_cols = [_column(l1, w) for w in net.weights] if any(l1) else None
+    # penalties act on weights only: per-member strength times the weight mask, (K, P)
+    l2_coef = _column(l2, net.flat) * net.is_weight if any(l2) else None
+    l1_coef = _column(l1, net.flat) * net.is_weight if any(l1) else None
     clip = [t["clip_norm"] for t in T]
     dropout = _Dropout(specs, gens, widths)
 
@@ -280,22 +296,18 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
                         results[k].epochs_run = epoch + 1
                         active[k] = False
             net.backward(dout)
-            if l2_cols is not None:
-                for w, g, col in zip(net.weights, net.gw, l2_cols):
-                    g.addcmul_(w, col)
-            if l1_cols is not None:
-                for w, g, col in zip(net.weights, net.gw, l1_cols):
-                    g.addcmul_(torch.sign(w), col)
+            if l2_coef is not None:
+                net.gflat.addcmul_(net.flat, l2_coef)
+            if l1_coef is not None:
+                net.gflat.addcmul_(torch.sign(net.flat), l1_coef)
             if any(clip):  # torch.nn.utils.clip_grad_norm_ per member: scale by max_norm / (norm + 1e-6), at most 1
-                norm = torch.stack([g.reshape(K, -1).norm(dim=1) for g in net.grads]).norm(dim=0).tolist()
+                norm = net.gflat.norm(dim=1).tolist()
                 coef = [min(c / (v + 1e-6), 1.0) if c > 0 else 1.0 for c, v in zip(clip, norm)]
-                for g in net.grads:
-                    g.mul_(_column(coef, g))
+                net.gflat.mul_(_column(coef, net.gflat))
             opt.step(lrs, active)
-            if any(prox):
+            if any(prox):  # soft-threshold the weights (biases get threshold 0: unchanged)
                 thr = [r * lam if a else 0.0 for r, lam, a in zip(lrs, prox, active)]
-                for w in net.weights:
-                    regularizers.soft_threshold_(w, _column(thr, w))
+                regularizers.soft_threshold_(net.flat, _column(thr, net.flat) * net.is_weight)
             totals.add_(values, alpha=m)
             count += m
             step += 1

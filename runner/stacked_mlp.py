@@ -1,8 +1,9 @@
 """K same-shaped MLPs as one computation: batched forward and backward, written out.
 
 Layer i of member k has weights ``weights[i][k]`` (out, in), nn.Linear's layout, and bias
-``biases[i][k]`` (out,). All parameters live in one flat buffer and all gradients in
-another, each layer's block contiguous, so the optimizer sees a few large tensors.
+``biases[i][k]`` (out,), all views into row k of one (K, P) buffer ``flat`` (gradients in
+``gflat``), so the optimizer, clipping and penalties act on every member's parameters
+with one operation and a per-member column.
 
 Hidden layers run as torch.baddbmm over the member axis, (K, rows, in) -> (K, rows, out).
 The output layer is computed transposed, (K, out, in) @ (K, in, rows) -> (K, out, rows):
@@ -89,19 +90,21 @@ class StackedMLP:
         self.widths = list(widths)
         self.dtype = dtype
         shapes = list(zip(widths[1:], widths))  # (out, in) per layer
-        sizes = [members * o * i for o, i in shapes] + [members * o for o, _ in shapes]
-        self.flat = torch.zeros(sum(sizes), dtype=dtype)
+        P = sum(o * i + o for o, i in shapes)
+        # member k's parameters are row k of a (K, P) buffer, layer by layer: weights then bias
+        self.flat = torch.zeros(members, P, dtype=dtype)
         self.gflat = torch.zeros_like(self.flat)
-        L = len(shapes)
-        views = [t.view(members, -1) for t in self.flat.split(sizes)]
-        gviews = [t.view(members, -1) for t in self.gflat.split(sizes)]
-        self.weights = [v.view(members, o, i) for v, (o, i) in zip(views[:L], shapes)]
-        self.biases = views[L:]
-        self.gw = [v.view(members, o, i) for v, (o, i) in zip(gviews[:L], shapes)]
-        self.gb = gviews[L:]
-        self.params = self.weights + self.biases
-        self.grads = self.gw + self.gb
-        self.decays = [True] * L + [False] * L  # weight decay and penalties: weights only
+        self.is_weight = torch.zeros(P, dtype=dtype)  # 1 over weights, 0 over biases
+        self.weights, self.biases, self.gw, self.gb = [], [], [], []
+        offset = 0
+        for o, i in shapes:
+            self.weights.append(self.flat[:, offset:offset + o * i].view(members, o, i))
+            self.gw.append(self.gflat[:, offset:offset + o * i].view(members, o, i))
+            self.is_weight[offset:offset + o * i] = 1.0
+            offset += o * i
+            self.biases.append(self.flat[:, offset:offset + o])
+            self.gb.append(self.gflat[:, offset:offset + o])
+            offset += o
         self.act, self.act_back, self.in_place = _activation(activation, slope)
         self.hidden: list[torch.Tensor] = []  # each hidden activation of the last forward
         self._work: dict[int, _Workspace] = {}
@@ -109,14 +112,10 @@ class StackedMLP:
 
     def member(self, k: int) -> torch.Tensor:
         """A copy of member k's parameters, for restoring its best epoch later."""
-        return torch.cat([p[k].reshape(-1) for p in self.params])
+        return self.flat[k].clone()
 
     def load_member(self, k: int, saved: torch.Tensor) -> None:
-        offset = 0
-        for p in self.params:
-            n = p[k].numel()
-            p[k].copy_(saved[offset:offset + n].view_as(p[k]))
-            offset += n
+        self.flat[k].copy_(saved)
 
     def workspace(self, rows: int) -> _Workspace:
         """The reused buffers for forward-backward passes over ``rows`` rows per member."""

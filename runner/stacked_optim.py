@@ -8,7 +8,8 @@ tensors. The update rules are torch.optim's (tests compare them step by step):
 - nesterov: b as momentum, p -= lr (g' + mu b)                         (Sutskever et al. 2013)
 - adam:     m, v moving averages of g', bias-corrected (Kingma & Ba 2015, Algorithm 1)
 - adamw:    p *= 1 - lr wd, then adam on g (Loshchilov & Hutter 2019)
-Weight decay acts only on the tensors ``decays`` marks (weights, not biases).
+Weight decay acts only where ``decays`` says, per tensor: True, False, or a 0/1 mask over
+the tensor's trailing axes (weights 1, biases 0 in a stacked network's (K, P) buffer).
 
 Members of one kind with the same settings step together, on contiguous runs of members
 (slices, not copies): the sgd family with a per-member learning-rate column, the adam family
@@ -66,8 +67,16 @@ class StackedOptimizer:
             self.moments = ([torch.zeros_like(p) for p in params], [torch.zeros_like(p) for p in params])
         if any(k in ("momentum", "nesterov") for k in self.kinds):
             self.buffers = [torch.zeros_like(p) for p in params]
-        self._coupled_cols = [_column(self.coupled, p) for p in params] if any(self.coupled) else None
+        self._coupled = [self._decay_coef(self.coupled, p, d) for p, d in zip(params, decays)] \
+            if any(self.coupled) else None
         self._mu_cols = [_column(h["momentum"], p) for p in params]
+
+    @staticmethod
+    def _decay_coef(values, p: torch.Tensor, decay) -> torch.Tensor | None:
+        """Per-member ``values`` as a coefficient over p, zero where p does not decay."""
+        if isinstance(decay, torch.Tensor):
+            return _column(values, p) * decay
+        return _column(values, p) if decay else None
 
     @torch.no_grad()
     def step(self, lr: Sequence[float] | torch.Tensor, active: Sequence[bool] | torch.Tensor) -> None:
@@ -76,15 +85,17 @@ class StackedOptimizer:
         self.step_count.fill_(self.t)
         lr = lr.tolist() if isinstance(lr, torch.Tensor) else list(lr)
         active = active.tolist() if isinstance(active, torch.Tensor) else list(active)
-        if self._coupled_cols is not None:
-            for p, g, decay, col in zip(self.params, self.grads, self.decays, self._coupled_cols):
-                if decay:
-                    g.addcmul_(p, col)
+        if self._coupled is not None:
+            for p, g, coef in zip(self.params, self.grads, self._coupled):
+                if coef is not None:
+                    g.addcmul_(p, coef)
         if any(w and a for w, a in zip(self.decoupled, active)):
-            shrink = [1.0 - r * w if a else 1.0 for r, w, a in zip(lr, self.decoupled, active)]
+            amount = [r * w if a else 0.0 for r, w, a in zip(lr, self.decoupled, active)]
             for p, decay in zip(self.params, self.decays):
-                if decay:
-                    p.mul_(_column(shrink, p))
+                coef = self._decay_coef(amount, p, decay)
+                if coef is not None:
+                    p.mul_(1.0 - coef)
+        neg_lr = torch.tensor([-r for r in lr], dtype=self.params[0].dtype)
         classes: dict[tuple, list[int]] = {}
         for k, kind in enumerate(self.kinds):
             if not active[k]:
@@ -97,12 +108,11 @@ class StackedOptimizer:
                 if key[0] in _ADAM:
                     self._adam(run, *key[1:])
                 else:
-                    self._sgd(key[0], run, lr)
+                    self._sgd(key[0], run, neg_lr)
 
-    def _sgd(self, kind: str, run: slice, lr: list[float]) -> None:
-        neg = [-r for r in lr[run]]
+    def _sgd(self, kind: str, run: slice, neg_lr_all: torch.Tensor) -> None:
         for i, (p, g) in enumerate(zip(self.params, self.grads)):
-            neg_lr = _column(neg, p)
+            neg_lr = neg_lr_all[run].view(-1, *([1] * (p.dim() - 1)))
             if kind == "sgd":
                 p[run].addcmul_(g[run], neg_lr)
                 continue

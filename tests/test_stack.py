@@ -289,3 +289,29 @@ def test_scores_of_all_members_equal_the_single_path_score(tmp_path, source):
             for name, value in alone.items():
                 assert together[k][name] == pytest.approx(value, rel=1e-6), name
         assert all(np.isnan(v) for v in together[2].values())
+
+
+@pytest.mark.parametrize("kind", STACKED_OPTIMIZERS)
+def test_a_decay_mask_over_one_buffer_steps_as_separate_tensors(kind):
+    """Weights and biases packed in one (K, P) buffer with a 0/1 decay mask move exactly as
+    the same tensors kept apart with decay True/False (which the torch.optim test checks)."""
+    g = torch.Generator().manual_seed(5)
+    K = 3
+    hyper = {"momentum": torch.tensor([0.9, 0.5, 0.7]), "beta1": torch.full((K,), 0.9),
+             "beta2": torch.full((K,), 0.99), "eps": torch.full((K,), 1e-8),
+             "weight_decay": torch.tensor([0.1, 0.0, 0.05])}
+    W = torch.randn(K, 4, 3, generator=g, dtype=torch.float64)
+    b = torch.randn(K, 3, generator=g, dtype=torch.float64)
+    flat = torch.cat([W.reshape(K, -1), b], dim=1)
+    mask = torch.cat([torch.ones(12), torch.zeros(3)]).double()
+    gW, gb, gflat = torch.zeros_like(W), torch.zeros_like(b), torch.zeros_like(flat)
+    apart = StackedOptimizer(kind, [W, b], [gW, gb], [True, False], hyper)
+    packed = StackedOptimizer(kind, [flat], [gflat], [mask], hyper)
+    lr = torch.tensor([0.05, 0.01, 0.02])
+    for _ in range(4):
+        gW.copy_(torch.randn(W.shape, generator=g, dtype=torch.float64))
+        gb.copy_(torch.randn(b.shape, generator=g, dtype=torch.float64))
+        gflat.copy_(torch.cat([gW.reshape(K, -1), gb], dim=1))
+        apart.step(lr, torch.ones(K, dtype=torch.bool))
+        packed.step(lr, torch.ones(K, dtype=torch.bool))
+    assert torch.allclose(flat, torch.cat([W.reshape(K, -1), b], dim=1), rtol=1e-14, atol=1e-15)

@@ -40,8 +40,7 @@ def test_gradients_equal_autograd(activation, task):
     g = torch.Generator().manual_seed(7)
     K, rows, widths, slope = 3, 9, [5, 8, 6, 4 if task == "classification" else 1], 0.1
     net = StackedMLP(K, widths, activation, slope, dtype=torch.float64)
-    for p in net.params:
-        p.copy_(torch.randn(p.shape, generator=g, dtype=torch.float64))
+    net.flat.copy_(torch.randn(net.flat.shape, generator=g, dtype=torch.float64))
     x = torch.randn(K, rows, widths[0], generator=g, dtype=torch.float64)
     keep = [(torch.rand(K, rows, w, generator=g) > 0.3).double() / 0.7 for w in widths[:-1]]
     masks = [keep[0], None, keep[2]]  # input dropout, none after layer 1, dropout after layer 2
@@ -66,12 +65,14 @@ def test_gradients_equal_autograd(activation, task):
 
 def test_member_round_trip_and_layout():
     net = StackedMLP(2, [3, 4, 2], "relu")
-    for i, p in enumerate(net.params):
+    params = net.weights + net.biases
+    for i, p in enumerate(params):
         p.fill_(i + 1.0)
+    assert float(net.flat.sum()) == 2 * ((3 * 4) * 1 + (4 * 2) * 2 + 4 * 3 + 2 * 4)  # views of one buffer
+    assert float((net.flat * net.is_weight).sum()) == 2 * (3 * 4 * 1 + 4 * 2 * 2)
     saved = net.member(1)
     assert saved.numel() == 3 * 4 + 4 * 2 + 4 + 2
-    for p in net.params:
-        p[1].zero_()
+    net.flat[1].zero_()
     net.load_member(1, saved)
-    assert all(torch.equal(p[0], p[1]) for p in net.params)
+    assert all(torch.equal(p[0], p[1]) for p in params)
     assert [tuple(w.shape) for w in net.weights] == [(2, 4, 3), (2, 2, 4)]  # nn.Linear's (out, in)
