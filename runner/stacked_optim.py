@@ -44,6 +44,7 @@ def _runs(rows: list[int]) -> list[slice]:
 
 
 class StackedOptimizer:
+    fused = hasattr(torch, "_fused_adam_")  # torch's fused Adam kernel; else the written-out rule
     def __init__(self, kinds: str | Sequence[str], params: list[torch.Tensor], grads: list[torch.Tensor],
                  decays: list[bool], hyper: dict[str, torch.Tensor]):
         K = params[0].shape[0]
@@ -95,47 +96,63 @@ class StackedOptimizer:
                 coef = self._decay_coef(amount, p, decay)
                 if coef is not None:
                     p.mul_(1.0 - coef)
+        for action in self._plan(lr, active):
+            action()
+
+    def _plan(self, lr: list[float], active: list[bool]) -> list:
+        """The step's updates as closures over slices, remade only when the learning rates
+        or the active members change (with a constant rate: once)."""
+        key = (tuple(lr), tuple(active))
+        if getattr(self, "_plan_key", None) == key:
+            return self._plan_actions
         neg_lr = torch.tensor([-r for r in lr], dtype=self.params[0].dtype)
         classes: dict[tuple, list[int]] = {}
         for k, kind in enumerate(self.kinds):
             if not active[k]:
                 continue
-            key = ((kind, lr[k], self.h["beta1"][k], self.h["beta2"][k], self.h["eps"][k])
-                   if kind in _ADAM else (kind,))
-            classes.setdefault(key, []).append(k)
-        for key, rows in classes.items():
+            ckey = ((kind, lr[k], self.h["beta1"][k], self.h["beta2"][k], self.h["eps"][k])
+                    if kind in _ADAM else (kind,))
+            classes.setdefault(ckey, []).append(k)
+        actions = []
+        for ckey, rows in classes.items():
             for run in _runs(rows):
-                if key[0] in _ADAM:
-                    self._adam(run, *key[1:])
-                else:
-                    self._sgd(key[0], run, neg_lr)
+                actions.append(self._adam_action(run, *ckey[1:]) if ckey[0] in _ADAM
+                               else self._sgd_action(ckey[0], run, neg_lr))
+        self._plan_key, self._plan_actions = key, actions
+        return actions
 
-    def _sgd(self, kind: str, run: slice, neg_lr_all: torch.Tensor) -> None:
+    def _sgd_action(self, kind: str, run: slice, neg_lr_all: torch.Tensor):
+        parts = []
         for i, (p, g) in enumerate(zip(self.params, self.grads)):
             neg_lr = neg_lr_all[run].view(-1, *([1] * (p.dim() - 1)))
             if kind == "sgd":
-                p[run].addcmul_(g[run], neg_lr)
-                continue
-            buf = self.buffers[i][run]
-            mu = self._mu_cols[i][run]
-            buf.mul_(mu).add_(g[run])  # zeros on the first step, so b = g' as torch.optim
-            if kind == "nesterov":
-                p[run].addcmul_(g[run].add_(buf * mu), neg_lr)
+                parts.append((p[run], g[run], None, None, neg_lr))
             else:
-                p[run].addcmul_(buf, neg_lr)
+                parts.append((p[run], g[run], self.buffers[i][run], self._mu_cols[i][run], neg_lr))
 
-    def _adam(self, run: slice, lr: float, beta1: float, beta2: float, eps: float) -> None:
+        def step():
+            for p, g, buf, mu, neg_lr in parts:
+                if buf is None:
+                    p.addcmul_(g, neg_lr)
+                    continue
+                buf.mul_(mu).add_(g)  # zeros on the first step, so b = g' as torch.optim
+                p.addcmul_(g.add_(buf * mu) if kind == "nesterov" else buf, neg_lr)
+        return step
+
+    def _adam_action(self, run: slice, lr: float, beta1: float, beta2: float, eps: float):
         ps = [p[run] for p in self.params]
         gs = [g[run] for g in self.grads]
         ms = [m[run] for m in self.moments[0]]
         vs = [v[run] for v in self.moments[1]]
-        if hasattr(torch, "_fused_adam_") and ps[0].dtype in (torch.float32, torch.float64):
-            steps = [self.step_count] * len(ps)
-            torch._fused_adam_(ps, gs, ms, vs, [], steps, lr=lr, beta1=beta1, beta2=beta2, weight_decay=0.0,
-                               eps=eps, amsgrad=False, maximize=False)
-            return
-        c1, c2 = 1 - beta1 ** self.t, 1 - beta2 ** self.t  # Kingma & Ba 2015, Algorithm 1
-        for p, g, m, v in zip(ps, gs, ms, vs):
-            m.lerp_(g, 1 - beta1)
-            v.mul_(beta2).addcmul_(g, g, value=1 - beta2)
-            p.addcdiv_(m, (v / c2).sqrt_().add_(eps), value=-lr / c1)
+        steps = [self.step_count] * len(ps)
+        if self.fused and ps[0].dtype in (torch.float32, torch.float64):
+            return lambda: torch._fused_adam_(ps, gs, ms, vs, [], steps, lr=lr, beta1=beta1, beta2=beta2,
+                                              weight_decay=0.0, eps=eps, amsgrad=False, maximize=False)
+
+        def step():  # Kingma & Ba 2015, Algorithm 1
+            c1, c2 = 1 - beta1 ** self.t, 1 - beta2 ** self.t
+            for p, g, m, v in zip(ps, gs, ms, vs):
+                m.lerp_(g, 1 - beta1)
+                v.mul_(beta2).addcmul_(g, g, value=1 - beta2)
+                p.addcdiv_(m, (v / c2).sqrt_().add_(eps), value=-lr / c1)
+        return step
