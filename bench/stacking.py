@@ -203,6 +203,9 @@ class PeakRSS:
 
 def tool(grid, workers: int, stack: bool):
     """(wall seconds, sum of the jobs' own training seconds, peak worker RSS bytes)."""
+    from runner import stack as stacking
+
+    stacking._SPLIT_CACHE.clear()  # each run starts as a fresh `recipe run` would
     with tempfile.TemporaryDirectory() as tmp:
         with Store(Path(tmp) / "b.sqlite") as db:
             executor = make_executor("local", workers)
