@@ -22,9 +22,8 @@ RECIPE = """
     hidden = [16]
     [train]
     epochs = {epochs}
-    batch_size = 8
     [factors]
-    "train.optimizer" = ["sgd", "adam"]
+    "train.batch_size" = [8, 16]
 """
 
 
@@ -87,7 +86,7 @@ def test_worker_death_is_retried_and_result_is_unchanged(tmp_path):
     assert proc.returncode == 0
     got = rows(store)
     assert [v[0] for v in got.values()] == ["done"] * 4
-    # The dying worker held one stacked group (one optimizer's two seeds): both were tried again.
+    # The dying worker held one stacked group (one batch size's two seeds): both were tried again.
     assert sorted(v[2] for v in got.values()) == [1, 1, 2, 2]
     assert invoke("run", path, "--store", clean, "--workers", 1, "-q").exit_code == 0
     assert stored_metrics(store) == stored_metrics(clean)
@@ -108,7 +107,7 @@ def test_worker_that_always_dies_is_recorded_failed(tmp_path):
 
 def test_job_time_limit_in_the_recipe(tmp_path):
     path = recipe(tmp_path, epochs=100000)
-    path.write_text(path.read_text().replace("batch_size = 8", "batch_size = 8\ntime_limit = 0.5"))
+    path.write_text(path.read_text().replace("[train]", "[train]\ntime_limit = 0.5"))
     store = tmp_path / "s.sqlite"
     assert invoke("run", path, "--store", store, "--workers", 1, "-q").exit_code == 0
     assert {v[0] for v in rows(store).values()} == {"timeout"}
@@ -142,7 +141,7 @@ def test_second_runner_refuses_then_stale_lock_is_recovered(tmp_path):
     second = invoke("run", path, "--store", store, "--workers", 1)
     assert second.exit_code == 2
     assert f"pid {first.pid}" in second.stderr and "is using this store" in second.stderr
-    # the first runner holds one stacked group: one optimizer's two seeds are running
+    # the first runner holds one stacked group: one batch size's two seeds are running
     assert wait_for(lambda: "2 running" in invoke("status", path, "--store", store).stdout, 30)
     os.killpg(first.pid, signal.SIGKILL)  # leaves its lock and its running mark behind
     first.wait()

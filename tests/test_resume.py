@@ -18,9 +18,9 @@ RECIPE = """
     dropout = 0.1
     [train]
     epochs = 150
-    batch_size = 8
     [factors]
-    "train.optimizer" = ["sgd", "adam"]
+    "train.batch_size" = [8, 16]  # two stacked groups of four
+
 """
 
 
