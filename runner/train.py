@@ -215,8 +215,8 @@ def _train(spec: JobSpec, ds: Dataset, result: JobResult, start: float):
     for split, X, y in (("train", sp.X_train, sp.y_train), ("val", sp.X_val, sp.y_val),
                         ("test", sp.X_test, sp.y_test)):
         if X is not None:
-            # val and test: every metric through sklearn.metrics; train: the monitored metric
-            # only (it feeds the overfitting gap), by its formula (metrics.quick).
+            # val and test: every metric; train: the monitored metric only (it feeds the
+            # overfitting gap).
             out = _evaluate(net, torch.from_numpy(np.ascontiguousarray(X)), y, ds, sp,
                             only=spec.monitor if split == "train" else None)
             out.pop("loss")
@@ -240,8 +240,8 @@ def _evaluate(net, X: torch.Tensor, y: np.ndarray, ds: Dataset, sp, only: str | 
 
 @torch.no_grad()
 def score(out: torch.Tensor, y: np.ndarray, ds: Dataset, sp, only: str | None = None) -> dict[str, float]:
-    """Loss and metrics of a network's raw outputs ``out`` for targets ``y``: all metrics
-    through sklearn.metrics, or with ``only`` just that one (for per-epoch curves)."""
+    """Loss and metrics of a network's raw outputs ``out`` for targets ``y``: all metrics of
+    the task (metrics.py), or with ``only`` just that one (for per-epoch curves)."""
     if not torch.isfinite(out).all():
         names = [only] if only else [m for m, (task, _) in METRICS.items() if task == ds.task]
         return {**{m: float("nan") for m in names}, "loss": float("nan")}
