@@ -265,6 +265,7 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
     step = 0
     X_rows, y_rows = Xtr.view(K * n, features), ytr.view(K * n)
     offsets = (torch.arange(K) * n).unsqueeze(1)  # member k's rows start at k * n
+    X_epoch, y_epoch = torch.empty_like(Xtr), torch.empty_like(ytr)
     lr_table = [[lr_at(t, steps_per_epoch, tr) for tr in T] for t in range(steps_per_epoch * train0["epochs"])]
     fault = faults.from_environment()
     for epoch in range(train0["epochs"]):
@@ -272,17 +273,19 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
             fault.maybe_fire(epoch)
         if not any(active):
             break
-        orders = torch.stack([torch.randperm(n, generator=g[1]) for g in gens]) + offsets
+        # each member's rows in its own order for this epoch, gathered once: mini-batches are
+        # then slices (K, m, features) of it
+        order = (torch.stack([torch.randperm(n, generator=g[1]) for g in gens]) + offsets).view(-1)
+        torch.index_select(X_rows, 0, order, out=X_epoch.view(K * n, features))
+        torch.index_select(y_rows, 0, order, out=y_epoch.view(K * n))
         totals = torch.zeros(K, dtype=torch.float64)
         count = 0
         for b in range(steps_per_epoch):
-            idx = orders[:, b * bs:(b + 1) * bs].reshape(-1)
-            m = len(idx) // K  # this mini-batch's rows per member
+            xb, yb = X_epoch[:, b * bs:(b + 1) * bs], y_epoch[:, b * bs:(b + 1) * bs]
+            m = xb.shape[1]  # this mini-batch's rows per member
             lrs = lr_table[step]
-            xb = net.workspace(m).x
-            torch.index_select(X_rows, 0, idx, out=xb.view(K * m, features))
             logits = net.forward(xb, dropout.masks(m), keep=True)
-            values, dout = loss_grad(logits, y_rows.index_select(0, idx).view(K, m))
+            values, dout = loss_grad(logits, yb)
             if limit is None:
                 limit = factors * torch.clamp(values, min=1e-12)
             bad = ~(values <= limit)  # not finite, or above the limit

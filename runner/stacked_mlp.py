@@ -14,7 +14,9 @@ The backward pass is the chain rule by hand, with torch's own derivative kernels
 activation (the ones autograd calls; tests compare every gradient with autograd on the
 single-job network): skipping the autograd graph matters at these sizes, where the graph
 costs about as much as the arithmetic. Training steps write into buffers kept from step
-to step (``_Workspace``) rather than fresh tensors.
+to step (``_Workspace``) rather than fresh tensors, as few as the chain rule allows: at
+these sizes the products run at half their in-cache rate once the step's working set
+spills out of the core's cache.
 """
 from __future__ import annotations
 
@@ -83,14 +85,13 @@ class _Workspace:
             self._np[key] = (t if i is None else t[i]).numpy()
         return self._np[key]
 
-    def __getattr__(self, name):  # x, dropped, dh, dz: only for training steps
-        if name not in ("x", "dropped", "dh", "dz"):
+    def __getattr__(self, name):  # dropped, dh: only for training steps
+        if name not in ("dropped", "dh"):
             raise AttributeError(name)
         if self._train is None:
-            hidden = self.widths[1:-1]
-            self._train = {"x": self.new(self.widths[0]),
-                           "dropped": [self.new(w) for w in self.widths[:-1]],  # after dropout
-                           "dh": [self.new(w) for w in hidden], "dz": [self.new(w) for w in hidden]}
+            self._train = {"dropped": [self.new(w) for w in self.widths[:-1]],  # after dropout
+                           # gradients at each hidden layer's output, then (in place) its input
+                           "dh": [self.new(w) for w in self.widths[1:-1]]}
         return self._train[name]
 
 
@@ -187,8 +188,9 @@ class StackedMLP:
             dh = ws.dh[i]
             if masks and masks[i + 1] is not None:
                 dh.mul_(masks[i + 1])
-            dz = self.act_back(dh, None if self.in_place else ws.z[i], self.hidden[i], ws.dz[i])
-            dz_np = ws.arr("dz", i)
+            # elementwise, so it may write over its own input: one buffer less to keep in cache
+            dz = self.act_back(dh, None if self.in_place else ws.z[i], self.hidden[i], dh)
+            dz_np = ws.arr("dh", i)
             np.matmul(_T(dz_np), inputs[i], out=self._gw_np[i])
             torch.sum(dz, dim=1, out=self.gb[i])
             if i > 0:
