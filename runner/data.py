@@ -210,22 +210,30 @@ def _target(y: np.ndarray, task: str, label: str, is_text: bool):
     return task, np.array([index[v] for v in y.tolist()], dtype=np.int64), classes
 
 
+def _split_off(idx: np.ndarray, share: float, seed: int, strat: np.ndarray | None):
+    """(kept, split off) rows of ``idx``: exactly sklearn's train_test_split(idx,
+    test_size=share, random_state=seed, stratify=strat), through the splitter it uses,
+    without its argument checks (about a millisecond a call, paid once per job)."""
+    from sklearn.model_selection import ShuffleSplit, StratifiedShuffleSplit
+
+    splitter = (ShuffleSplit if strat is None else StratifiedShuffleSplit)(
+        n_splits=1, test_size=share, random_state=seed)
+    kept, off = next(splitter.split(idx, strat))
+    return idx[kept], idx[off]
+
+
 def split_and_scale(ds: Dataset, data: Mapping[str, Any], seed: int) -> Splits:
     """One seed's split. Scaling statistics come from the training rows only."""
-    from sklearn.model_selection import train_test_split
-
     split = data["split"]
     idx = np.arange(len(ds.y))
     strat = ds.y if (split["stratify"] and ds.task == "classification") else None
     test_idx = None
     try:
         if split["test"] > 0:
-            idx, test_idx = train_test_split(idx, test_size=split["test"], random_state=seed,
-                                             stratify=strat)
+            idx, test_idx = _split_off(idx, split["test"], seed, strat)
             strat = ds.y[idx] if strat is not None else None
         val_share = split["val"] / (1.0 - split["test"])
-        train_idx, val_idx = train_test_split(idx, test_size=val_share, random_state=seed,
-                                              stratify=strat)
+        train_idx, val_idx = _split_off(idx, val_share, seed, strat)
     except ValueError as exc:
         raise DataError(f"cannot split the data as asked ({exc})", key="data.split",
                         hint="Use larger val/test fractions or stratify = false") from None

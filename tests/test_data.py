@@ -41,6 +41,24 @@ def test_split_matches_sklearn_stratified_80_20():
     assert np.all(np.abs(counts - np.bincount(ds.y) * 0.2) <= 1)
 
 
+@pytest.mark.parametrize("stratify", [True, False])
+def test_split_rows_are_exactly_sklearn_train_test_split(stratify):
+    """Row for row and in order, the splits are sklearn's train_test_split applied twice
+    (test first, then val from the rest), stratified or not."""
+    ds = load_dataset(settings(source="wine"), DATA)
+    data = settings(source="wine", split={"val": 0.2, "test": 0.25, "stratify": stratify})
+    sp = split_and_scale(ds, data, seed=7)
+    idx = np.arange(len(ds.y))
+    rest, test_idx = train_test_split(idx, test_size=0.25, random_state=7, stratify=ds.y if stratify else None)
+    train_idx, val_idx = train_test_split(rest, test_size=0.2 / 0.75, random_state=7,
+                                          stratify=ds.y[rest] if stratify else None)
+    for got, rows in ((sp.y_train, train_idx), (sp.y_val, val_idx), (sp.y_test, test_idx)):
+        assert np.array_equal(got, ds.y[rows])
+    flat = ds.X.reshape(len(ds.X), -1)
+    expect = (flat[train_idx] - sp.scaler_mean) / flat[train_idx].std(axis=0)
+    assert np.allclose(sp.X_train.reshape(len(train_idx), -1), expect, atol=1e-5)
+
+
 def test_standardization_uses_training_rows_only():
     """Fitted mean equals the training split's mean; digits has constant training columns
     that keep scale 1 (no NaN)."""
