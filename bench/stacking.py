@@ -36,7 +36,7 @@ from runner.recipe import parse_recipe  # noqa: E402
 from runner.store import Store  # noqa: E402
 
 EPOCHS, BATCH, HIDDEN = 10, 64, (128, 128)
-ROUNDS = 3
+ROUNDS = 5
 METHODS = ("plain PyTorch loop", "sklearn MLPClassifier", "tool, no stacking", "tool, stacked")
 
 GRID_A = f"""

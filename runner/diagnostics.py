@@ -59,12 +59,15 @@ def init_stats(outputs: list[torch.Tensor], norms: list[list[float]]) -> list[di
     """Per member: ``outputs`` are each hidden activation's values, (members, values);
     ``norms`` each member's weight-gradient norms, input layer first."""
     means, stds = [], []
-    for o in outputs:  # two passes in float64: torch's one-pass std is slow on wide rows
-        o = o.double()
-        mean = o.mean(dim=1, keepdim=True)
-        means.append(mean.squeeze(1).tolist())
+    for o in outputs:  # two passes, summed in float64 (torch's one-pass std is slow on wide rows)
         n = o.shape[1]
-        stds.append(((o - mean).square_().sum(dim=1) / (n - 1)).sqrt_().tolist() if n > 1 else [0.0] * len(o))
+        mean = o.sum(dim=1, keepdim=True, dtype=torch.float64) / n
+        means.append(mean.squeeze(1).tolist())
+        if n > 1:  # deviations from the mean rounded to o's dtype: the variance does not move
+            dev = (o - mean.to(o.dtype)).square_()
+            stds.append((dev.sum(dim=1, dtype=torch.float64) / (n - 1)).sqrt_().tolist())
+        else:
+            stds.append([0.0] * len(o))
     stats = []
     for k, member_norms in enumerate(norms):
         ratio = None

@@ -152,3 +152,18 @@ def test_diagnostics_recorded_per_layer(tmp_path):
     assert len(d["init_grad_norms"]) == 3 and len(d["init_act_mean"]) == 2
     assert d["grad_ratio"] == pytest.approx(d["init_grad_norms"][0] / d["init_grad_norms"][-1])
     assert 0.0 <= d["dead_fraction"] <= 1.0 and d["saturated_fraction"] is None
+
+
+def test_init_stats_mean_and_std_equal_numpy_float64():
+    """Activation mean and sample std (ddof=1) per member, as numpy computes them in float64,
+    for float32 activations with a large offset (where a one-pass float32 formula loses digits)."""
+    from runner.diagnostics import init_stats
+
+    gen = torch.Generator().manual_seed(0)
+    outputs = [torch.randn(3, 40000, generator=gen) * 0.01 + 100.0, torch.rand(3, 777, generator=gen)]
+    stats = init_stats(outputs, [[1.0, 2.0]] * 3)
+    for k in range(3):
+        for i, o in enumerate(outputs):
+            ref = o[k].numpy().astype(np.float64)
+            assert stats[k]["init_act_mean"][i] == pytest.approx(ref.mean(), rel=1e-12)
+            assert stats[k]["init_act_std"][i] == pytest.approx(ref.std(ddof=1), rel=1e-6)
