@@ -52,6 +52,7 @@ def prepare_process(threads: int, datasets: dict[str, Dataset] | None = None, wo
     if datasets is not None:
         _DATASETS = datasets
     warnings.filterwarnings("ignore", module="sklearn")
+    import sklearn.model_selection  # noqa: F401  (each job's split: imported here, not in a job's time)
     if worker:
         signal.signal(signal.SIGINT, signal.SIG_IGN)  # the main process decides what Ctrl-C does
 
