@@ -38,7 +38,7 @@ from .initializers import initialize
 from .metrics import METRICS, for_task, quick
 from .schedules import lr_at
 from .stacked_mlp import StackedMLP, cross_entropy_grad, mse_grad
-from .stacked_optim import STACKED_OPTIMIZERS, StackedOptimizer
+from .stacked_optim import STACKED_OPTIMIZERS, StackedOptimizer, member_runs
 from .train import JobResult, JobSpec, environment, run_job, streams
 
 __all__ = ["Stacked", "stack_key", "group_specs", "run_group", "member_bytes", "GROUP_SIZE", "MEMORY_BUDGET"]
@@ -202,6 +202,15 @@ class _Dropout:
         return out
 
 
+def _penalty_runs(strengths: list[float], net: StackedMLP) -> list[tuple]:
+    """(gradient rows, weight rows, coefficient) for each contiguous run of members with a
+    nonzero penalty: per-member strength times the weight mask. Members without the
+    penalty are not touched (a grid's L2 factor leaves half of a group at 0)."""
+    rows = [k for k, v in enumerate(strengths) if v]
+    coef = _column(strengths, net.flat) * net.is_weight
+    return [(net.gflat[run], net.flat[run], coef[run]) for run in member_runs(rows)]
+
+
 def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
     start = time.perf_counter()
     K = len(specs)
@@ -248,8 +257,8 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
     l1 = [t["l1"] if t["l1_mode"] == "penalty" else 0.0 for t in T]
     prox = [t["l1"] if t["l1_mode"] == "proximal" else 0.0 for t in T]
     # penalties act on weights only: per-member strength times the weight mask, (K, P)
-    l2_coef = _column(l2, net.flat) * net.is_weight if any(l2) else None
-    l1_coef = _column(l1, net.flat) * net.is_weight if any(l1) else None
+    l2_terms = _penalty_runs(l2, net)
+    l1_terms = _penalty_runs(l1, net)
     clip = [t["clip_norm"] for t in T]
     dropout = _Dropout(specs, gens, widths)
 
@@ -299,10 +308,10 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
                         results[k].epochs_run = epoch + 1
                         active[k] = False
             net.backward(dout)
-            if l2_coef is not None:
-                net.gflat.addcmul_(net.flat, l2_coef)
-            if l1_coef is not None:
-                net.gflat.addcmul_(torch.sign(net.flat), l1_coef)
+            for g, w, coef in l2_terms:
+                g.addcmul_(w, coef)
+            for g, w, coef in l1_terms:
+                g.addcmul_(torch.sign(w), coef)
             if any(clip):  # torch.nn.utils.clip_grad_norm_ per member: scale by max_norm / (norm + 1e-6), at most 1
                 norm = net.gflat.norm(dim=1).tolist()
                 coef = [min(c / (v + 1e-6), 1.0) if c > 0 else 1.0 for c, v in zip(clip, norm)]

@@ -23,7 +23,7 @@ from typing import Sequence
 
 import torch
 
-__all__ = ["STACKED_OPTIMIZERS", "StackedOptimizer"]
+__all__ = ["STACKED_OPTIMIZERS", "StackedOptimizer", "member_runs"]
 
 STACKED_OPTIMIZERS = ("adam", "adamw", "momentum", "nesterov", "sgd")
 _ADAM = ("adam", "adamw")
@@ -34,7 +34,7 @@ def _column(values: Sequence[float], like: torch.Tensor) -> torch.Tensor:
     return torch.tensor(values, dtype=like.dtype).view(-1, *([1] * (like.dim() - 1)))
 
 
-def _runs(rows: list[int]) -> list[slice]:
+def member_runs(rows: list[int]) -> list[slice]:
     """Contiguous runs of sorted member indices, as slices."""
     out = []
     for _, grp in groupby(enumerate(rows), key=lambda t: t[1] - t[0]):
@@ -115,7 +115,7 @@ class StackedOptimizer:
             classes.setdefault(ckey, []).append(k)
         actions = []
         for ckey, rows in classes.items():
-            for run in _runs(rows):
+            for run in member_runs(rows):
                 actions.append(self._adam_action(run, *ckey[1:]) if ckey[0] in _ADAM
                                else self._sgd_action(ckey[0], run, neg_lr))
         self._plan_key, self._plan_actions = key, actions
