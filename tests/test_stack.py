@@ -1,4 +1,5 @@
 """stack: stacked training against torch.optim and against the single-job path."""
+import dataclasses
 import json
 
 import numpy as np
@@ -17,9 +18,15 @@ from conftest import invoke, write_recipe
 # Tolerance between the stacked and single-job paths after one epoch. The kernels sum in a
 # different order, so float32 results differ in the last bits, and training can amplify that:
 # measured over the 32 configurations of MIXED (dropout, clipping, L2, two inits, two rates),
-# the relative difference of the epoch's losses has median 3.3e-8 and maximum 2e-7. The
-# check allows 1e-5 for any member and 1e-6 for the median, so a systematic error (a wrong
-# mask, rate or decay moves every member by far more) cannot hide.
+# the relative difference of the epoch's losses has median 2e-8 to 3e-8 and, for 31 of the 32
+# members, a maximum of 2e-7 (two machines: AMD EPYC AVX2 and Intel Xeon AVX-512). On the
+# Intel machine one member (lr 3e-3, dropout 0.2, L2 1e-4, Glorot, seed 2) differs by 1.1e-4,
+# and the single-job path alone moves that member by the same 1.1e-4 when its inputs are
+# scaled by 1 + 3e-7 noise (float32 rounding): its epoch is that sensitive, whatever the path.
+# So the check allows 1e-5 for any member, more only for a member whose own single-job run
+# moves at least a tenth as much under that rounding-sized perturbation, and 1e-6 for the
+# median: a systematic error (a wrong mask, rate or decay) moves members by far more and does
+# not move the perturbed single-job run with it.
 ONE_EPOCH_MAX_RTOL = 1e-5
 ONE_EPOCH_MEDIAN_RTOL = 1e-6
 
@@ -138,12 +145,21 @@ MIXED = """
 """
 
 
+def _loss_rel(a, b) -> float:
+    """Largest relative difference of two runs' train and val loss curves."""
+    return max(abs(x - y) / abs(y) for name in ("train_loss", "val_loss")
+               for x, y in zip(a.curves[name], b.curves[name]))
+
+
 def test_one_epoch_agrees_with_the_single_job_path(tmp_path):
     """Every member's first-epoch losses and val accuracy agree with the job run alone."""
     _, specs, ds = grid_of(tmp_path, MIXED.format(epochs=1))
     assert len({stack_key(s) for s in specs}) == 1 and len(specs) == 32
     stacked = run_group(specs, ds)
-    rel = []
+    rel, sensitive = [], []
+    # the same data with every value scaled by 1 + N(0, 3e-7): a perturbation of float32 rounding's size
+    jitter = np.random.default_rng(0).normal(0.0, 3e-7, ds.X.shape)
+    nudged = dataclasses.replace(ds, X=(ds.X * (1.0 + jitter)).astype(ds.X.dtype))
     for spec, r in zip(specs, stacked):
         single = run_job(spec, ds)
         assert r.diagnostics["stacked"] == len(specs)
@@ -152,7 +168,12 @@ def test_one_epoch_agrees_with_the_single_job_path(tmp_path):
         assert abs(r.metrics["val"]["accuracy"] - single.metrics["val"]["accuracy"]) <= 1 / 360 + 1e-12
         # before any step the two paths hold the same weights: gradients agree to float32 rounding
         assert r.diagnostics["init_grad_norms"] == pytest.approx(single.diagnostics["init_grad_norms"], rel=1e-5)
-    assert max(rel) < ONE_EPOCH_MAX_RTOL
+        worst = _loss_rel(r, single)
+        if worst >= ONE_EPOCH_MAX_RTOL:
+            own = _loss_rel(run_job(spec, nudged), single)  # how far rounding alone moves this member
+            sensitive.append((spec.key, worst, own))
+            assert own >= worst / 10, (spec.key, worst, own)
+    assert len(sensitive) <= 2, sensitive  # an outlier or two, not a pattern
     assert float(np.median(rel)) < ONE_EPOCH_MEDIAN_RTOL
 
 
