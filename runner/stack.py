@@ -270,7 +270,7 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
     curves = [{"train_loss": [], "val_loss": [], f"val_{monitor}": [], "lr": []} for _ in specs]
     best, best_epoch, best_state, since = [None] * K, [None] * K, [None] * K, [0] * K
     limit = None  # each member's divergence limit: diverge_factor x its first mini-batch loss
-    factors = _hyper(specs, "diverge_factor")
+    factors = [s.settings["train"]["diverge_factor"] for s in specs]
     step = 0
     X_rows, y_rows = Xtr.view(K * n, features), ytr.view(K * n)
     offsets = (torch.arange(K) * n).unsqueeze(1)  # member k's rows start at k * n
@@ -287,7 +287,7 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
         order = (torch.stack([torch.randperm(n, generator=g[1]) for g in gens]) + offsets).view(-1)
         torch.index_select(X_rows, 0, order, out=X_epoch.view(K * n, features))
         torch.index_select(y_rows, 0, order, out=y_epoch.view(K * n))
-        totals = torch.zeros(K, dtype=torch.float64)
+        totals = [0.0] * K  # summed in Python floats, as the single-job path
         count = 0
         for b in range(steps_per_epoch):
             xb, yb = X_epoch[:, b * bs:(b + 1) * bs], y_epoch[:, b * bs:(b + 1) * bs]
@@ -295,18 +295,16 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
             lrs = lr_table[step]
             logits = net.forward(xb, dropout.masks(m), keep=True)
             values, dout = loss_grad(logits, yb)
+            values = values.tolist()
             if limit is None:
-                limit = factors * torch.clamp(values, min=1e-12)
-            bad = ~(values <= limit)  # not finite, or above the limit
-            if bool(bad.any()):
-                for k in torch.nonzero(bad).flatten().tolist():
-                    if active[k]:
-                        v = float(values[k])
-                        curves[k]["train_loss"].append(v)
-                        results[k].status = "diverged"
-                        results[k].error = f"loss {v:.4g} at epoch {epoch + 1}, step {step + 1}"
-                        results[k].epochs_run = epoch + 1
-                        active[k] = False
+                limit = [f * max(v, 1e-12) for f, v in zip(factors, values)]
+            for k, (v, top) in enumerate(zip(values, limit)):
+                if active[k] and (not math.isfinite(v) or v > top):  # train.py's test
+                    curves[k]["train_loss"].append(v)
+                    results[k].status = "diverged"
+                    results[k].error = f"loss {v:.4g} at epoch {epoch + 1}, step {step + 1}"
+                    results[k].epochs_run = epoch + 1
+                    active[k] = False
             net.backward(dout)
             for g, w, coef in l2_terms:
                 g.addcmul_(w, coef)
@@ -320,7 +318,7 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
             if any(prox):  # soft-threshold the weights (biases get threshold 0: unchanged)
                 thr = [r * lam if a else 0.0 for r, lam, a in zip(lrs, prox, active)]
                 regularizers.soft_threshold_(net.flat, _column(thr, net.flat) * net.is_weight)
-            totals.add_(values, alpha=m)
+            totals = [t + v * m for t, v in zip(totals, values)]
             count += m
             step += 1
         vals = _scores(net.logits(Xva), [sp.y_val for sp in splits], ds, splits, only=monitor)
@@ -329,7 +327,7 @@ def _run_group(specs: list[JobSpec], ds: Dataset) -> list[JobResult]:
                 continue
             val = vals[k]
             c = curves[k]
-            c["train_loss"].append(float(totals[k] / count))
+            c["train_loss"].append(totals[k] / count)
             c["val_loss"].append(val["loss"])
             c[f"val_{monitor}"].append(val[monitor])
             c["lr"].append(lrs[k])

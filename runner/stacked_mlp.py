@@ -118,6 +118,9 @@ class StackedMLP:
             self.gb.append(self.gflat[:, offset:offset + o])
             offset += o
         self._w_np = [w.numpy() for w in self.weights]
+        self._wT = [w.transpose(1, 2) for w in self.weights]  # views made once, not each step
+        self._bias_rows = [b.unsqueeze(1) for b in self.biases[:-1]]
+        self._bias_out = self.biases[-1].unsqueeze(2)
         self._gw_np = [g.numpy() for g in self.gw]
         self.act, self.act_back, self.in_place = _activation(activation, slope)
         self.hidden: list[torch.Tensor] = []  # each hidden activation of the last forward
@@ -162,14 +165,14 @@ class StackedMLP:
             h, h_np = torch.mul(x, masks[0], out=ws.dropped[0]), ws.arr("dropped", 0)
         for i in range(len(self.weights) - 1):
             inputs.append((h, h_np))
-            torch.baddbmm(self.biases[i].unsqueeze(1), h, self.weights[i].transpose(1, 2), out=ws.z[i])
+            torch.baddbmm(self._bias_rows[i], h, self._wT[i], out=ws.z[i])
             h, h_np = self.act(ws.z[i], ws.a[i]), ws.arr("a", i)
             self.hidden.append(h)
             if masks and masks[i + 1] is not None:
                 h, h_np = torch.mul(h, masks[i + 1], out=ws.dropped[i + 1]), ws.arr("dropped", i + 1)
         inputs.append((h, h_np))
         np.matmul(self._w_np[-1], _T(h_np if h_np is not None else h.numpy()), out=ws.arr("logits"))
-        ws.logits.add_(self.biases[-1].unsqueeze(2))
+        ws.logits.add_(self._bias_out)
         self._saved = (inputs, ws, masks) if keep else None
         return ws.logits
 
@@ -203,10 +206,21 @@ def cross_entropy_grad(logits: torch.Tensor, y: torch.Tensor) -> tuple[torch.Ten
     its gradient (softmax - one-hot) / rows."""
     logp = torch.log_softmax(logits, dim=1)
     index = y.unsqueeze(1)
-    loss = -logp.gather(1, index).mean(dim=(1, 2))
+    loss = logp.gather(1, index).mean(dim=(1, 2)).neg_()
     grad = logp.exp_()
-    grad.scatter_add_(1, index, torch.full(index.shape, -1.0, dtype=grad.dtype))
+    grad.scatter_add_(1, index, _minus_ones(index.shape, grad.dtype))
     return loss, grad.div_(y.shape[1])
+
+
+_MINUS_ONES: dict = {}
+
+
+def _minus_ones(shape, dtype) -> torch.Tensor:
+    """A tensor of -1 of this shape, made once (read only)."""
+    key = (tuple(shape), dtype)
+    if key not in _MINUS_ONES:
+        _MINUS_ONES[key] = torch.full(shape, -1.0, dtype=dtype)
+    return _MINUS_ONES[key]
 
 
 def mse_grad(out: torch.Tensor, y: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
