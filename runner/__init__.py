@@ -2,13 +2,32 @@
 
 Pipeline: recipe (load + validate) -> grid (expand) -> jobs (run into the store) ->
 store (SQLite) -> summary (leaderboard) -> render.
+
+The names below are imported on first use (PEP 562), so importing one module of the
+package (a worker's ``runner.schedule``, the CLI's ``runner.errors``) does not pay for
+torch, scipy.stats and scikit-learn unless that module needs them: ``recipe --help`` and
+a worker's start-up stay quick.
 """
-from .errors import DataError, RecipeError, StoreError, UserError
-from .grid import Grid, expand
-from .recipe import Recipe, load_recipe
-from .store import Store
-from .summary import leaderboard
+from __future__ import annotations
+
+import importlib
 
 __all__ = ["DataError", "RecipeError", "StoreError", "UserError", "Grid", "expand", "Recipe",
            "load_recipe", "Store", "leaderboard"]
 __version__ = "0.1.0"
+
+_HOME = {"DataError": "errors", "RecipeError": "errors", "StoreError": "errors", "UserError": "errors",
+         "Grid": "grid", "expand": "grid", "Recipe": "recipe", "load_recipe": "recipe",
+         "Store": "store", "leaderboard": "summary"}
+
+
+def __getattr__(name: str):
+    if name in _HOME:
+        value = getattr(importlib.import_module(f".{_HOME[name]}", __name__), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted([*globals(), *__all__])

@@ -66,6 +66,10 @@ def cli():
 def run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, time_limit, no_stack, fresh, yes,
         mlflow_uri, quiet, verbose, fmt):
     """Train every job of RECIPE that has no stored result, then print the leaderboard."""
+    from .forkserver import start_early, wants_workers
+
+    if wants_workers(recipe_path, workers, on):
+        start_early()  # its imports overlap with this process's (see forkserver.py)
     from .jobs import execute, make_executor, plan
     from .mlflow_export import RunLogger
     from .progress import Progress

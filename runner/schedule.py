@@ -9,8 +9,6 @@ The caller's ``on_result`` writes the store, so only the main process ever write
 """
 from __future__ import annotations
 
-import multiprocessing
-import os
 import signal
 import time
 import warnings
@@ -22,9 +20,10 @@ import threadpoolctl
 import torch
 
 from .data import Dataset
+from .forkserver import default_workers, worker_context
 from .train import JobResult, JobSpec, run_job
 
-__all__ = ["SerialExecutor", "PoolExecutor", "prepare_process", "default_workers"]
+__all__ = ["SerialExecutor", "PoolExecutor", "prepare_process", "deterministic_kernels", "default_workers"]
 
 OnResult = Callable[[JobSpec, JobResult, int], None]  # spec, result, attempts used
 OnStart = Callable[[JobSpec], None]
@@ -37,10 +36,16 @@ def grace(limit: float) -> float:
     return max(2.0, min(10.0, 0.5 * limit))
 
 
-def default_workers() -> int:
-    if hasattr(os, "sched_getaffinity"):
-        return max(1, len(os.sched_getaffinity(0)))
-    return max(1, os.cpu_count() or 1)
+def deterministic_kernels() -> None:
+    """torch.use_deterministic_algorithms(True) without its import of torch's compiler
+    configuration (about a second, in every process that starts; the tool compiles
+    nothing, so that setting is never read). Where torch lacks the internal switch, the
+    public function."""
+    switch = getattr(torch._C, "_set_deterministic_algorithms", None)
+    if switch is None:
+        torch.use_deterministic_algorithms(True)
+    else:
+        switch(True, warn_only=False)
 
 
 def prepare_process(threads: int, datasets: dict[str, Dataset] | None = None, worker: bool = False) -> None:
@@ -48,7 +53,7 @@ def prepare_process(threads: int, datasets: dict[str, Dataset] | None = None, wo
     global _DATASETS
     torch.set_num_threads(threads)
     threadpoolctl.threadpool_limits(threads, user_api="blas")  # numpy's BLAS (the stacked path's products)
-    torch.use_deterministic_algorithms(True)
+    deterministic_kernels()
     if datasets is not None:
         _DATASETS = datasets
     warnings.filterwarnings("ignore", module="sklearn")
@@ -57,10 +62,27 @@ def prepare_process(threads: int, datasets: dict[str, Dataset] | None = None, wo
         signal.signal(signal.SIGINT, signal.SIG_IGN)  # the main process decides what Ctrl-C does
 
 
+_SINGLE_PATH_READY = False
+
+
+def ready_for(item: tuple[JobSpec, ...]) -> None:
+    """Import what this work item's path needs before its clock starts. The single-job path's
+    torch.optim imports torch's compiler front end when it builds its first optimizer (over
+    a second, enough to trip a short time limit); stacked groups never need it, so workers
+    and the fork server do not import it unless a single job comes."""
+    global _SINGLE_PATH_READY
+    from .stack import Stacked
+
+    if not _SINGLE_PATH_READY and not isinstance(item, Stacked):
+        torch.optim.SGD([torch.zeros(1, requires_grad=True)], lr=0.1)
+        _SINGLE_PATH_READY = True
+
+
 def run_item(item: tuple[JobSpec, ...], datasets: dict[str, Dataset]) -> list[JobResult]:
     """Train one work item: a single job, or a stacked group of same-shaped jobs."""
     from .stack import Stacked, run_group
 
+    ready_for(item)
     ds = datasets[item[0].data_id]
     if isinstance(item, Stacked):
         return run_group(item, ds)
@@ -100,6 +122,7 @@ def _worker_main(conn, threads: int, datasets: dict) -> None:
             return
         if item is None:
             return
+        ready_for(item)
         conn.send(("start", None))  # the job's clock starts here, not while the worker boots
         conn.send(("result", _work(item)))
 
@@ -133,18 +156,6 @@ class _Worker:
         self.conn.close()
 
 
-def _context():
-    """Workers fork from a server process that has imported torch and the tool once, so a
-    new or replacement worker starts in milliseconds instead of seconds; where forkserver is
-    not available, fresh interpreters are spawned. Both start clean of the main process's
-    threads and state."""
-    if "forkserver" in multiprocessing.get_all_start_methods():
-        ctx = multiprocessing.get_context("forkserver")
-        ctx.set_forkserver_preload(["runner._preload"])
-        return ctx
-    return multiprocessing.get_context("spawn")
-
-
 def _death(exitcode: int | None) -> str:
     if exitcode is not None and exitcode < 0:
         name = signal.Signals(-exitcode).name
@@ -172,7 +183,7 @@ class PoolExecutor:
         self.hard_limit = hard_limit
 
     def run(self, items, datasets, on_result: OnResult, on_start: OnStart | None = None) -> None:
-        ctx = _context()
+        ctx = worker_context()
         queue = deque(items)
         attempts: dict[str, int] = {}
         pool = [_Worker(ctx, self.threads, datasets) for _ in range(min(self.workers, len(queue)))]
