@@ -3,7 +3,9 @@
   1. a plain one-job-at-a-time PyTorch loop written the ordinary way (DataLoader, nn.Sequential,
      torch.optim), 2. scikit-learn's MLPClassifier with the same architecture, solver, batch
      size and epochs, 3. the tool with stacking off, 4. the tool with stacking on;
-all with one thread in one process, then the tool with its default worker count.
+all with one thread in one process, then the tool with its default worker count (each run
+starts its own workers, as `recipe run` does; the fork server they come from starts once per
+`recipe run`, so its start-up is measured and printed on its own).
 
 Grid A: 16 jobs on digits, MLP 64-128-128-10, batch 64, 10 epochs, Adam lr 1e-3 (16 seeds).
 Grid B: sgd / momentum / adam x L2 0 / 1e-4 x 3 seeds (18 jobs), same network.
@@ -224,6 +226,18 @@ def tool(grid, workers: int, stack: bool):
     return wall, trained, (peak.peak if peak else None)
 
 
+def fork_server_startup() -> float:
+    """Seconds until the worker fork server has imported everything and forked a first child."""
+    from runner.forkserver import start_early, worker_context
+
+    start = time.perf_counter()
+    start_early()
+    child = worker_context().Process(target=int)
+    child.start()
+    child.join()
+    return time.perf_counter() - start
+
+
 def main() -> None:
     torch.set_num_threads(1)
     torch.use_deterministic_algorithms(True)
@@ -262,12 +276,15 @@ def main() -> None:
         overhead = sorted(overheads)[len(overheads) // 2]
         print(f"  tool overhead per job (scheduling, storing) beyond its training time: {overhead * 100:.1f}% (median)")
         print(f"  stacked time / arithmetic bound: {results['tool, stacked'] / bound:.1f}")
+        if name.startswith("A"):
+            print(f"worker fork server start-up, once per `recipe run` (it overlaps the main process's own "
+                  f"start-up there): {fork_server_startup():.1f} s; not in the timings below")
         print(f"default worker count ({cores}):")
         for stack in (False, True):
             wall, _, peak = tool(grid, cores, stack=stack)
             label = "tool, stacked" if stack else "tool, no stacking"
             print(f"  {label:<24} {wall:7.2f} s  {jobs / wall * 60:8.0f} jobs/min  {base / wall:5.2f}x plain loop"
-                  f"  peak worker RSS {peak / 2**20:.0f} MB (incl. worker start-up)")
+                  f"  peak worker RSS {peak / 2**20:.0f} MB")
     print(f"\nthis process's peak RSS: {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MB")
 
 
