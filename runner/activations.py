@@ -3,18 +3,23 @@ from __future__ import annotations
 
 import math
 
-from torch import nn
-
 __all__ = ["ACTIVATIONS", "make_activation", "gain"]
+
+
+def _nn():
+    from torch import nn  # on first use: validating a recipe needs only the names
+
+    return nn
+
 
 # name -> factory(leaky_slope) ; kept sorted by name for stable messages.
 ACTIVATIONS = {
-    "elu": lambda slope: nn.ELU(),
-    "gelu": lambda slope: nn.GELU(),
-    "leaky_relu": lambda slope: nn.LeakyReLU(slope),
-    "relu": lambda slope: nn.ReLU(),
-    "sigmoid": lambda slope: nn.Sigmoid(),
-    "tanh": lambda slope: nn.Tanh(),
+    "elu": lambda slope: _nn().ELU(),
+    "gelu": lambda slope: _nn().GELU(),
+    "leaky_relu": lambda slope: _nn().LeakyReLU(slope),
+    "relu": lambda slope: _nn().ReLU(),
+    "sigmoid": lambda slope: _nn().Sigmoid(),
+    "tanh": lambda slope: _nn().Tanh(),
 }
 
 # Units counted as "saturated" by the diagnostics: output within this distance of the bound.

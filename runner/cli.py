@@ -21,10 +21,13 @@ def _store_path(recipe, store: str | None) -> Path:
 
 
 def _load(recipe_path: str):
-    from .grid import expand
+    """The validated recipe and its grid. Validation imports nothing heavy, so a recipe's
+    error is reported at once; commands import their own heavy modules after this."""
     from .recipe import load_recipe
 
     recipe = load_recipe(recipe_path)
+    from .grid import expand
+
     return recipe, expand(recipe)
 
 
@@ -67,9 +70,15 @@ def run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, ti
         mlflow_uri, quiet, verbose, fmt):
     """Train every job of RECIPE that has no stored result, then print the leaderboard."""
     from .forkserver import start_early, wants_workers
+    from .recipe import load_recipe
 
-    if wants_workers(recipe_path, workers, on):
-        start_early()  # its imports overlap with this process's (see forkserver.py)
+    try:
+        recipe = load_recipe(recipe_path)  # no torch needed to validate it
+    except UserError as err:
+        _fail(err)
+    if wants_workers(workers, on, recipe.run):
+        start_early()  # its imports overlap with this process's from here on (see forkserver.py)
+    from .grid import expand
     from .jobs import execute, make_executor, plan
     from .mlflow_export import RunLogger
     from .progress import Progress
@@ -79,7 +88,7 @@ def run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, ti
     from .summary import leaderboard
 
     try:
-        recipe, grid = _load(recipe_path)
+        grid = expand(recipe)
         where = on or recipe.run.get("on", "local")
         workers = workers or recipe.run.get("workers") or default_workers()
         with Store(_store_path(recipe, store)) as db:
@@ -138,12 +147,12 @@ def _confirm_fresh(db, grid, yes: bool) -> None:
               help="Add the ablation tables (main effects, interactions, regularization and optimizer views).")
 def board(recipe_path, store, fmt, out, ablation):
     """Print the leaderboard of RECIPE from its store, without training."""
-    from .render import render, render_ablation
-    from .store import Store
-    from .summary import leaderboard
-
     try:
         recipe, grid = _load(recipe_path)
+        from .render import render, render_ablation
+        from .store import Store
+        from .summary import leaderboard
+
         with Store(_store_path(recipe, store), create=False) as db:
             doc = leaderboard(grid, db)
         fmt = fmt or "table"
@@ -163,10 +172,10 @@ def board(recipe_path, store, fmt, out, ablation):
 @store_option
 def status(recipe_path, store):
     """Count RECIPE's jobs by state: done, diverged, failed, timed out, pending."""
-    from .store import Store
-
     try:
         recipe, grid = _load(recipe_path)
+        from .store import Store
+
         path = _store_path(recipe, store)
         keys = {j.key for j in grid}
         counts = {"done": 0, "diverged": 0, "failed": 0, "timeout": 0}
@@ -209,11 +218,11 @@ def diff(old, new, fmt, fail_on_worse):
               help="HTML file to write (default: <name>-report.html beside the store).")
 def report(recipe_path, store, out):
     """Write a self-contained HTML report of RECIPE's stored results."""
-    from .report import build_report
-    from .store import Store
-
     try:
         recipe, grid = _load(recipe_path)
+        from .report import build_report
+        from .store import Store
+
         path = _store_path(recipe, store)
         with Store(path, create=False) as db:
             text = build_report(grid, db)
@@ -230,11 +239,11 @@ def report(recipe_path, store, out):
 @click.option("--uri", required=True, help="MLflow tracking URI, e.g. sqlite:///mlflow.db.")
 def export_mlflow(recipe_path, store, uri):
     """Log RECIPE's stored jobs to MLflow; jobs already there are skipped, so it can be retried."""
-    from .mlflow_export import export_all
-    from .store import Store
-
     try:
         recipe, grid = _load(recipe_path)
+        from .mlflow_export import export_all
+        from .store import Store
+
         with Store(_store_path(recipe, store), create=False) as db:
             sent, before, errors = export_all(uri, grid, db)
     except UserError as err:
@@ -253,12 +262,12 @@ def export_mlflow(recipe_path, store, uri):
 @click.option("--no-probe", is_flag=True, help="Skip the timed probe (no run-time estimate).")
 def check(recipe_path, store, workers, no_probe):
     """Validate RECIPE and print its plan: factors, jobs, what is stored, a time estimate."""
-    from .plan import describe_plan
-    from .schedule import default_workers
-    from .store import Store
-
     try:
         recipe, grid = _load(recipe_path)
+        from .plan import describe_plan
+        from .schedule import default_workers
+        from .store import Store
+
         path = _store_path(recipe, store)
         workers = workers or recipe.run.get("workers") or default_workers()
         if path.exists():

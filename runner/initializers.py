@@ -9,8 +9,6 @@ from __future__ import annotations
 
 import math
 
-import torch
-
 __all__ = ["INITIALIZERS", "USES_GAIN", "fans", "initialize"]
 
 
@@ -53,6 +51,8 @@ def _lecun_normal(w, gain, scale, g):
 
 def _orthogonal(w, gain, scale, g):
     # Saxe et al. 2014: a (semi-)orthogonal matrix times the gain; conv kernels are flattened.
+    import torch  # here and below on first use: validating a recipe needs only the names
+
     return torch.nn.init.orthogonal_(w, gain=gain, generator=g)
 
 
@@ -84,9 +84,11 @@ INITIALIZERS = {
 USES_GAIN = frozenset({"he_normal", "he_uniform", "orthogonal"})
 
 
-@torch.no_grad()
 def initialize(name: str, weight: torch.Tensor, gain: float, scale: float,
                generator: torch.Generator) -> torch.Tensor:
     """Fill ``weight`` in place. ``scale`` is the std (normal) or bound (uniform)."""
+    import torch
+
     effective_gain = gain if name in USES_GAIN else 1.0
-    return INITIALIZERS[name](weight, effective_gain, scale, generator)
+    with torch.no_grad():
+        return INITIALIZERS[name](weight, effective_gain, scale, generator)

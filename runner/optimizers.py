@@ -20,8 +20,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Callable
 
-import torch
-
 from .errors import RecipeError
 from .params import Param, Real
 
@@ -44,32 +42,38 @@ class OptimizerSpec:
     build: Callable[[list, dict], torch.optim.Optimizer]
 
 
+def _optim():
+    import torch.optim  # on first use: validating a recipe needs only the tables above
+
+    return torch.optim
+
+
 def _sgd(groups, t):
-    return torch.optim.SGD(groups, lr=t["lr"], momentum=0.0)
+    return _optim().SGD(groups, lr=t["lr"], momentum=0.0)
 
 
 def _momentum(groups, t):
-    return torch.optim.SGD(groups, lr=t["lr"], momentum=t["momentum"])
+    return _optim().SGD(groups, lr=t["lr"], momentum=t["momentum"])
 
 
 def _nesterov(groups, t):
-    return torch.optim.SGD(groups, lr=t["lr"], momentum=t["momentum"], nesterov=True)
+    return _optim().SGD(groups, lr=t["lr"], momentum=t["momentum"], nesterov=True)
 
 
 def _adam(groups, t):
-    return torch.optim.Adam(groups, lr=t["lr"], betas=(t["beta1"], t["beta2"]), eps=t["eps"])
+    return _optim().Adam(groups, lr=t["lr"], betas=(t["beta1"], t["beta2"]), eps=t["eps"])
 
 
 def _adamw(groups, t):
-    return torch.optim.AdamW(groups, lr=t["lr"], betas=(t["beta1"], t["beta2"]), eps=t["eps"])
+    return _optim().AdamW(groups, lr=t["lr"], betas=(t["beta1"], t["beta2"]), eps=t["eps"])
 
 
 def _rmsprop(groups, t):
-    return torch.optim.RMSprop(groups, lr=t["lr"], alpha=t["alpha"], eps=t["eps"])
+    return _optim().RMSprop(groups, lr=t["lr"], alpha=t["alpha"], eps=t["eps"])
 
 
 def _adagrad(groups, t):
-    return torch.optim.Adagrad(groups, lr=t["lr"], eps=t["eps"])
+    return _optim().Adagrad(groups, lr=t["lr"], eps=t["eps"])
 
 
 OPTIMIZERS = {
@@ -102,6 +106,8 @@ def build_optimizer(model: torch.nn.Module, train: dict) -> torch.optim.Optimize
 
 def split_parameters(model: torch.nn.Module) -> tuple[list, list]:
     """(weights of linear/conv layers, everything else: biases and normalization)."""
+    import torch
+
     decay, no_decay = [], []
     for module in model.modules():
         for name, param in module.named_parameters(recurse=False):

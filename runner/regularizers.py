@@ -11,8 +11,6 @@ Penalties cover weight matrices only, never biases or normalization parameters.
 """
 from __future__ import annotations
 
-import torch
-
 from .params import Choice, Param, Real
 
 __all__ = ["PARAMS", "penalty", "soft_threshold_", "proximal_l1_", "sparsity"]
@@ -37,24 +35,27 @@ def penalty(weights: list[torch.Tensor], train: dict) -> torch.Tensor | None:
     return total
 
 
-@torch.no_grad()
 def soft_threshold_(w: torch.Tensor, threshold: float) -> torch.Tensor:
     """w <- sign(w) * max(|w| - threshold, 0), in place (the proximal map of threshold*|w|)."""
-    shrunk = w.abs().sub_(threshold).clamp_(min=0.0)
-    return w.copy_(shrunk.mul_(torch.sign(w)))
+    import torch  # here and below on first use: validating a recipe needs only PARAMS
+
+    with torch.no_grad():
+        shrunk = w.abs().sub_(threshold).clamp_(min=0.0)
+        return w.copy_(shrunk.mul_(torch.sign(w)))
 
 
-@torch.no_grad()
 def proximal_l1_(weights: list[torch.Tensor], lr: float, lam: float) -> None:
     for w in weights:
         soft_threshold_(w, lr * lam)
 
 
-@torch.no_grad()
 def sparsity(weights: list[torch.Tensor], tol: float) -> dict[str, float]:
+    import torch
+
     total = sum(w.numel() for w in weights)
     if total == 0:
         return {"zero_fraction": 0.0, "near_zero_fraction": 0.0}
-    zeros = sum(int((w == 0).sum()) for w in weights)
-    near = sum(int((w.abs() < tol).sum()) for w in weights)
+    with torch.no_grad():
+        zeros = sum(int((w == 0).sum()) for w in weights)
+        near = sum(int((w.abs() < tol).sum()) for w in weights)
     return {"zero_fraction": zeros / total, "near_zero_fraction": near / total}

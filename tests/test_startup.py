@@ -36,22 +36,36 @@ def test_deterministic_switch_matches_the_public_one():
     assert ours.stdout.split() == public.stdout.split() == ["True", "False", "True"]
 
 
-@pytest.mark.parametrize("run_table, workers, on, expected", [
-    ("", 2, None, True),
-    ("", 1, None, False),
-    ("[run]\nworkers = 1\n", None, None, False),
-    ("[run]\nworkers = 3\n", None, None, True),
-    ("[run]\nworkers = 3\n", 1, None, False),        # the option wins over the recipe
-    ("[run]\non = \"dask-local\"\n", 2, None, False),
-    ("", 2, "dask://127.0.0.1:8786", False),
-    ("[run]\nworkers = \"many\"\n", None, None, False),  # odd values: no early start, the
-    ("[run\n", 2, None, False),                          # full validation reports them later
+@pytest.mark.parametrize("run, workers, on, expected", [
+    ({}, 2, None, True),
+    ({}, 1, None, False),
+    ({"workers": 1}, None, None, False),
+    ({"workers": 3}, None, None, True),
+    ({"workers": 3}, 1, None, False),        # the option wins over the recipe
+    ({"on": "dask-local"}, 2, None, False),
+    ({}, 2, "dask://127.0.0.1:8786", False),
+    ({"on": "dask-local"}, 2, "local", True),
 ])
-def test_when_the_fork_server_starts_early(tmp_path, run_table, workers, on, expected):
-    path = tmp_path / "r.toml"
-    path.write_text('name = "x"\n' + run_table)
-    assert wants_workers(str(path), workers, on) is expected
-    assert wants_workers(str(tmp_path / "missing.toml"), workers, on) is False
+def test_when_the_fork_server_starts_early(run, workers, on, expected):
+    assert wants_workers(workers, on, run) is expected
+
+
+def test_validating_a_recipe_needs_no_torch_and_a_bad_one_starts_no_workers(tmp_path):
+    # a typo in a recipe is reported at once, by every command, and starts no worker server
+    good, bad = tmp_path / "good.toml", tmp_path / "bad.toml"
+    good.write_text('name = "x"\nseeds = [1]\n[data]\nsource = "iris"\n[model]\nactivation = "tanh"\n'
+                    '[train]\noptimizer = "nesterov"\nl1 = 0.01\n')
+    bad.write_text('name = "x"\nseeds = [1]\n[data]\nsource = "iris"\n[train]\nepochz = 3\n')
+    loaded = _modules_after(f"from runner.recipe import load_recipe\nload_recipe({str(good)!r})")
+    assert "torch" not in loaded
+    for command in ("run", "check", "board", "status", "report"):
+        args = [command, str(bad)] + (["--workers", "2"] if command == "run" else [])
+        code = (f"import sys\nfrom runner.cli import cli\nimport multiprocessing.forkserver as f\n"
+                f"try:\n    cli({args!r})\nexcept SystemExit as e:\n"
+                f"    print('exit', e.code, 'server', f._forkserver._forkserver_pid, 'torch' in sys.modules)")
+        proc = subprocess.run([PYTHON, "-c", code], env=subprocess_env(), capture_output=True, text=True)
+        assert "unknown key" in proc.stderr, (command, proc.stderr)
+        assert proc.stdout.split() == ["exit", "2", "server", "None", "False"], command
 
 
 def test_default_worker_count_is_the_usable_cores():
