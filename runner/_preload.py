@@ -7,8 +7,14 @@ took about 0.8 s of that job's time, enough to trip a one-second time limit). Wh
 torch.optim imports on first use is left to the workers that run single jobs
 (schedule.ready_for): stacked groups never need it.
 """
-import runner.schedule
-import runner.stack  # noqa: F401
-import sklearn.model_selection  # noqa: F401  (runner.data imports it lazily, for the CLI's start-up)
+import signal
+
+# Ctrl-C reaches the whole process group; the main process decides what it means. The server
+# starts with it ignored (forkserver.start_early); this holds for a server started otherwise.
+signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+import runner.schedule  # noqa: E402
+import runner.stack  # noqa: E402,F401
+import sklearn.model_selection  # noqa: E402,F401  (runner.data imports it lazily, for the CLI's start-up)
 
 runner.schedule.deterministic_kernels()

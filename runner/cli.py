@@ -69,6 +69,17 @@ def cli():
 def run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, time_limit, no_stack, fresh, yes,
         mlflow_uri, quiet, verbose, fmt):
     """Train every job of RECIPE that has no stored result, then print the leaderboard."""
+    try:
+        _run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, time_limit, no_stack, fresh,
+             yes, mlflow_uri, quiet, verbose, fmt)
+    except KeyboardInterrupt:  # before training started, or after every result was stored
+        click.echo("\nInterrupted; every finished job is in the store. Run the same command again to go on.",
+                   err=True)
+        sys.exit(130)
+
+
+def _run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, time_limit, no_stack, fresh, yes,
+         mlflow_uri, quiet, verbose, fmt):
     from .forkserver import start_early, wants_workers
     from .recipe import load_recipe
 

@@ -15,6 +15,8 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+import signal
+import threading
 
 __all__ = ["worker_context", "start_early", "wants_workers", "default_workers"]
 
@@ -31,11 +33,24 @@ def worker_context():
 
 def start_early() -> None:
     """Start the fork server now, in the background (returns at once); the pool finds it
-    running. Where there is no fork server, nothing to do."""
-    if worker_context().get_start_method() == "forkserver":
-        from multiprocessing import forkserver
+    running. Where there is no fork server, nothing to do.
 
+    The server starts with Ctrl-C ignored (a disposition a new process inherits, and then
+    Python installs no KeyboardInterrupt handler): Ctrl-C reaches the whole process group,
+    and the main process alone decides what it means; a server interrupted while it starts
+    up would print a traceback on the user's terminal."""
+    if worker_context().get_start_method() != "forkserver":
+        return
+    from multiprocessing import forkserver
+
+    if threading.current_thread() is not threading.main_thread():
+        forkserver.ensure_running()  # signal handlers can only be set from the main thread
+        return
+    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
         forkserver.ensure_running()
+    finally:
+        signal.signal(signal.SIGINT, previous)
 
 
 def default_workers() -> int:

@@ -20,7 +20,7 @@ import threadpoolctl
 import torch
 
 from .data import Dataset
-from .forkserver import default_workers, worker_context
+from .forkserver import default_workers, start_early, worker_context
 from .train import JobResult, JobSpec, run_job
 
 __all__ = ["SerialExecutor", "PoolExecutor", "prepare_process", "deterministic_kernels", "default_workers"]
@@ -184,6 +184,7 @@ class PoolExecutor:
 
     def run(self, items, datasets, on_result: OnResult, on_start: OnStart | None = None) -> None:
         ctx = worker_context()
+        start_early()  # if `recipe run` has not already: with Ctrl-C ignored (see forkserver.py)
         queue = deque(items)
         attempts: dict[str, int] = {}
         pool = [_Worker(ctx, self.threads, datasets) for _ in range(min(self.workers, len(queue)))]

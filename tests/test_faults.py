@@ -77,6 +77,20 @@ def test_ctrl_c_exits_130_with_a_resume_hint(tmp_path):
     assert len(after) == 4 and all(after[k] == before[k] for k in before)
 
 
+def test_ctrl_c_during_start_up_prints_no_traceback(tmp_path):
+    # while the runner and the worker fork server are still importing: each moment of the
+    # start-up (the server's own interpreter start, its imports, the runner's) gets one try
+    path = recipe(tmp_path, epochs=150)
+    for delay in (0.15, 0.5, 1.2):
+        proc = start([path, "--store", tmp_path / f"s{delay}.sqlite", "--workers", 2])
+        time.sleep(delay)
+        os.killpg(proc.pid, signal.SIGINT)
+        _, err = proc.communicate(timeout=60)
+        assert proc.returncode == 130, (delay, err)
+        assert "Traceback" not in err and "Fatal" not in err, (delay, err)
+        assert "Run the same command again" in err
+
+
 def test_worker_death_is_retried_and_result_is_unchanged(tmp_path):
     path = recipe(tmp_path)
     store, clean = tmp_path / "s.sqlite", tmp_path / "clean.sqlite"
