@@ -10,7 +10,7 @@ torch.optim imports on first use is left to the workers that run single jobs
 import signal
 
 # Ctrl-C reaches the whole process group; the main process decides what it means. The server
-# starts with it ignored (forkserver.start_early); this holds for a server started otherwise.
+# starts with it blocked (forkserver.start_early); from here on it is ignored as well.
 signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 import runner.schedule  # noqa: E402

@@ -2,6 +2,10 @@
 from __future__ import annotations
 
 import math
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:  # annotations only; torch is imported where it is used
+    from torch import nn
 
 __all__ = ["ACTIVATIONS", "make_activation", "gain"]
 

@@ -10,7 +10,7 @@ whose worker dies is rescheduled by dask; after ``max_attempts`` deaths dask giv
 from __future__ import annotations
 
 from .errors import UserError
-from .train import JobResult
+from .job import JobResult
 
 __all__ = ["DaskExecutor"]
 

@@ -35,22 +35,27 @@ def start_early() -> None:
     """Start the fork server now, in the background (returns at once); the pool finds it
     running. Where there is no fork server, nothing to do.
 
-    The server starts with Ctrl-C ignored (a disposition a new process inherits, and then
-    Python installs no KeyboardInterrupt handler): Ctrl-C reaches the whole process group,
-    and the main process alone decides what it means; a server interrupted while it starts
-    up would print a traceback on the user's terminal."""
+    The server starts with SIGINT blocked, a mask a new process inherits through exec (the
+    resource tracker starts the same way; once the server runs, _preload ignores SIGINT):
+    Ctrl-C reaches the whole process group and the main process alone decides what it
+    means, and a server interrupted while it starts up would print a traceback on the
+    user's terminal. In this process the signal is only held back for the moment of the
+    spawn, then delivered."""
     if worker_context().get_start_method() != "forkserver":
         return
     from multiprocessing import forkserver
 
     if threading.current_thread() is not threading.main_thread():
-        forkserver.ensure_running()  # signal handlers can only be set from the main thread
+        forkserver.ensure_running()  # the mask is per thread: only the main one gets Ctrl-C
         return
-    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    from multiprocessing import resource_tracker
+
+    resource_tracker.ensure_running()  # first: it unblocks SIGINT after starting its own process
+    signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
     try:
         forkserver.ensure_running()
     finally:
-        signal.signal(signal.SIGINT, previous)
+        signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
 
 
 def default_workers() -> int:

@@ -18,7 +18,7 @@ from .optimizers import check_optimizer
 from .recipe import Recipe, resolve
 from .schedules import check_schedule
 from .settings import identity
-from .train import JobSpec
+from .job import JobSpec
 
 __all__ = ["Config", "Job", "Grid", "expand", "canonical"]
 

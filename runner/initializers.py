@@ -8,6 +8,10 @@ fan_out = weight.size(0) * receptive field.
 from __future__ import annotations
 
 import math
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:  # annotations only; torch is imported where it is used
+    import torch
 
 __all__ = ["INITIALIZERS", "USES_GAIN", "fans", "initialize"]
 

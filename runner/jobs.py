@@ -9,7 +9,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
-from . import checkpoint
 from .grid import Grid, Job
 from .progress import Progress
 from .store import FINISHED, RunnerLock, Store
@@ -42,6 +41,8 @@ def forget(grid: Grid, store: Store) -> int:
     """Delete this grid's stored results and checkpoints (``recipe run --fresh``)."""
     keys = [j.key for j in grid]
     removed = store.forget(keys)
+    from . import checkpoint  # torch: imported only where a run needs it
+
     for key in keys:
         checkpoint.remove(str(checkpoint_dir(store) / f"{key}.pt"))
     return removed
@@ -66,6 +67,7 @@ def execute(grid: Grid, store: Store, todo: list[Job], executor, progress: Progr
             time_limit: float | None = None, on_stored=None, stack: bool = True) -> None:
     """Run ``todo``; each result is committed to the store as soon as it arrives. With
     ``stack``, same-shaped jobs train together as one stacked computation (stack.py)."""
+    from . import checkpoint
     from .stack import group_specs
 
     if not todo:

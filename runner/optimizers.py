@@ -18,10 +18,13 @@ biases or batch-norm parameters.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Callable
+from typing import TYPE_CHECKING, Callable
 
 from .errors import RecipeError
 from .params import Param, Real
+
+if TYPE_CHECKING:  # annotations only; torch is imported where it is used
+    import torch
 
 __all__ = ["HYPERPARAMS", "OPTIMIZERS", "build_optimizer", "check_optimizer"]
 

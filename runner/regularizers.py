@@ -11,7 +11,12 @@ Penalties cover weight matrices only, never biases or normalization parameters.
 """
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 from .params import Choice, Param, Real
+
+if TYPE_CHECKING:  # annotations only; torch is imported where it is used
+    import torch
 
 __all__ = ["PARAMS", "penalty", "soft_threshold_", "proximal_l1_", "sparsity"]
 

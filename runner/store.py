@@ -17,7 +17,7 @@ from pathlib import Path
 from typing import Iterable
 
 from .errors import StoreError
-from .train import JobResult
+from .job import JobResult
 
 __all__ = ["Store", "RunnerLock", "FINISHED", "SCHEMA_VERSION", "STALE_AFTER"]
 

@@ -12,45 +12,19 @@ import os
 import platform
 import sys
 import time
-from dataclasses import dataclass, field
-
 import numpy as np
 import torch
 import torch.nn.functional as F
 
 from . import checkpoint, diagnostics, faults, regularizers
 from .data import Dataset, split_and_scale
+from .job import JobResult, JobSpec
 from .metrics import METRICS, evaluate, quick
 from .models import build_model, weight_tensors
 from .optimizers import build_optimizer
 from .schedules import lr_at
 
 __all__ = ["JobSpec", "JobResult", "run_job", "train_model", "environment", "score", "streams"]
-
-
-@dataclass(frozen=True)
-class JobSpec:
-    key: str
-    seed: int
-    settings: dict          # {"data": {...}, "model": {...}, "train": {...}}, fully resolved
-    monitor: str            # the rank metric, watched by early stopping
-    data_id: str            # the dataset's fingerprint
-    checkpoint: str | None = None     # file for mid-job checkpoints (train.checkpoint_every)
-    time_limit: float | None = None   # overrides train.time_limit when set (--time-limit)
-
-
-@dataclass
-class JobResult:
-    key: str
-    status: str             # done | diverged | failed | timeout
-    error: str | None = None
-    metrics: dict = field(default_factory=dict)      # split -> {metric: value}
-    curves: dict = field(default_factory=dict)       # name -> [value per epoch]
-    diagnostics: dict = field(default_factory=dict)
-    epochs_run: int = 0
-    best_epoch: int | None = None
-    duration: float = 0.0
-    env: dict = field(default_factory=dict)
 
 
 def environment() -> dict:

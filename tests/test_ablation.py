@@ -12,7 +12,7 @@ from runner.recipe import load_recipe
 from runner.render import render, render_ablation
 from runner.store import Store
 from runner.summary import leaderboard
-from runner.train import JobResult
+from runner.job import JobResult
 
 from conftest import DATA, write_recipe
 

@@ -78,15 +78,21 @@ def test_ctrl_c_exits_130_with_a_resume_hint(tmp_path):
 
 
 def test_ctrl_c_during_start_up_prints_no_traceback(tmp_path):
-    # while the runner and the worker fork server are still importing: each moment of the
-    # start-up (the server's own interpreter start, its imports, the runner's) gets one try
     path = recipe(tmp_path, epochs=150)
-    for delay in (0.15, 0.5, 1.2):
+    # from the moment the command's own code runs (before that, Python itself is starting and
+    # any program prints a traceback on Ctrl-C): about when the server is spawned, while it
+    # imports, and while the runner imports torch
+    begin = time.monotonic()
+    subprocess.run([PYTHON, "-c", "import runner.cli"], env=subprocess_env(), check=True)
+    ready = time.monotonic() - begin
+    for delay in (ready + 0.05, ready + 0.3, ready + 1.0):
         proc = start([path, "--store", tmp_path / f"s{delay}.sqlite", "--workers", 2])
         time.sleep(delay)
         os.killpg(proc.pid, signal.SIGINT)
         _, err = proc.communicate(timeout=60)
-        assert proc.returncode == 130, (delay, err)
+        # 130, or ended by the SIGINT itself after the message (a shell shows 130 for both):
+        # a Ctrl-C held back while the server is spawned can arrive as Python exits
+        assert proc.returncode in (130, -signal.SIGINT), (delay, err)
         assert "Traceback" not in err and "Fatal" not in err, (delay, err)
         assert "Run the same command again" in err
 

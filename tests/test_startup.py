@@ -1,10 +1,11 @@
 """Start-up: what the CLI and the workers import, the deterministic switch, and when
 `recipe run` starts the worker fork server early."""
+import os
 import subprocess
 
 import pytest
 
-from conftest import PYTHON, subprocess_env
+from conftest import PYTHON, invoke, subprocess_env, write_recipe
 from runner.forkserver import default_workers, wants_workers
 
 
@@ -12,6 +13,16 @@ def _modules_after(code: str) -> set[str]:
     proc = subprocess.run([PYTHON, "-c", f"{code}\nimport sys\nprint(' '.join(sys.modules))"],
                           env=subprocess_env(), capture_output=True, text=True, check=True)
     return set(proc.stdout.split())
+
+
+def _cli_alone(args: list[str]) -> tuple[list[str], str]:
+    """Run one CLI command in a fresh interpreter: (its exit code, the worker fork server's
+    pid or None, whether torch got imported), and its stderr."""
+    code = (f"import sys\nfrom runner.cli import cli\nimport multiprocessing.forkserver as f\n"
+            f"try:\n    cli({args!r})\nexcept SystemExit as e:\n"
+            f"    print(e.code, f._forkserver._forkserver_pid, 'torch' in sys.modules)")
+    proc = subprocess.run([PYTHON, "-c", code], env=subprocess_env(), capture_output=True, text=True)
+    return proc.stdout.split()[-3:], proc.stderr
 
 
 def test_cli_and_package_import_without_torch():
@@ -59,16 +70,30 @@ def test_validating_a_recipe_needs_no_torch_and_a_bad_one_starts_no_workers(tmp_
     loaded = _modules_after(f"from runner.recipe import load_recipe\nload_recipe({str(good)!r})")
     assert "torch" not in loaded
     for command in ("run", "check", "board", "status", "report"):
-        args = [command, str(bad)] + (["--workers", "2"] if command == "run" else [])
-        code = (f"import sys\nfrom runner.cli import cli\nimport multiprocessing.forkserver as f\n"
-                f"try:\n    cli({args!r})\nexcept SystemExit as e:\n"
-                f"    print('exit', e.code, 'server', f._forkserver._forkserver_pid, 'torch' in sys.modules)")
-        proc = subprocess.run([PYTHON, "-c", code], env=subprocess_env(), capture_output=True, text=True)
-        assert "unknown key" in proc.stderr, (command, proc.stderr)
-        assert proc.stdout.split() == ["exit", "2", "server", "None", "False"], command
+        state, err = _cli_alone([command, str(bad)] + (["--workers", "2"] if command == "run" else []))
+        assert "unknown key" in err, (command, err)
+        assert state == ["2", "None", "False"], command  # exit 2, no server, no torch
 
 
 def test_default_worker_count_is_the_usable_cores():
-    import os
-
     assert default_workers() == len(os.sched_getaffinity(0))
+
+
+def test_reading_results_needs_no_torch(tmp_path):
+    # board, status and diff read the store: a practitioner's most frequent commands stay quick
+    path = write_recipe(tmp_path, """
+        name = "light"
+        seeds = [1, 2]
+        [data]
+        source = "iris"
+        [model]
+        hidden = [8]
+        [train]
+        epochs = 2
+    """)
+    assert invoke("run", path, "--workers", 1, "-q").exit_code == 0
+    board = tmp_path / "board.json"
+    for args in (["board", path], ["status", path], ["board", path, "--format", "json", "--out", board],
+                 ["diff", board, board]):
+        state, err = _cli_alone([str(a) for a in args])
+        assert state[0] == "0" and state[2] == "False", (args, err[-300:])
