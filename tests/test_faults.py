@@ -8,6 +8,7 @@ import signal
 import socket
 import sqlite3
 import subprocess
+import textwrap
 import time
 
 
@@ -95,6 +96,28 @@ def test_ctrl_c_during_start_up_prints_no_traceback(tmp_path):
         assert proc.returncode in (130, -signal.SIGINT), (delay, err)
         assert "Traceback" not in err and "Fatal" not in err, (delay, err)
         assert "Run the same command again" in err
+
+
+def test_ctrl_c_while_the_command_line_imports_exits_130(tmp_path):
+    # a real SIGINT, sent by the process to itself at the moment the command line's import of
+    # click begins (an import hook only picks the moment): the console script's guard turns
+    # it into one line and exit 130
+    script = textwrap.dedent("""
+        import os, signal, sys
+        class Interrupt:
+            def find_spec(self, name, path=None, target=None):
+                if name == "click":
+                    os.kill(os.getpid(), signal.SIGINT)
+                return None
+        sys.meta_path.insert(0, Interrupt())
+        sys.argv = ["recipe", "--help"]
+        from runner.entry import main
+        main()
+    """)
+    proc = subprocess.run([PYTHON, "-c", script], env=subprocess_env(), capture_output=True, text=True,
+                          timeout=60)
+    assert proc.returncode == 130, proc.stderr
+    assert "Traceback" not in proc.stderr and "Interrupted before anything ran" in proc.stderr
 
 
 def test_worker_death_is_retried_and_result_is_unchanged(tmp_path):
