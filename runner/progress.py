@@ -8,6 +8,11 @@ import time
 __all__ = ["Progress"]
 
 
+def _seconds(seconds: float) -> str:
+    """A job's time: stacked jobs share their group's time and often take under 0.1 s each."""
+    return f"{seconds:.3f}s" if seconds < 0.1 else f"{seconds:.1f}s"
+
+
 def _clock(seconds: float) -> str:
     seconds = int(round(seconds))
     h, rest = divmod(seconds, 3600)
@@ -49,7 +54,7 @@ class Progress:
         else:
             shown = f"{self.metric}={value:.4f}" if value is not None else ""
             self.stream.write(f"[{self.finished}/{self.total}] {status:<8} {label} seed {seed} "
-                              f"{shown} ({seconds:.1f}s; ~{_clock(left)} left)\n")
+                              f"{shown} ({_seconds(seconds)}; ~{_clock(left)} left)\n")
             if self.verbose and error:
                 self.stream.write(f"    {error}\n")
         self.stream.flush()

@@ -83,6 +83,8 @@ def test_progress_live_line_and_plain_lines():
     p.update("sgd", 3, "failed", None, 0.5, "ValueError: x")
     assert plain.getvalue().splitlines() == [
         "[1/2] failed   sgd seed 3  (0.5s; ~0:00 left)", "    ValueError: x"]
+    p.update("adam", 1, "done", 0.9, 0.045)  # a stacked job's share of its group's time
+    assert plain.getvalue().splitlines()[-1].startswith("[2/2] done     adam seed 1 val.accuracy=0.9000 (0.045s;")
     quiet = io.StringIO()
     Progress(2, "val.accuracy", "max", stream=quiet, quiet=True).update("a", 1, "done", 0.5, 0.1)
     assert quiet.getvalue() == ""
