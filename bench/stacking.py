@@ -230,18 +230,22 @@ class ProductClock:
     """Times the stacked path's matrix products inside a real run: runner.stacked_mlp's
     numpy and torch names are swapped, for the duration, for namespaces whose matmul and
     baddbmm (every product of the forward and backward passes) add their wall time to
-    ``seconds``; everything else passes through unchanged."""
+    ``seconds``; everything else passes through unchanged. Each call's operand layouts
+    (shapes and strides) are counted, so that ``replay`` can time the same calls alone."""
 
     def __init__(self):
         self.seconds = 0.0
+        self.calls: dict[tuple, int] = {}
 
-    def _timed(self, fn):
+    def _timed(self, name, fn):
         def call(*args, **kwargs):
             start = time.perf_counter()
             try:
                 return fn(*args, **kwargs)
             finally:
                 self.seconds += time.perf_counter() - start
+                key = (name, *(_layout(a) for a in (*args, kwargs["out"])))
+                self.calls[key] = self.calls.get(key, 0) + 1
         return call
 
     def __enter__(self):
@@ -252,13 +256,51 @@ class ProductClock:
 
         self._module, self._saved = stacked_mlp, (stacked_mlp.np, stacked_mlp.torch)
         timed_np, timed_torch = types.ModuleType("numpy"), types.ModuleType("torch")
-        timed_np.__dict__.update(np.__dict__, matmul=self._timed(np.matmul))
-        timed_torch.__dict__.update(torch.__dict__, baddbmm=self._timed(torch.baddbmm))
+        timed_np.__dict__.update(np.__dict__, matmul=self._timed("matmul", np.matmul))
+        timed_torch.__dict__.update(torch.__dict__, baddbmm=self._timed("baddbmm", torch.baddbmm))
         stacked_mlp.np, stacked_mlp.torch = timed_np, timed_torch
         return self
 
     def __exit__(self, *exc):
         self._module.np, self._module.torch = self._saved
+
+    def replay(self) -> float:
+        """Seconds the recorded product calls take replayed alone: each distinct call (same
+        shapes and strides, random operands) as many times as the run made it, back to back
+        with warm caches, best of 3. The best these products can do on this machine inside
+        any training loop that keeps this layout."""
+        import numpy as np
+
+        total = 0.0
+        for (name, *layouts), count in self.calls.items():
+            operands = [_operand(lay, torch if name == "baddbmm" else np) for lay in layouts]
+            *ins, out = operands
+            fn = (lambda: torch.baddbmm(*ins, out=out)) if name == "baddbmm" else (lambda: np.matmul(*ins, out=out))
+            fn()
+            best = float("inf")
+            for _ in range(3):
+                start = time.perf_counter()
+                for _ in range(count):
+                    fn()
+                best = min(best, time.perf_counter() - start)
+            total += best
+        return total
+
+
+def _layout(a) -> tuple:
+    """(shape, strides in elements) of a numpy array or a torch tensor."""
+    if isinstance(a, torch.Tensor):
+        return tuple(a.shape), tuple(a.stride())
+    return a.shape, tuple(s // a.itemsize for s in a.strides)
+
+
+def _operand(layout: tuple, lib):
+    """A float32 operand of random values with exactly this shape and these strides."""
+    shape, strides = layout
+    span = 1 + sum((n - 1) * s for n, s in zip(shape, strides))
+    base = torch.randn(span)
+    view = torch.as_strided(base, shape, strides)
+    return view if lib is torch else view.numpy()
 
 
 def fork_server_startup() -> float:
@@ -318,6 +360,9 @@ def main() -> None:
         print(f"  stacked, one more run with its matrix products timed in place: {wall:.2f} s, of which products "
               f"{clock.seconds:.2f} s ({clock.seconds / wall * 100:.0f}%), everything else {wall - clock.seconds:.2f} s; "
               f"3x MLPClassifier allows {budget:.2f} s in all")
+        alone = clock.replay()
+        print(f"  the same product calls replayed alone (warm caches, best of 3): {alone:.2f} s, "
+              f"{alone / budget * 100:.0f}% of that allowance, leaving {budget - alone:.2f} s for everything else")
         if name.startswith("A"):
             print(f"worker fork server start-up, once per `recipe run` (it overlaps the main process's own "
                   f"start-up there): {fork_server_startup():.1f} s; not in the timings below")
