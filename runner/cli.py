@@ -270,8 +270,9 @@ def export_mlflow(recipe_path, store, uri):
 @click.argument("recipe_path", metavar="RECIPE", type=click.Path())
 @store_option
 @click.option("--workers", type=click.IntRange(1), default=None, help="Workers to estimate for (default: cores).")
-@click.option("--no-probe", is_flag=True, help="Skip the timed probe (no run-time estimate).")
-def check(recipe_path, store, workers, no_probe):
+@click.option("--no-probe", is_flag=True, help="Skip the timed probes (no run-time estimate).")
+@click.option("--no-stack", is_flag=True, help="Estimate for `recipe run --no-stack`: every job on its own.")
+def check(recipe_path, store, workers, no_probe, no_stack):
     """Validate RECIPE and print its plan: factors, jobs, what is stored, a time estimate."""
     try:
         recipe, grid = _load(recipe_path)
@@ -283,9 +284,9 @@ def check(recipe_path, store, workers, no_probe):
         workers = workers or recipe.run.get("workers") or default_workers()
         if path.exists():
             with Store(path, create=False) as db:
-                text, _ = describe_plan(grid, db, workers, probe=not no_probe)
+                text, _ = describe_plan(grid, db, workers, probe=not no_probe, stack=not no_stack)
         else:
-            text, _ = describe_plan(grid, None, workers, probe=not no_probe)
+            text, _ = describe_plan(grid, None, workers, probe=not no_probe, stack=not no_stack)
     except UserError as err:
         _fail(err)
     click.echo(f"{recipe_path}: valid.")

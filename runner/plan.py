@@ -1,36 +1,92 @@
 """`recipe check`: the expanded plan, what the store already holds, and a run-time estimate
-from a short timed probe of one job."""
+from short timed probes of the work `recipe run` would do."""
 from __future__ import annotations
 
 import dataclasses
+import heapq
 import time
 
-from .grid import Grid
+from .grid import Grid, canonical
 from .store import Store
 
-__all__ = ["describe_plan", "probe_seconds_per_epoch", "PROBE_EPOCHS"]
+__all__ = ["describe_plan", "estimate_seconds", "PROBE_EPOCHS", "MAX_PROBES"]
 
 PROBE_EPOCHS = 2
+MAX_PROBES = 6  # distinct kinds of work item timed; others are costed from these
 
 
-def probe_seconds_per_epoch(grid: Grid, job) -> float:
-    """Train ``job`` for PROBE_EPOCHS epochs in this process, one thread; seconds per epoch."""
-    from .schedule import prepare_process
-    from .train import run_job
+def _probe_item(item, epochs: int = PROBE_EPOCHS) -> tuple:
+    """The item with every member cut to ``epochs`` epochs and nothing that outlives it
+    (no early stopping, checkpoints or time limit), of the same type (stacked or single)."""
+    from .stack import Stacked
 
-    spec = job.spec()
-    settings = {s: dict(v) for s, v in spec.settings.items()}
-    epochs = min(PROBE_EPOCHS, settings["train"]["epochs"])
-    settings["train"].update(epochs=epochs, patience=0, checkpoint_every=0, time_limit=0.0)
-    spec = dataclasses.replace(spec, settings=settings, checkpoint=None)
-    prepare_process(1, grid.datasets)
+    specs = []
+    for spec in item:
+        settings = {s: dict(v) for s, v in spec.settings.items()}
+        settings["train"].update(epochs=min(epochs, settings["train"]["epochs"]), patience=0,
+                                 checkpoint_every=0, time_limit=0.0)
+        specs.append(dataclasses.replace(spec, settings=settings, checkpoint=None, time_limit=None))
+    return Stacked(specs) if isinstance(item, Stacked) else tuple(specs)
+
+
+def _kind(item) -> str:
+    """Work items of one kind cost the same per member and epoch: a stacked group's shapes
+    (its stack key), or a single job's model, batch size and data."""
+    from .stack import Stacked, stack_key
+
+    spec = item[0]
+    if isinstance(item, Stacked):
+        return "stacked " + stack_key(spec)
+    return canonical({"model": spec.settings["model"], "bs": spec.settings["train"]["batch_size"],
+                      "data": spec.data_id})
+
+
+def _seconds_per_member_epoch(item, grid: Grid) -> float:
+    from .schedule import run_item
+
+    probe = _probe_item(item)
     start = time.perf_counter()
-    result = run_job(spec, grid.datasets[spec.data_id])
+    results = run_item(probe, grid.datasets)
     elapsed = time.perf_counter() - start
-    return elapsed / max(1, result.epochs_run or epochs)
+    epochs = max(1, max((r.epochs_run or 0) for r in results))
+    return elapsed / epochs / len(probe)
 
 
-def describe_plan(grid: Grid, store: Store | None, workers: int, probe: bool = True) -> tuple[str, dict]:
+def estimate_seconds(grid: Grid, todo: list, workers: int, stack: bool = True) -> float:
+    """Seconds of training for ``todo`` on ``workers`` processes (one thread each), from the
+    work items `recipe run` would make of it: stacked groups formed as execute() forms them
+    (over the whole grid, a group running whole if any member is to run), one job at a time
+    otherwise. One item of each kind (up to MAX_PROBES kinds) is trained for PROBE_EPOCHS
+    epochs in this process, after an untimed epoch that absorbs one-off start-up costs; an
+    item costs its kind's time per member and epoch times its members and epochs (items of
+    kinds not probed get the mean of the probed kinds), and the items are dealt to the
+    workers longest first, each to the least loaded."""
+    from .schedule import prepare_process, run_item
+    from .stack import group_specs
+
+    keys = {j.key for j in todo}
+    specs = [j.spec() for j in grid] if stack else [j.spec() for j in todo]
+    items = [it for it in group_specs(specs, grid.datasets, enabled=stack) if any(s.key in keys for s in it)]
+    if not items:
+        return 0.0
+    prepare_process(1, grid.datasets)
+    run_item(_probe_item(items[0], epochs=1), grid.datasets)  # untimed: one-off start-up costs
+    rates: dict[str, float] = {}
+    for item in items:
+        kind = _kind(item)
+        if kind not in rates and len(rates) < MAX_PROBES:
+            rates[kind] = _seconds_per_member_epoch(item, grid)
+    fallback = sum(rates.values()) / len(rates)
+    costs = sorted((rates.get(_kind(it), fallback) * len(it) * max(s.settings["train"]["epochs"] for s in it)
+                    for it in items), reverse=True)
+    loads = [0.0] * max(1, min(workers, len(items)))
+    for cost in costs:
+        heapq.heapreplace(loads, loads[0] + cost)
+    return max(loads)
+
+
+def describe_plan(grid: Grid, store: Store | None, workers: int, probe: bool = True,
+                  stack: bool = True) -> tuple[str, dict]:
     recipe = grid.recipe
     jobs = list(grid)
     statuses = {}
@@ -58,17 +114,23 @@ def describe_plan(grid: Grid, store: Store | None, workers: int, probe: bool = T
     info = {"configurations": len(grid.configs), "jobs": len(jobs), **counts, "to_run": len(todo),
             "estimate_seconds": None}
     if probe and todo:
-        per_epoch = probe_seconds_per_epoch(grid, todo[0])
-        total_epochs = sum(j.config.settings["train"]["epochs"] for j in todo)
-        estimate = per_epoch * total_epochs / max(1, min(workers, len(todo)))
+        estimate = estimate_seconds(grid, todo, workers, stack)
         info["estimate_seconds"] = estimate
-        lines.append(f"estimated run time: about {_human(estimate)} with {workers} worker(s) "
-                     f"(an estimate from a {PROBE_EPOCHS}-epoch probe of one job; configurations differ in "
-                     "cost, and early stopping or divergence can end jobs sooner)")
+        how = "stacked as `recipe run` stacks them" if stack else "one job at a time (--no-stack)"
+        lines.append(f"estimated run time: {_about(estimate)} of training with {workers} worker(s), "
+                     f"{how}, plus a few seconds to start the workers (from {PROBE_EPOCHS}-epoch probes; "
+                     "early stopping or divergence can end jobs sooner)")
     return "\n".join(lines) + "\n", info
 
 
+def _about(seconds: float) -> str:
+    text = _human(seconds)
+    return text if text.startswith("under") else "about " + text
+
+
 def _human(seconds: float) -> str:
+    if seconds < 1:
+        return "under a second"
     if seconds < 90:
         return f"{seconds:.0f} s"
     if seconds < 5400:

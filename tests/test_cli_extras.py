@@ -31,7 +31,7 @@ def test_check_counts_on_a_partly_finished_store(tmp_path):
     out = result.stdout
     assert "3 configurations x 3 seeds = 9 jobs: 6 done, 0 diverged, 0 failed, 0 timed out, 3 to run" in out
     assert "train.optimizer: sgd (baseline), adam, adagrad" in out
-    assert re.search(r"estimated run time: about \d+ s with 2 worker\(s\) \(an estimate", out)
+    assert re.search(r"estimated run time: (about \d+ s|under a second) of training with 2 worker\(s\), stacked", out)
     quiet = invoke("check", path, "--store", store, "--no-probe").stdout
     assert "estimated" not in quiet
 
