@@ -44,7 +44,8 @@ def _kind(item) -> str:
 def _seconds_per_member_epoch(item, grid: Grid) -> float:
     from .schedule import run_item
 
-    probe = _probe_item(item)
+    run_item(_probe_item(item, epochs=1), grid.datasets)  # untimed: this kind's one-off costs
+    probe = _probe_item(item)  # (imports, first calls of its kernels, pages of code read from disk)
     start = time.perf_counter()
     results = run_item(probe, grid.datasets)
     elapsed = time.perf_counter() - start
@@ -57,11 +58,11 @@ def estimate_seconds(grid: Grid, todo: list, workers: int, stack: bool = True) -
     work items `recipe run` would make of it: stacked groups formed as execute() forms them
     (over the whole grid, a group running whole if any member is to run), one job at a time
     otherwise. One item of each kind (up to MAX_PROBES kinds) is trained for PROBE_EPOCHS
-    epochs in this process, after an untimed epoch that absorbs one-off start-up costs; an
+    epochs in this process, after an untimed epoch that absorbs its one-off costs; an
     item costs its kind's time per member and epoch times its members and epochs (items of
     kinds not probed get the mean of the probed kinds), and the items are dealt to the
     workers longest first, each to the least loaded."""
-    from .schedule import prepare_process, run_item
+    from .schedule import prepare_process
     from .stack import group_specs
 
     keys = {j.key for j in todo}
@@ -70,7 +71,6 @@ def estimate_seconds(grid: Grid, todo: list, workers: int, stack: bool = True) -
     if not items:
         return 0.0
     prepare_process(1, grid.datasets)
-    run_item(_probe_item(items[0], epochs=1), grid.datasets)  # untimed: one-off start-up costs
     rates: dict[str, float] = {}
     for item in items:
         kind = _kind(item)
