@@ -68,7 +68,7 @@ def execute(grid: Grid, store: Store, todo: list[Job], executor, progress: Progr
     """Run ``todo``; each result is committed to the store as soon as it arrives. With
     ``stack``, same-shaped jobs train together as one stacked computation (stack.py)."""
     from . import checkpoint
-    from .stack import group_specs
+    from .stack import describe, group_specs
 
     if not todo:
         return
@@ -103,6 +103,8 @@ def execute(grid: Grid, store: Store, todo: list[Job], executor, progress: Progr
     everything = [spec_of(j) for j in grid] if stack else [spec_of(j) for j in todo]
     items = [item for item in group_specs(everything, grid.datasets, enabled=stack)
              if any(s.key in by_key for s in item)]
+    if progress is not None:
+        progress.note(describe(items))
     with RunnerLock(store):
         store.remember_recipe(grid.recipe)
         try:

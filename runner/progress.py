@@ -35,6 +35,12 @@ class Progress:
         self.values: dict[str, list[float]] = {}
         self.finished = 0
 
+    def note(self, text: str) -> None:
+        """A line about the run as a whole, before its jobs' lines (not when quiet)."""
+        if not self.quiet:
+            self.stream.write(text + "\n")
+            self.stream.flush()
+
     def update(self, label: str, seed: int, status: str, value: float | None, seconds: float,
                error: str | None = None) -> None:
         self.finished += 1

@@ -41,7 +41,7 @@ from .stacked_mlp import StackedMLP, cross_entropy_grad, mse_grad
 from .stacked_optim import STACKED_OPTIMIZERS, StackedOptimizer, member_runs
 from .train import JobResult, JobSpec, environment, run_job, streams
 
-__all__ = ["Stacked", "stack_key", "group_specs", "run_group", "member_bytes", "GROUP_SIZE", "MEMORY_BUDGET"]
+__all__ = ["Stacked", "stack_key", "group_specs", "describe", "run_group", "member_bytes", "GROUP_SIZE", "MEMORY_BUDGET"]
 
 GROUP_SIZE = 16  # members per stacked group: enough to share the per-operation overhead,
 # few enough that a small grid still spreads over several workers
@@ -100,6 +100,20 @@ def group_specs(specs: Sequence[JobSpec], datasets: dict[str, Dataset],
         cuts = [round(i * len(members) / count) for i in range(count + 1)]
         items += [Stacked(members[a:b]) for a, b in zip(cuts, cuts[1:])]
     return items
+
+
+def describe(items: Sequence[tuple[JobSpec, ...]]) -> str:
+    """How a run's work items train, in words: "2 stacked groups of 9 jobs, 3 jobs one at a time"."""
+    sizes = sorted(len(item) for item in items if isinstance(item, Stacked))
+    alone = sum(len(item) for item in items if not isinstance(item, Stacked))
+    parts = []
+    if sizes:
+        span = str(sizes[0]) if sizes[0] == sizes[-1] else f"{sizes[0]}-{sizes[-1]}"
+        parts.append(f"{len(sizes)} stacked group{'s' if len(sizes) > 1 else ''} of {span} "
+                     f"job{'s' if sizes[-1] > 1 else ''}")
+    if alone:
+        parts.append(f"{alone} job{'s' if alone > 1 else ''} one at a time")
+    return "training " + ", ".join(parts)
 
 
 def _hyper(specs, name, dtype=torch.float32):

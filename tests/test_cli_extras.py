@@ -88,3 +88,26 @@ def test_progress_live_line_and_plain_lines():
     quiet = io.StringIO()
     Progress(2, "val.accuracy", "max", stream=quiet, quiet=True).update("a", 1, "done", 0.5, 0.1)
     assert quiet.getvalue() == ""
+
+
+def test_run_says_how_its_jobs_will_train(tmp_path):
+    """A line before the jobs' lines: stacked groups (sgd and adam share one here: the stack
+    key holds shapes, not optimizers) or, with --no-stack, every job on its own."""
+    path = write_recipe(tmp_path, RECIPE)
+    stacked = invoke("run", path, "--store", tmp_path / "a.sqlite", "--workers", 1)
+    assert stacked.exit_code == 0, stacked.stderr
+    assert "6 jobs, 0 done, 6 to run\ntraining 1 stacked group of 6 jobs\n[1/6]" in stacked.stderr
+    alone = invoke("run", path, "--store", tmp_path / "b.sqlite", "--workers", 1, "--no-stack")
+    assert "training 6 jobs one at a time\n" in alone.stderr
+    again = invoke("run", path, "--store", tmp_path / "a.sqlite", "--workers", 1)
+    assert "training" not in again.stderr  # nothing left to run
+    quiet = invoke("run", path, "--store", tmp_path / "c.sqlite", "--workers", 1, "-q")
+    assert "training" not in quiet.stderr
+
+
+def test_describe_counts_groups_and_single_jobs():
+    from runner.stack import Stacked, describe
+
+    assert describe([Stacked("abcdefghi"), Stacked("abcdefghij"), ("x",), ("y",)]) == \
+        "training 2 stacked groups of 9-10 jobs, 2 jobs one at a time"
+    assert describe([Stacked("a")]) == "training 1 stacked group of 1 job"
