@@ -32,10 +32,10 @@ import torch
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from runner.grid import expand  # noqa: E402
-from runner.jobs import execute, make_executor  # noqa: E402
-from runner.recipe import parse_recipe  # noqa: E402
-from runner.store import Store  # noqa: E402
+from runner.recipe.grid import expand  # noqa: E402
+from runner.execution.planning import execute, make_executor  # noqa: E402
+from runner.recipe.loader import parse_recipe  # noqa: E402
+from runner.store.database import Store  # noqa: E402
 
 EPOCHS, BATCH, HIDDEN = 10, 64, (128, 128)
 ROUNDS = 5
@@ -227,7 +227,7 @@ def tool(grid, workers: int, stack: bool):
 
 
 class ProductClock:
-    """Times the stacked path's matrix products inside a real run: runner.stacked_mlp's
+    """Times the stacked path's matrix products inside a real run: runner.training.stacked_network's
     numpy and torch names are swapped, for the duration, for namespaces whose matmul and
     baddbmm (every product of the forward and backward passes) add their wall time to
     ``seconds``; everything else passes through unchanged. Each call's operand layouts
@@ -252,7 +252,7 @@ class ProductClock:
         import types
 
         import numpy as np
-        from runner import stacked_mlp
+        from runner.training import stacked_network as stacked_mlp
 
         self._module, self._saved = stacked_mlp, (stacked_mlp.np, stacked_mlp.torch)
         timed_np, timed_torch = types.ModuleType("numpy"), types.ModuleType("torch")
@@ -305,7 +305,7 @@ def _operand(layout: tuple, lib):
 
 def fork_server_startup() -> float:
     """Seconds until the worker fork server has imported everything and forked a first child."""
-    from runner.forkserver import start_early, worker_context
+    from runner.execution.forkserver import start_early, worker_context
 
     start = time.perf_counter()
     start_early()

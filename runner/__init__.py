@@ -4,7 +4,7 @@ Pipeline: recipe (load + validate) -> grid (expand) -> jobs (run into the store)
 store (SQLite) -> summary (leaderboard) -> render.
 
 The names below are imported on first use (PEP 562), so importing one module of the
-package (a worker's ``runner.schedule``, the CLI's ``runner.errors``) does not pay for
+package (a worker's ``runner.execution.executors``, the CLI's ``runner.errors``) does not pay for
 torch, scipy.stats and scikit-learn unless that module needs them: ``recipe --help`` and
 a worker's start-up stay quick.
 """
@@ -17,8 +17,8 @@ __all__ = ["DataError", "RecipeError", "StoreError", "UserError", "Grid", "expan
 __version__ = "0.1.0"
 
 _HOME = {"DataError": "errors", "RecipeError": "errors", "StoreError": "errors", "UserError": "errors",
-         "Grid": "grid", "expand": "grid", "Recipe": "recipe", "load_recipe": "recipe",
-         "Store": "store", "leaderboard": "summary"}
+         "Grid": "recipe.grid", "expand": "recipe.grid", "Recipe": "recipe.loader",
+         "load_recipe": "recipe.loader", "Store": "store.database", "leaderboard": "evidence.leaderboard"}
 
 
 def __getattr__(name: str):

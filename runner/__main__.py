@@ -1,3 +1,3 @@
-from .entry import main
+from runner.cli import main
 
 main()

@@ -6,13 +6,13 @@ table computable by hand.
 
 import pytest
 
-from runner.ablation import ablation
-from runner.grid import expand
-from runner.recipe import load_recipe
-from runner.render import render, render_ablation
-from runner.store import Store
-from runner.summary import leaderboard
-from runner.job import JobResult
+from runner.evidence.ablation import ablation
+from runner.recipe.grid import expand
+from runner.recipe.loader import load_recipe
+from runner.outputs.text import render, render_ablation
+from runner.store.database import Store
+from runner.evidence.leaderboard import leaderboard
+from runner.training.job import JobResult
 
 from conftest import DATA, write_recipe
 

@@ -1,7 +1,7 @@
 """activations: derivative facts of the trade, computed by autograd."""
 import torch
 
-from runner.activations import ACTIVATIONS, make_activation
+from runner.components.activations import ACTIVATIONS, make_activation
 
 
 def derivative(name, x):

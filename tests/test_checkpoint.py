@@ -5,7 +5,7 @@ import subprocess
 
 import torch
 
-from runner import checkpoint
+from runner.training import checkpoints as checkpoint
 
 from conftest import PYTHON, invoke, subprocess_env, write_recipe
 

@@ -3,7 +3,7 @@ import io
 import re
 import subprocess
 
-from runner.progress import Progress
+from runner.execution.progress import Progress
 
 from conftest import DATA, PYTHON, ROOT, invoke, subprocess_env, write_recipe
 
@@ -106,7 +106,7 @@ def test_run_says_how_its_jobs_will_train(tmp_path):
 
 
 def test_describe_counts_groups_and_single_jobs():
-    from runner.stack import Stacked, describe
+    from runner.training.stacked import Stacked, describe
 
     assert describe([Stacked("abcdefghi"), Stacked("abcdefghij"), ("x",), ("y",)]) == \
         "training 2 stacked groups of 9-10 jobs, 2 jobs one at a time"

@@ -7,10 +7,10 @@ import pytest
 
 distributed = pytest.importorskip("distributed")
 
-from runner.grid import expand  # noqa: E402
-from runner.jobs import execute, make_executor  # noqa: E402
-from runner.recipe import load_recipe  # noqa: E402
-from runner.store import Store  # noqa: E402
+from runner.recipe.grid import expand  # noqa: E402
+from runner.execution.planning import execute, make_executor  # noqa: E402
+from runner.recipe.loader import load_recipe  # noqa: E402
+from runner.store.database import Store  # noqa: E402
 
 from conftest import stored_metrics, invoke, write_recipe  # noqa: E402
 

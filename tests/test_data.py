@@ -3,9 +3,9 @@ import numpy as np
 import pytest
 from sklearn.model_selection import train_test_split
 
-from runner.data import load_dataset, split_and_scale
+from runner.datasets.sources import load_dataset, split_and_scale
 from runner.errors import DataError
-from runner.recipe import resolve
+from runner.recipe.loader import resolve
 
 from conftest import DATA
 

@@ -1,5 +1,5 @@
 """The README's reference stays true: every setting is documented, the test command is CI's."""
-from runner.settings import all_paths
+from runner.recipe.settings import all_paths
 
 from conftest import ROOT
 

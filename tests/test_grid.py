@@ -1,8 +1,8 @@
 """grid: Cartesian product of levels times seeds, linked factors, exclusions, stable keys."""
 import shutil
 
-from runner.grid import expand
-from runner.recipe import load_recipe
+from runner.recipe.grid import expand
+from runner.recipe.loader import load_recipe
 
 from conftest import DATA, invoke, write_recipe
 

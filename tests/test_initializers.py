@@ -4,10 +4,10 @@ import math
 import pytest
 import torch
 
-from runner.activations import gain
-from runner.initializers import INITIALIZERS, initialize
-from runner.models import build_model, layers_with_weights
-from runner.recipe import resolve
+from runner.components.activations import gain
+from runner.components.initializers import INITIALIZERS, initialize
+from runner.training.models import build_model, layers_with_weights
+from runner.recipe.loader import resolve
 
 
 def gen(seed=0):

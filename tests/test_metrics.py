@@ -3,7 +3,7 @@ import numpy as np
 import pytest
 from sklearn import metrics as skm
 
-from runner.metrics import evaluate
+from runner.components.metrics import evaluate
 
 
 def test_classification_metrics_match_sklearn():
@@ -37,7 +37,7 @@ def test_regression_metrics_match_sklearn():
 @pytest.mark.parametrize("seed", range(4))
 def test_formulas_equal_sklearn(seed):
     """metrics.quick computes the same numbers as sklearn.metrics, with classes 3..6."""
-    from runner.metrics import quick
+    from runner.components.metrics import quick
 
     rng = np.random.default_rng(seed)
     k = 3 + seed
@@ -60,7 +60,7 @@ def test_formulas_equal_sklearn(seed):
 
 def test_quick_f1_with_a_class_never_predicted():
     """A class absent from the predictions scores F1 0, as sklearn's zero_division=0 does."""
-    from runner.metrics import quick
+    from runner.components.metrics import quick
 
     y = np.array([0, 1, 2, 2, 1, 0])
     probs = np.eye(3)[[0, 1, 1, 1, 1, 0]]
@@ -91,6 +91,6 @@ def test_bundled_wine_logistic_regression_metrics_match_sklearn():
 
 
 def quick_r2(y, pred):
-    from runner.metrics import quick
+    from runner.components.metrics import quick
 
     return quick("r2", y, pred)

@@ -4,10 +4,10 @@ import math
 import pytest
 import torch
 
-from runner.optimizers import OPTIMIZERS, build_optimizer
-from runner.recipe import resolve
+from runner.components.optimizers import OPTIMIZERS, build_optimizer
+from runner.recipe.loader import resolve
 from runner.errors import RecipeError
-from runner.grid import _check_rules
+from runner.recipe.grid import _check_rules
 
 H = torch.tensor([1.0, 10.0], dtype=torch.float64)  # f(w) = 1/2 w^T diag(1, 10) w
 
@@ -136,7 +136,7 @@ def test_weight_decay_skips_biases():
 
 def test_sgd_weight_decay_equals_half_l2_penalty():
     """SGD(weight_decay = lam) equals adding (lam/2) ||w||^2 to the loss."""
-    from runner.regularizers import penalty
+    from runner.components.regularizers import penalty
     lam = 0.2
     a, b = quadratic_model(), quadratic_model()
     oa = build_optimizer(a, train_settings(optimizer="sgd", lr=0.05, weight_decay=lam))

@@ -9,11 +9,11 @@ import time
 
 import pytest
 
-from runner.grid import expand
-from runner.jobs import execute, make_executor
-from runner.plan import estimate_seconds
-from runner.recipe import load_recipe
-from runner.store import Store
+from runner.recipe.grid import expand
+from runner.execution.planning import execute, make_executor
+from runner.execution.estimate import estimate_seconds
+from runner.recipe.loader import load_recipe
+from runner.store.database import Store
 
 from conftest import write_recipe
 

@@ -4,8 +4,8 @@ import subprocess
 import pytest
 
 from runner.errors import UserError
-from runner.grid import expand
-from runner.recipe import load_recipe
+from runner.recipe.grid import expand
+from runner.recipe.loader import load_recipe
 
 from conftest import DATA, PYTHON, invoke, subprocess_env, write_recipe
 

@@ -6,12 +6,12 @@ from sklearn.datasets import load_diabetes, make_circles
 from sklearn.linear_model import Lasso, LogisticRegression
 from sklearn.preprocessing import StandardScaler
 
-from runner.grid import expand
-from runner.models import Dropout, weight_tensors
-from runner.recipe import load_recipe
-from runner.regularizers import soft_threshold_, sparsity
-from runner.schedule import prepare_process
-from runner.train import train_model
+from runner.recipe.grid import expand
+from runner.training.models import Dropout, weight_tensors
+from runner.recipe.loader import load_recipe
+from runner.components.regularizers import soft_threshold_, sparsity
+from runner.execution.executors import prepare_process
+from runner.training.single import train_model
 
 from conftest import write_recipe
 

@@ -2,8 +2,8 @@
 import pytest
 import torch
 
-from runner.recipe import resolve
-from runner.schedules import lr_at
+from runner.recipe.loader import resolve
+from runner.components.lr_schedules import lr_at
 
 
 def train(**kw):

@@ -6,9 +6,9 @@ import pytest
 import tomli
 
 from runner.errors import UserError
-from runner.grid import expand
-from runner.recipe import load_recipe
-from runner.schema import recipe_schema
+from runner.recipe.grid import expand
+from runner.recipe.loader import load_recipe
+from runner.recipe.schema import recipe_schema
 
 from conftest import DATA, ROOT, invoke
 

@@ -6,12 +6,12 @@ import numpy as np
 import pytest
 import torch
 
-from runner.grid import expand
-from runner.recipe import load_recipe
-from runner.schedule import prepare_process
-from runner.stack import Stacked, group_specs, run_group, stack_key
-from runner.stacked_optim import STACKED_OPTIMIZERS, StackedOptimizer
-from runner.train import run_job
+from runner.recipe.grid import expand
+from runner.recipe.loader import load_recipe
+from runner.execution.executors import prepare_process
+from runner.training.stacked import Stacked, group_specs, run_group, stack_key
+from runner.components.stacked_optim import STACKED_OPTIMIZERS, StackedOptimizer
+from runner.training.single import run_job
 
 from conftest import invoke, write_recipe
 
@@ -290,8 +290,8 @@ def test_what_is_not_stacked(tmp_path):
 def test_scores_of_all_members_equal_the_single_path_score(tmp_path, source):
     """stack._scores (all members at once) gives train.score's numbers member by member,
     including NaN for a member whose outputs overflowed."""
-    from runner.stack import _scores, _splits
-    from runner.train import score
+    from runner.training.stacked import _scores, _splits
+    from runner.training.single import score
 
     _, specs, ds = grid_of(tmp_path, f"""
         name = "sc"

@@ -1,11 +1,11 @@
 """stacked_mlp: the hand-written forward and backward against torch autograd on the
-single-job path's network (nn.Linear layers built by runner.models), member by member."""
+single-job path's network (nn.Linear layers built by runner.training.models), member by member."""
 import pytest
 import torch
 import torch.nn.functional as F
 
-from runner.activations import ACTIVATIONS, make_activation
-from runner.stacked_mlp import StackedMLP, cross_entropy_grad, mse_grad
+from runner.components.activations import ACTIVATIONS, make_activation
+from runner.training.stacked_network import StackedMLP, cross_entropy_grad, mse_grad
 
 
 def reference(net: StackedMLP, k: int, activation: str, slope: float):

@@ -6,7 +6,7 @@ import subprocess
 import pytest
 
 from conftest import PYTHON, invoke, subprocess_env, write_recipe
-from runner.forkserver import default_workers, wants_workers
+from runner.execution.forkserver import default_workers, wants_workers
 
 
 def _modules_after(code: str) -> set[str]:
@@ -18,7 +18,7 @@ def _modules_after(code: str) -> set[str]:
 def _cli_alone(args: list[str]) -> tuple[list[str], str]:
     """Run one CLI command in a fresh interpreter: (its exit code, the worker fork server's
     pid or None, whether torch got imported), and its stderr."""
-    code = (f"import sys\nfrom runner.cli import cli\nimport multiprocessing.forkserver as f\n"
+    code = (f"import sys\nfrom runner.cli.commands import cli\nimport multiprocessing.forkserver as f\n"
             f"try:\n    cli({args!r})\nexcept SystemExit as e:\n"
             f"    print(e.code, f._forkserver._forkserver_pid, 'torch' in sys.modules)")
     proc = subprocess.run([PYTHON, "-c", code], env=subprocess_env(), capture_output=True, text=True)
@@ -27,16 +27,16 @@ def _cli_alone(args: list[str]) -> tuple[list[str], str]:
 
 def test_cli_and_package_import_without_torch():
     # `recipe --help`, completion and a malformed recipe's error must not wait for torch
-    loaded = _modules_after("import runner.cli, runner.forkserver")
+    loaded = _modules_after("import runner.cli.commands, runner.execution.forkserver")
     assert "torch" not in loaded and "scipy" not in loaded and "sklearn" not in loaded
     loaded = _modules_after("import runner\nrunner.Store")  # names still there, on first use
-    assert "runner.store" in loaded
+    assert "runner.store.database" in loaded
 
 
 def test_deterministic_switch_matches_the_public_one():
     # torch.use_deterministic_algorithms(True) sets two things a CPU run can see: the flag,
     # and filling fresh tensors (torch.empty) with NaN; the cheaper switch must set both
-    code = ("import torch, math\nfrom runner.schedule import deterministic_kernels\n"
+    code = ("import torch, math\nfrom runner.execution.executors import deterministic_kernels\n"
             "assert not torch.are_deterministic_algorithms_enabled()\n"
             "deterministic_kernels()\n"
             "print(torch.are_deterministic_algorithms_enabled(), "
@@ -67,7 +67,7 @@ def test_validating_a_recipe_needs_no_torch_and_a_bad_one_starts_no_workers(tmp_
     good.write_text('name = "x"\nseeds = [1]\n[data]\nsource = "iris"\n[model]\nactivation = "tanh"\n'
                     '[train]\noptimizer = "nesterov"\nl1 = 0.01\n')
     bad.write_text('name = "x"\nseeds = [1]\n[data]\nsource = "iris"\n[train]\nepochz = 3\n')
-    loaded = _modules_after(f"from runner.recipe import load_recipe\nload_recipe({str(good)!r})")
+    loaded = _modules_after(f"from runner.recipe.loader import load_recipe\nload_recipe({str(good)!r})")
     assert "torch" not in loaded
     for command in ("run", "check", "board", "status", "report"):
         state, err = _cli_alone([command, str(bad)] + (["--workers", "2"] if command == "run" else []))

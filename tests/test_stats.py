@@ -4,7 +4,7 @@ import pytest
 from scipy import stats as st
 from statsmodels.stats.multitest import multipletests
 
-from runner import stats
+from runner.evidence import stats
 
 # Student 1908 (Biometrika 6:1-25), the sleep data: extra hours of sleep under two drugs.
 SLEEP_1 = [0.7, -1.6, -0.2, -1.2, -0.1, 3.4, 3.7, 0.8, 0.0, 2.0]

@@ -4,10 +4,10 @@ import sqlite3
 
 import pytest
 
-from runner.grid import expand
-from runner.recipe import load_recipe
-from runner.schedule import prepare_process
-from runner.train import run_job
+from runner.recipe.grid import expand
+from runner.recipe.loader import load_recipe
+from runner.execution.executors import prepare_process
+from runner.training.single import run_job
 
 from conftest import invoke, write_recipe
 

@@ -7,10 +7,10 @@ import pytest
 import torch
 from sklearn.datasets import load_digits
 
-from runner.grid import expand
-from runner.recipe import load_recipe
-from runner.schedule import prepare_process
-from runner.train import train_model
+from runner.recipe.grid import expand
+from runner.recipe.loader import load_recipe
+from runner.execution.executors import prepare_process
+from runner.training.single import train_model
 
 from conftest import invoke, write_recipe
 
@@ -157,7 +157,7 @@ def test_diagnostics_recorded_per_layer(tmp_path):
 def test_init_stats_mean_and_std_equal_numpy_float64():
     """Activation mean and sample std (ddof=1) per member, as numpy computes them in float64,
     for float32 activations with a large offset (where a one-pass float32 formula loses digits)."""
-    from runner.diagnostics import init_stats
+    from runner.training.diagnostics import init_stats
 
     gen = torch.Generator().manual_seed(0)
     outputs = [torch.randn(3, 40000, generator=gen) * 0.01 + 100.0, torch.rand(3, 777, generator=gen)]

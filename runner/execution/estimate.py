@@ -1,0 +1,138 @@
+"""`recipe check`: the expanded plan, what the store already holds, and a run-time estimate
+from short timed probes of the work `recipe run` would do."""
+from __future__ import annotations
+
+import dataclasses
+import heapq
+import time
+
+from runner.recipe.grid import Grid, canonical
+from runner.store.database import Store
+
+__all__ = ["describe_plan", "estimate_seconds", "PROBE_EPOCHS", "MAX_PROBES"]
+
+PROBE_EPOCHS = 2
+MAX_PROBES = 6  # distinct kinds of work item timed; others are costed from these
+
+
+def _probe_item(item, epochs: int = PROBE_EPOCHS) -> tuple:
+    """The item with every member cut to ``epochs`` epochs and nothing that outlives it
+    (no early stopping, checkpoints or time limit), of the same type (stacked or single)."""
+    from runner.training.stacked import Stacked
+
+    specs = []
+    for spec in item:
+        settings = {s: dict(v) for s, v in spec.settings.items()}
+        settings["train"].update(epochs=min(epochs, settings["train"]["epochs"]), patience=0,
+                                 checkpoint_every=0, time_limit=0.0)
+        specs.append(dataclasses.replace(spec, settings=settings, checkpoint=None, time_limit=None))
+    return Stacked(specs) if isinstance(item, Stacked) else tuple(specs)
+
+
+def _kind(item) -> str:
+    """Work items of one kind cost the same per member and epoch: a stacked group's shapes
+    (its stack key), or a single job's model, batch size and data."""
+    from runner.training.stacked import Stacked, stack_key
+
+    spec = item[0]
+    if isinstance(item, Stacked):
+        return "stacked " + stack_key(spec)
+    return canonical({"model": spec.settings["model"], "bs": spec.settings["train"]["batch_size"],
+                      "data": spec.data_id})
+
+
+def _seconds_per_member_epoch(item, grid: Grid) -> float:
+    from runner.execution.executors import run_item
+
+    run_item(_probe_item(item, epochs=1), grid.datasets)  # untimed: this kind's one-off costs
+    probe = _probe_item(item)  # (imports, first calls of its kernels, pages of code read from disk)
+    start = time.perf_counter()
+    results = run_item(probe, grid.datasets)
+    elapsed = time.perf_counter() - start
+    epochs = max(1, max((r.epochs_run or 0) for r in results))
+    return elapsed / epochs / len(probe)
+
+
+def estimate_seconds(grid: Grid, todo: list, workers: int, stack: bool = True) -> float:
+    """Seconds of training for ``todo`` on ``workers`` processes (one thread each), from the
+    work items `recipe run` would make of it: stacked groups formed as execute() forms them
+    (over the whole grid, a group running whole if any member is to run), one job at a time
+    otherwise. One item of each kind (up to MAX_PROBES kinds) is trained for PROBE_EPOCHS
+    epochs in this process, after an untimed epoch that absorbs its one-off costs; an
+    item costs its kind's time per member and epoch times its members and epochs (items of
+    kinds not probed get the mean of the probed kinds), and the items are dealt to the
+    workers longest first, each to the least loaded."""
+    from runner.execution.executors import prepare_process
+    from runner.training.stacked import group_specs
+
+    keys = {j.key for j in todo}
+    specs = [j.spec() for j in grid] if stack else [j.spec() for j in todo]
+    items = [it for it in group_specs(specs, grid.datasets, enabled=stack) if any(s.key in keys for s in it)]
+    if not items:
+        return 0.0
+    prepare_process(1, grid.datasets)
+    rates: dict[str, float] = {}
+    for item in items:
+        kind = _kind(item)
+        if kind not in rates and len(rates) < MAX_PROBES:
+            rates[kind] = _seconds_per_member_epoch(item, grid)
+    fallback = sum(rates.values()) / len(rates)
+    costs = sorted((rates.get(_kind(it), fallback) * len(it) * max(s.settings["train"]["epochs"] for s in it)
+                    for it in items), reverse=True)
+    loads = [0.0] * max(1, min(workers, len(items)))
+    for cost in costs:
+        heapq.heapreplace(loads, loads[0] + cost)
+    return max(loads)
+
+
+def describe_plan(grid: Grid, store: Store | None, workers: int, probe: bool = True,
+                  stack: bool = True) -> tuple[str, dict]:
+    recipe = grid.recipe
+    jobs = list(grid)
+    statuses = {}
+    if store is not None:
+        statuses = {r["key"]: r["status"] for r in store.jobs({j.key for j in jobs})}
+    counts = {s: 0 for s in ("done", "diverged", "failed", "timeout")}
+    for status in statuses.values():
+        counts[status] += 1
+    todo = [j for j in jobs if j.key not in statuses]
+    lines = [f"{recipe.name}: {recipe.description}" if recipe.description else recipe.name,
+             f"ranked by {grid.rank_by} ({'higher' if grid.goal == 'max' else 'lower'} is better); "
+             f"task {grid.task}; seeds {', '.join(map(str, recipe.seeds))}"]
+    if recipe.factors:
+        lines.append("factors:")
+        for f in recipe.factors:
+            levels = ", ".join(f.label(i) + (" (baseline)" if recipe.baseline[f.name] == i else "")
+                               for i in range(len(f.levels)))
+            paths = "" if f.paths == (f.name,) else f" [{', '.join(f.paths)}]"
+            lines.append(f"  {f.name}{paths}: {levels}")
+    if recipe.exclude:
+        lines.append(f"exclusions: {len(recipe.exclude)} rule(s)")
+    lines.append(f"{len(grid.configs)} configurations x {len(recipe.seeds)} seeds = {len(jobs)} jobs: "
+                 f"{counts['done']} done, {counts['diverged']} diverged, {counts['failed']} failed, "
+                 f"{counts['timeout']} timed out, {len(todo)} to run")
+    info = {"configurations": len(grid.configs), "jobs": len(jobs), **counts, "to_run": len(todo),
+            "estimate_seconds": None}
+    if probe and todo:
+        estimate = estimate_seconds(grid, todo, workers, stack)
+        info["estimate_seconds"] = estimate
+        how = "stacked as `recipe run` stacks them" if stack else "one job at a time (--no-stack)"
+        lines.append(f"estimated run time: {_about(estimate)} of training with {workers} worker(s), "
+                     f"{how}, plus a few seconds to start the workers (from {PROBE_EPOCHS}-epoch probes; "
+                     "early stopping or divergence can end jobs sooner)")
+    return "\n".join(lines) + "\n", info
+
+
+def _about(seconds: float) -> str:
+    text = _human(seconds)
+    return text if text.startswith("under") else "about " + text
+
+
+def _human(seconds: float) -> str:
+    if seconds < 1:
+        return "under a second"
+    if seconds < 90:
+        return f"{seconds:.0f} s"
+    if seconds < 5400:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"

@@ -1,0 +1,238 @@
+"""Executors: run job specs and hand each result back, in the main process, as it arrives.
+
+The interface is ``run(items, datasets, on_result, on_start=None)``, where an item is a tuple
+of job specs trained together (one spec, or a stacked group; see stack.py):
+- ``SerialExecutor`` runs in this process (for debugging and one-worker runs);
+- ``PoolExecutor`` runs worker processes that import torch once and take many jobs;
+- ``DaskExecutor`` (dask_executor.py) sends jobs to a dask.distributed cluster.
+The caller's ``on_result`` writes the store, so only the main process ever writes results.
+"""
+from __future__ import annotations
+
+import signal
+import time
+import warnings
+from collections import deque
+from multiprocessing.connection import wait
+from typing import Callable
+
+import threadpoolctl
+import torch
+
+from runner.datasets.sources import Dataset
+from runner.execution.forkserver import default_workers, start_early, worker_context
+from runner.training.single import JobResult, JobSpec, run_job
+
+__all__ = ["SerialExecutor", "PoolExecutor", "prepare_process", "deterministic_kernels", "default_workers"]
+
+OnResult = Callable[[JobSpec, JobResult, int], None]  # spec, result, attempts used
+OnStart = Callable[[JobSpec], None]
+
+_DATASETS: dict[str, Dataset] = {}
+
+
+def grace(limit: float) -> float:
+    """Seconds past a hard time limit before a stuck worker is killed: 2 to 10 s."""
+    return max(2.0, min(10.0, 0.5 * limit))
+
+
+def deterministic_kernels() -> None:
+    """torch.use_deterministic_algorithms(True) without its import of torch's compiler
+    configuration (about a second, in every process that starts; the tool compiles
+    nothing, so that setting is never read). Where torch lacks the internal switch, the
+    public function."""
+    switch = getattr(torch._C, "_set_deterministic_algorithms", None)
+    if switch is None:
+        torch.use_deterministic_algorithms(True)
+    else:
+        switch(True, warn_only=False)
+
+
+def prepare_process(threads: int, datasets: dict[str, Dataset] | None = None, worker: bool = False) -> None:
+    """Fixed threads and deterministic kernels: the conditions for bitwise-equal reruns."""
+    global _DATASETS
+    torch.set_num_threads(threads)
+    threadpoolctl.threadpool_limits(threads, user_api="blas")  # numpy's BLAS (the stacked path's products)
+    deterministic_kernels()
+    if datasets is not None:
+        _DATASETS = datasets
+    warnings.filterwarnings("ignore", module="sklearn")
+    import sklearn.model_selection  # noqa: F401  (each job's split: imported here, not in a job's time)
+    if worker:
+        signal.signal(signal.SIGINT, signal.SIG_IGN)  # the main process decides what Ctrl-C does
+
+
+_SINGLE_PATH_READY = False
+
+
+def ready_for(item: tuple[JobSpec, ...]) -> None:
+    """Import what this work item's path needs before its clock starts. The single-job path's
+    torch.optim imports torch's compiler front end when it builds its first optimizer (over
+    a second, enough to trip a short time limit); stacked groups never need it, so workers
+    and the fork server do not import it unless a single job comes."""
+    global _SINGLE_PATH_READY
+    from runner.training.stacked import Stacked
+
+    if not _SINGLE_PATH_READY and not isinstance(item, Stacked):
+        torch.optim.SGD([torch.zeros(1, requires_grad=True)], lr=0.1)
+        _SINGLE_PATH_READY = True
+
+
+def run_item(item: tuple[JobSpec, ...], datasets: dict[str, Dataset]) -> list[JobResult]:
+    """Train one work item: a single job, or a stacked group of same-shaped jobs."""
+    from runner.training.stacked import Stacked, run_group
+
+    ready_for(item)
+    ds = datasets[item[0].data_id]
+    if isinstance(item, Stacked):
+        return run_group(item, ds)
+    return [run_job(spec, ds) for spec in item]
+
+
+def _work(item: tuple[JobSpec, ...]) -> list[JobResult]:
+    return run_item(item, _DATASETS)
+
+
+class SerialExecutor:
+    def __init__(self, threads: int = 1):
+        self.threads = threads
+
+    def run(self, items, datasets, on_result: OnResult, on_start: OnStart | None = None) -> None:
+        previous = torch.get_num_threads()
+        blas = threadpoolctl.threadpool_limits(None)  # remembers the current limits
+        prepare_process(self.threads, datasets)
+        try:
+            for item in items:
+                for spec in item:
+                    if on_start:
+                        on_start(spec)
+                for spec, result in zip(item, _work(item)):
+                    on_result(spec, result, 1)
+        finally:
+            torch.set_num_threads(previous)
+            blas.restore_original_limits()
+
+
+def _worker_main(conn, threads: int, datasets: dict) -> None:
+    prepare_process(threads, datasets, worker=True)
+    while True:
+        try:
+            item = conn.recv()
+        except EOFError:
+            return
+        if item is None:
+            return
+        ready_for(item)
+        conn.send(("start", None))  # the job's clock starts here, not while the worker boots
+        conn.send(("result", _work(item)))
+
+
+class _Worker:
+    def __init__(self, ctx, threads, datasets):
+        self.conn, child = ctx.Pipe()
+        self.proc = ctx.Process(target=_worker_main, args=(child, threads, datasets), daemon=True)
+        self.proc.start()
+        child.close()
+        self.spec: tuple[JobSpec, ...] | None = None  # the work item it holds
+        self.started: float | None = None
+
+    def read(self) -> tuple[list[JobResult] | None, bool]:
+        """(the finished item's results or None, whether the pipe broke)."""
+        try:
+            while self.conn.poll():
+                kind, payload = self.conn.recv()
+                if kind == "start":
+                    self.started = time.monotonic()
+                else:
+                    return payload, False
+        except (EOFError, OSError):
+            return None, True
+        return None, False
+
+    def stop(self) -> None:
+        if self.proc.is_alive():
+            self.proc.kill()
+        self.proc.join(timeout=5)
+        self.conn.close()
+
+
+def _death(exitcode: int | None) -> str:
+    if exitcode is not None and exitcode < 0:
+        name = signal.Signals(-exitcode).name
+        extra = "; out of memory?" if name == "SIGKILL" else ""
+        return f"worker process died ({name}{extra})"
+    return f"worker process died (exit code {exitcode})"
+
+
+class PoolExecutor:
+    """Worker processes, each holding one work item at a time.
+
+    A worker that dies (killed, out of memory, a crash in native code) is replaced; the work it
+    held (one job or a stacked group) is tried again up to ``max_attempts`` in all, then each of
+    its jobs is recorded as failed with the reason.
+    Other workers' jobs are not disturbed. With ``hard_limit`` seconds, a job still running
+    a grace period past it (stuck where the job's own time check cannot run) has its worker
+    killed and is recorded as timed out (``grace``: a job's own check normally stops it first).
+    """
+
+    def __init__(self, workers: int, threads: int = 1, max_attempts: int = 2,
+                 hard_limit: float | None = None):
+        self.workers = workers
+        self.threads = threads
+        self.max_attempts = max_attempts
+        self.hard_limit = hard_limit
+
+    def run(self, items, datasets, on_result: OnResult, on_start: OnStart | None = None) -> None:
+        ctx = worker_context()
+        start_early()  # if `recipe run` has not already: with Ctrl-C ignored (see forkserver.py)
+        queue = deque(items)
+        attempts: dict[str, int] = {}
+        pool = [_Worker(ctx, self.threads, datasets) for _ in range(min(self.workers, len(queue)))]
+        try:
+            while queue or any(w.spec for w in pool):
+                for w in pool:
+                    if w.spec is None and queue:
+                        w.spec, w.started = queue.popleft(), None
+                        if on_start:
+                            for spec in w.spec:
+                                on_start(spec)
+                        w.conn.send(w.spec)
+                ready = set(wait([w.conn for w in pool] + [w.proc.sentinel for w in pool], timeout=1.0))
+                for i, w in enumerate(list(pool)):
+                    result, broken = w.read() if w.conn in ready else (None, False)
+                    if result is not None:
+                        item, w.spec = w.spec, None
+                        for spec, res in zip(item, result):
+                            on_result(spec, res, attempts.get(item[0].key, 0) + 1)
+                        continue
+                    overdue = (w.spec is not None and self.hard_limit and w.started is not None
+                               and time.monotonic() - w.started > self.hard_limit + grace(self.hard_limit))
+                    if w.proc.sentinel in ready or broken or overdue:
+                        item = w.spec
+                        if not overdue:
+                            w.proc.join(timeout=5)  # reap it, to read how it died
+                        w.stop()
+                        code = w.proc.exitcode
+                        pool[i] = _Worker(ctx, self.threads, datasets)
+                        if item is None:
+                            continue
+                        tries = attempts[item[0].key] = attempts.get(item[0].key, 0) + 1
+                        if overdue:
+                            error = (f"worker killed {grace(self.hard_limit):g} s past the "
+                                     f"{self.hard_limit:g} s time limit")
+                            for spec in item:
+                                on_result(spec, JobResult(key=spec.key, status="timeout", error=error), tries)
+                        elif tries < self.max_attempts:
+                            queue.appendleft(item)
+                        else:
+                            for spec in item:
+                                on_result(spec, JobResult(key=spec.key, status="failed",
+                                                          error=f"{_death(code)} on each of {tries} attempts"), tries)
+        finally:
+            for w in pool:
+                if w.proc.is_alive() and w.spec is None:
+                    try:
+                        w.conn.send(None)
+                    except OSError:
+                        pass
+                w.stop()

@@ -1,0 +1,114 @@
+"""Run a grid's unfinished jobs into the store: the step between grid and summary.
+
+Finished jobs (done, diverged, failed, timed out) are skipped, so running a recipe again
+resumes it; ``retry_failed`` reruns the failed and timed-out ones. Only one runner uses a
+store at a time (store.RunnerLock); a second one refuses with a clear message.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+from runner.recipe.grid import Grid, Job
+from runner.execution.progress import Progress
+from runner.store.database import FINISHED, RunnerLock, Store
+
+__all__ = ["Plan", "plan", "execute", "make_executor", "checkpoint_dir", "forget"]
+
+
+@dataclass(frozen=True)
+class Plan:
+    total: int
+    done: int
+    to_run: list[Job]
+
+    def describe(self) -> str:
+        return f"{self.total} jobs, {self.done} done, {len(self.to_run)} to run"
+
+
+def plan(grid: Grid, store: Store, retry_failed: bool = False) -> Plan:
+    finished = store.finished_keys(("done", "diverged") if retry_failed else FINISHED)
+    jobs = list(grid)
+    todo = [j for j in jobs if j.key not in finished]
+    return Plan(total=len(jobs), done=len(jobs) - len(todo), to_run=todo)
+
+
+def checkpoint_dir(store: Store) -> Path:
+    return store.path.with_suffix(".checkpoints")
+
+
+def forget(grid: Grid, store: Store) -> int:
+    """Delete this grid's stored results and checkpoints (``recipe run --fresh``)."""
+    keys = [j.key for j in grid]
+    removed = store.forget(keys)
+    from runner.training import checkpoints as checkpoint  # torch: imported only where a run needs it
+
+    for key in keys:
+        checkpoint.remove(str(checkpoint_dir(store) / f"{key}.pt"))
+    return removed
+
+
+def make_executor(on: str, workers: int, threads: int = 1, max_attempts: int = 2,
+                  hard_limit: float | None = None):
+    """``on``: "local" (worker processes, or in-process with one worker), "dask-local" (a
+    LocalCluster on loopback) or "dask://HOST:PORT" (an existing scheduler)."""
+    from runner.execution.executors import PoolExecutor, SerialExecutor
+
+    if on == "local":
+        if workers <= 1:
+            return SerialExecutor(threads)
+        return PoolExecutor(workers, threads, max_attempts, hard_limit)
+    from runner.execution.dask_cluster import DaskExecutor
+
+    return DaskExecutor(on, workers, threads, max_attempts)
+
+
+def execute(grid: Grid, store: Store, todo: list[Job], executor, progress: Progress | None = None,
+            time_limit: float | None = None, on_stored=None, stack: bool = True) -> None:
+    """Run ``todo``; each result is committed to the store as soon as it arrives. With
+    ``stack``, same-shaped jobs train together as one stacked computation (stack.py)."""
+    from runner.training import checkpoints as checkpoint
+    from runner.training.stacked import describe, group_specs
+
+    if not todo:
+        return
+    by_key = {j.key: j for j in todo}
+    split, metric = grid.rank_by.split(".", 1)
+    ckpt_dir = checkpoint_dir(store)
+
+    def on_start(spec):
+        if spec.key in by_key:
+            store.mark_running(spec.key)
+
+    def on_result(spec, result, attempts):
+        if spec.key not in by_key:
+            return  # a stacked group's member that is already stored: written once, never again
+        job = by_key[spec.key]
+        labels = grid.labels(job.config)
+        store.write_result(job, labels, grid.recipe.hash, result, attempts)
+        checkpoint.remove(spec.checkpoint)  # the result is safe: its checkpoint is not needed
+        if progress is not None:
+            value = result.metrics.get(split, {}).get(metric)
+            label = ", ".join(labels.values()) or "base"
+            progress.update(label, job.seed, result.status, value, result.duration, result.error)
+        if on_stored is not None:
+            on_stored(job, result)
+
+    def spec_of(j):
+        ckpt = ckpt_dir / f"{j.key}.pt" if j.config.settings["train"]["checkpoint_every"] else None
+        return j.spec(checkpoint=str(ckpt) if ckpt else None, time_limit=time_limit)
+
+    # Groups are formed over the whole grid (see stack.group_specs); a group with any job to run
+    # runs whole, and only its unfinished members' results are written.
+    everything = [spec_of(j) for j in grid] if stack else [spec_of(j) for j in todo]
+    items = [item for item in group_specs(everything, grid.datasets, enabled=stack)
+             if any(s.key in by_key for s in item)]
+    if progress is not None:
+        progress.note(describe(items))
+    with RunnerLock(store):
+        store.remember_recipe(grid.recipe)
+        try:
+            executor.run(items, grid.datasets, on_result, on_start)
+        finally:
+            if progress is not None:
+                progress.close()

@@ -1,0 +1,162 @@
+"""Expand a Recipe into its grid: configurations (factor levels) times seeds.
+
+Every configuration is resolved and validated here, with the data loaded, before any job
+runs: an impossible combination is a RecipeError, not a failed job.
+"""
+from __future__ import annotations
+
+import hashlib
+import itertools
+import json
+from dataclasses import dataclass
+from typing import Any, Mapping
+
+from runner.datasets.sources import Dataset, load_dataset, source_key
+from runner.errors import DataError, RecipeError, UserError
+from runner.components.metrics import METRICS, for_task
+from runner.components.optimizers import check_optimizer
+from runner.recipe.loader import Recipe, resolve
+from runner.components.lr_schedules import check_schedule
+from runner.recipe.settings import identity
+from runner.training.job import JobSpec
+
+__all__ = ["Config", "Job", "Grid", "expand", "canonical"]
+
+KEY_VERSION = 1  # bump when a change to training makes old results incomparable
+
+
+def canonical(obj: Any) -> str:
+    """Sorted, compact JSON: the text that identities are hashed from."""
+    return json.dumps(obj, sort_keys=True, separators=(",", ":"), default=list)
+
+
+@dataclass(frozen=True)
+class Config:
+    index: int
+    id: str                          # hash of the resolved settings and data, without the seed
+    levels: tuple[int, ...]          # level index of each factor
+    assignments: Mapping[str, Any]   # path -> value set by the factors
+    settings: Mapping[str, Any]
+    data_id: str
+
+
+@dataclass(frozen=True)
+class Job:
+    key: str
+    config: Config
+    seed: int
+    monitor: str
+
+    def spec(self, checkpoint: str | None = None, time_limit: float | None = None) -> JobSpec:
+        return JobSpec(key=self.key, seed=self.seed, settings=dict(self.config.settings),
+                       monitor=self.monitor, data_id=self.config.data_id, checkpoint=checkpoint,
+                       time_limit=time_limit)
+
+
+class Grid:
+    """Configurations times seeds; ``len`` and indexing do not build every job."""
+
+    def __init__(self, recipe: Recipe, configs: list[Config], datasets: dict[str, Dataset],
+                 rank_by: str, task: str):
+        self.recipe = recipe
+        self.configs = configs
+        self.datasets = datasets
+        self.rank_by = rank_by
+        self.metric = rank_by.split(".", 1)[1]
+        self.goal = METRICS[self.metric][1]
+        self.task = task
+
+    def __len__(self) -> int:
+        return len(self.configs) * len(self.recipe.seeds)
+
+    def __getitem__(self, i: int) -> Job:
+        if not -len(self) <= i < len(self):
+            raise IndexError(i)
+        i %= len(self)
+        config = self.configs[i // len(self.recipe.seeds)]
+        seed = self.recipe.seeds[i % len(self.recipe.seeds)]
+        return Job(key=job_key(config, seed, self.metric), config=config, seed=seed, monitor=self.metric)
+
+    def __iter__(self):
+        return (self[i] for i in range(len(self)))
+
+    def labels(self, config: Config) -> dict[str, str]:
+        return {f.name: f.label(i) for f, i in zip(self.recipe.factors, config.levels)}
+
+
+def job_key(config: Config, seed: int, monitor: str) -> str:
+    text = canonical({"v": KEY_VERSION, "settings": identity(config.settings), "data": config.data_id,
+                      "seed": seed, "monitor": monitor})
+    return hashlib.sha256(text.encode()).hexdigest()[:24]
+
+
+def _excluded(assign: Mapping[str, Any], rules) -> bool:
+    return any(all(assign[p] == v for p, v in rule.items()) for rule in rules)
+
+
+def expand(recipe: Recipe) -> Grid:
+    try:
+        return _expand(recipe)
+    except UserError as err:
+        line = recipe.line_of(err.key) if err.key and err.where is None else None
+        raise err.located(where=recipe.path.name, line=line) from None
+
+
+def _expand(recipe: Recipe) -> Grid:
+    factors = recipe.factors
+    datasets: dict[str, Dataset] = {}
+    by_source: dict[tuple, Dataset] = {}
+    configs: list[Config] = []
+    task = None
+    for combo in itertools.product(*(range(len(f.levels)) for f in factors)):
+        assign = {}
+        for f, i in zip(factors, combo):
+            assign.update(zip(f.paths, f.levels[i]))
+        if _excluded(assign, recipe.exclude):
+            continue
+        where = ", ".join(f"{f.name} = {f.label(i)}" for f, i in zip(factors, combo))
+        try:
+            settings = resolve(recipe.sections, assign)
+            _check_rules(settings)
+        except RecipeError as err:
+            if where:
+                err.hint = (err.hint + "; " if err.hint else "") + f"in the configuration {where}"
+            raise
+        skey = source_key(settings["data"])
+        if skey not in by_source:
+            try:
+                by_source[skey] = load_dataset(settings["data"], recipe.base_dir)
+            except DataError as err:
+                raise err.located(where=err.where or recipe.path.name) from None
+        ds = by_source[skey]
+        datasets[ds.fingerprint] = ds
+        if task is None:
+            task = ds.task
+        elif ds.task != task:
+            raise RecipeError("all configurations must share one task (classification or regression)",
+                              key="data.source", value=ds.label)
+        if settings["model"]["kind"] == "cnn" and ds.image_shape is None:
+            raise RecipeError('model.kind = "cnn" needs image data', key="model.kind", value="cnn",
+                              allowed='"digits" or an NPZ file with X of shape (N, H, W) or (N, C, H, W)')
+        ident = hashlib.sha256(canonical({"settings": identity(settings), "data": ds.fingerprint}).encode())
+        configs.append(Config(index=len(configs), id=ident.hexdigest()[:12], levels=combo,
+                              assignments=assign, settings=settings, data_id=ds.fingerprint))
+    if not configs:
+        raise RecipeError("the exclusions remove every configuration: nothing would run", key="exclude",
+                          hint="Loosen or remove an [[exclude]] rule")
+    rank_by = recipe.rank_by or ("val.accuracy" if task == "classification" else "val.rmse")
+    metric = rank_by.split(".", 1)[1]
+    if METRICS[metric][0] != task:
+        raise RecipeError(f"{metric} is not a {task} metric", key="rank_by", value=rank_by,
+                          allowed=", ".join(f'"val.{m}"' for m in for_task(task)))
+    return Grid(recipe, configs, datasets, rank_by, task)
+
+
+def _check_rules(settings: dict) -> None:
+    """Rules that span two settings, checked for every configuration."""
+    check_optimizer(settings["train"])
+    check_schedule(settings["train"])
+    split = settings["data"]["split"]
+    if split["val"] + split["test"] >= 0.9:
+        raise RecipeError("val and test together must leave at least 10% for training",
+                          key="data.split", value={"val": split["val"], "test": split["test"]})
