@@ -205,7 +205,7 @@ class PeakRSS:
 
 def tool(grid, workers: int, stack: bool):
     """(wall seconds, sum of the jobs' own training seconds, peak worker RSS bytes)."""
-    from runner import stack as stacking
+    from runner.training import stacked as stacking
 
     stacking._SPLIT_CACHE.clear()  # each run starts as a fresh `recipe run` would
     with tempfile.TemporaryDirectory() as tmp:
@@ -219,8 +219,8 @@ def tool(grid, workers: int, stack: bool):
             else:
                 execute(grid, db, list(grid), executor, stack=stack)
             wall = time.perf_counter() - start
-            trained = sum(r["duration"] for r in db.jobs())
-            statuses = {r["status"] for r in db.jobs()}
+            trained = sum(r.duration for r in db.jobs())
+            statuses = {r.status for r in db.jobs()}
             assert statuses == {"done"}, statuses
     torch.set_num_threads(1)
     return wall, trained, (peak.peak if peak else None)

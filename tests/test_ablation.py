@@ -58,7 +58,7 @@ def mean(xs):
 
 def test_main_effect_equals_hand_computation(tmp_path):
     grid, store = known_store(tmp_path)
-    ab = ablation(grid, store)
+    ab = ablation(grid, store).to_json()
     opt = ab["main_effects"][0]
     assert opt["factor"] == "train.optimizer" and opt["baseline"] == "sgd"
     sgd, adam = opt["levels"]
@@ -82,7 +82,7 @@ def test_main_effect_equals_hand_computation(tmp_path):
 
 def test_one_at_a_time_and_interaction(tmp_path):
     grid, store = known_store(tmp_path)
-    ab = ablation(grid, store)
+    ab = ablation(grid, store).to_json()
     ofat = {r["label"]: r for r in ab["one_at_a_time"]["rows"]}
     # adam with l2 0 against the baseline sgd with l2 0, paired by seed: 0.10, 0.09, 0.08
     assert ofat["adam"]["diff_mean"] == pytest.approx(0.09)
@@ -94,7 +94,7 @@ def test_one_at_a_time_and_interaction(tmp_path):
 
 def test_optimization_view_epochs_to_95_percent(tmp_path):
     grid, store = known_store(tmp_path)
-    view = ablation(grid, store)["optimization"]
+    view = ablation(grid, store).to_json()["optimization"]
     # curves go v/2 then v: 95% of the best is first reached at epoch 2
     assert {r["epochs_to_95pct"] for r in view} == {2.0}
     assert {r["final_train_loss"] for r in view} == {0.5}
@@ -102,7 +102,7 @@ def test_optimization_view_epochs_to_95_percent(tmp_path):
 
 def test_leaderboard_top_group_on_known_values(tmp_path):
     grid, store = known_store(tmp_path)
-    doc = leaderboard(grid, store)
+    doc = leaderboard(grid, store).to_json()
     assert [r["labels"]["train.optimizer"] for r in doc["rows"]] == ["adam", "adam", "sgd", "sgd"]
     best = doc["rows"][0]
     assert best["vs_best"] is None and best["top_group"] is True
@@ -115,6 +115,6 @@ def test_golden_markdown_leaderboard(tmp_path):
     """The rendered markdown leaderboard and ablation, byte for byte (format drift check)."""
     grid, store = known_store(tmp_path)
     doc = leaderboard(grid, store)
-    text = render(doc, "markdown") + render_ablation(doc["ablation"], markdown=True)
+    text = render(doc, "markdown") + render_ablation(doc.ablation, markdown=True)
     golden = DATA / "golden_board.md"
     assert text == golden.read_text()

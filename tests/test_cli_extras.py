@@ -106,7 +106,8 @@ def test_run_says_how_its_jobs_will_train(tmp_path):
 
 
 def test_describe_counts_groups_and_single_jobs():
-    from runner.training.stacked import Stacked, describe
+    from runner.training.grouping import Stacked
+    from runner.training.grouping import training_note as describe
 
     assert describe([Stacked("abcdefghi"), Stacked("abcdefghij"), ("x",), ("y",)]) == \
         "training 2 stacked groups of 9-10 jobs, 2 jobs one at a time"

@@ -51,7 +51,7 @@ def test_dask_cluster_with_a_killed_worker_matches_local(tmp_path):
             executor = make_executor(f"dask://{cluster.scheduler_address.split('://')[1]}", workers=2,
                                      max_attempts=3)
             execute(grid, db, list(grid), executor, on_stored=kill_one)
-            statuses = [r["status"] for r in db.jobs()]
+            statuses = [r.status for r in db.jobs()]
         assert killed and len(statuses) == 6 and set(statuses) == {"done"}
     finally:
         client.close()

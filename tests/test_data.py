@@ -3,7 +3,8 @@ import numpy as np
 import pytest
 from sklearn.model_selection import train_test_split
 
-from runner.datasets.sources import load_dataset, split_and_scale
+from runner.datasets.sources import load_dataset
+from runner.datasets.splits import split_and_scale
 from runner.errors import DataError
 from runner.recipe.loader import resolve
 
@@ -11,7 +12,7 @@ from conftest import DATA
 
 
 def settings(**data):
-    return resolve({"data": data}, {})["data"]
+    return resolve({"data": data}, {}).data
 
 
 def test_digits_shape_and_classes():

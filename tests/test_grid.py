@@ -41,7 +41,7 @@ def test_linked_factor_and_exclusion(tmp_path):
     "train.optimizer" = "adam"
     "model.dropout" = 0.5
     """)))
-    pairs = sorted((c.settings["train"]["optimizer"], c.settings["train"]["lr"], c.settings["model"]["dropout"])
+    pairs = sorted((c.settings.train.optimizer, c.settings.train.lr, c.settings.model.dropout)
                    for c in grid.configs)
     assert pairs == [("adam", 0.001, 0.0), ("sgd", 0.01, 0.0), ("sgd", 0.01, 0.5),
                      ("sgd", 0.1, 0.0), ("sgd", 0.1, 0.5)]

@@ -83,7 +83,7 @@ def test_normal_and_uniform_use_the_explicit_scale():
 def _model(init, activation="sigmoid", hidden=(8, 8)):
     s = resolve({"data": {"source": "iris"},
                  "model": {"init": init, "activation": activation, "hidden": list(hidden)}}, {})
-    return build_model(s["model"], (4,), 3, gen(1), gen(2))
+    return build_model(s.model, (4,), 3, gen(1), gen(2))
 
 
 def test_model_applies_initializer_and_zero_biases():

@@ -13,7 +13,7 @@ H = torch.tensor([1.0, 10.0], dtype=torch.float64)  # f(w) = 1/2 w^T diag(1, 10)
 
 
 def train_settings(**kw):
-    return resolve({"data": {"source": "iris"}, "train": kw}, {})["train"]
+    return resolve({"data": {"source": "iris"}, "train": kw}, {}).train
 
 
 def quadratic_model(w0=(1.0, 1.0)):

@@ -43,7 +43,7 @@ def test_estimate_is_within_a_factor_of_three_of_the_run(tmp_path, stack):
         start = time.perf_counter()
         execute(grid, db, todo, make_executor("local", 1), stack=stack)  # in this process, one thread
         actual = time.perf_counter() - start
-        assert {r["status"] for r in db.jobs()} == {"done"}
+        assert {r.status for r in db.jobs()} == {"done"}
     assert actual / 3 < estimate < actual * 3, (estimate, actual)
 
 

@@ -11,7 +11,7 @@ from runner.training.models import Dropout, weight_tensors
 from runner.recipe.loader import load_recipe
 from runner.components.regularizers import soft_threshold_, sparsity
 from runner.execution.executors import prepare_process
-from runner.training.single import train_model
+from runner.training.loop import train_job
 
 from conftest import write_recipe
 
@@ -72,7 +72,7 @@ def _linear_l1(tmp_path, mode):
     grid = expand(load_recipe(path))
     prepare_process(1, grid.datasets)
     job = grid[0]
-    net, result = train_model(job.spec(), grid.datasets[job.config.data_id])
+    net, result = train_job(job.spec(), grid.datasets[job.config.data_id], keep_model=True)
     assert result.status == "done", result.error
     return weight_tensors(net)[0].detach(), result
 

@@ -7,7 +7,7 @@ from runner.components.lr_schedules import lr_at
 
 
 def train(**kw):
-    return resolve({"data": {"source": "iris"}, "train": kw}, {})["train"]
+    return resolve({"data": {"source": "iris"}, "train": kw}, {}).train
 
 
 def torch_lrs(make_scheduler, steps, lr=0.1):

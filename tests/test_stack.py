@@ -9,9 +9,10 @@ import torch
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
 from runner.execution.executors import prepare_process
-from runner.training.stacked import Stacked, group_specs, run_group, stack_key
+from runner.training.grouping import Stacked, group_specs, stack_key
+from runner.training.loop import train_group as run_group
 from runner.components.stacked_optim import STACKED_OPTIMIZERS, StackedOptimizer
-from runner.training.single import run_job
+from runner.training.loop import train_job as run_job
 
 from conftest import invoke, write_recipe
 
@@ -275,13 +276,13 @@ def test_what_is_not_stacked(tmp_path):
         "train.optimizer" = ["adam", "rmsprop"]
         "model.batch_norm" = [false, true]
     """)
-    keyed = {(s.settings["train"]["optimizer"], s.settings["model"]["batch_norm"]): stack_key(s) for s in specs}
+    keyed = {(s.settings.train.optimizer, s.settings.model.batch_norm): stack_key(s) for s in specs}
     assert keyed[("adam", False)] is not None
     assert keyed[("rmsprop", False)] is None and keyed[("adam", True)] is None
     items = group_specs(specs, {specs[0].data_id: ds})
     assert sorted(len(i) for i in items) == [1, 1, 1, 1]
     stacked = [i for i in items if isinstance(i, Stacked)]
-    assert len(stacked) == 1 and stacked[0][0].settings["train"]["optimizer"] == "adam"
+    assert len(stacked) == 1 and stacked[0][0].settings.train.optimizer == "adam"
     plain = group_specs(specs, {specs[0].data_id: ds}, enabled=False)
     assert plain == [(s,) for s in specs] and not any(isinstance(i, Stacked) for i in plain)
 
@@ -290,8 +291,9 @@ def test_what_is_not_stacked(tmp_path):
 def test_scores_of_all_members_equal_the_single_path_score(tmp_path, source):
     """stack._scores (all members at once) gives train.score's numbers member by member,
     including NaN for a member whose outputs overflowed."""
-    from runner.training.stacked import _scores, _splits
-    from runner.training.single import score
+    from runner.training.scoring import score_members as _scores
+    from runner.training.scoring import score_outputs as score
+    from runner.training.stacked import _splits
 
     _, specs, ds = grid_of(tmp_path, f"""
         name = "sc"

@@ -7,6 +7,7 @@ import pytest
 
 from conftest import PYTHON, invoke, subprocess_env, write_recipe
 from runner.execution.forkserver import default_workers, wants_workers
+from runner.recipe.loader import RunSettings
 
 
 def _modules_after(code: str) -> set[str]:
@@ -58,7 +59,7 @@ def test_deterministic_switch_matches_the_public_one():
     ({"on": "dask-local"}, 2, "local", True),
 ])
 def test_when_the_fork_server_starts_early(run, workers, on, expected):
-    assert wants_workers(workers, on, run) is expected
+    assert wants_workers(workers, on, RunSettings(**run)) is expected
 
 
 def test_validating_a_recipe_needs_no_torch_and_a_bad_one_starts_no_workers(tmp_path):

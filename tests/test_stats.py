@@ -30,7 +30,7 @@ def test_worked_interval_uses_ddof_1():
 
 def test_interval_absent_below_two_values():
     assert stats.t_interval([0.9]) == (0.9, None, None)
-    assert stats.describe([0.9])["ci95"] is None
+    assert stats.summarize([0.9])["ci95"] is None
 
 
 def test_paired_t_on_student_sleep_data():

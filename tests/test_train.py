@@ -7,7 +7,7 @@ import pytest
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
 from runner.execution.executors import prepare_process
-from runner.training.single import run_job
+from runner.training.loop import train_job as run_job
 
 from conftest import invoke, write_recipe
 

@@ -10,7 +10,7 @@ from sklearn.datasets import load_digits
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
 from runner.execution.executors import prepare_process
-from runner.training.single import train_model
+from runner.training.loop import train_job
 
 from conftest import invoke, write_recipe
 
@@ -19,7 +19,7 @@ def fit(tmp_path, body, index=0):
     grid = expand(load_recipe(write_recipe(tmp_path, 'name = "f"\nseeds = [3]\n' + body)))
     prepare_process(1, grid.datasets)
     job = grid[index]
-    return train_model(job.spec(), grid.datasets[job.config.data_id])
+    return train_job(job.spec(), grid.datasets[job.config.data_id], keep_model=True)
 
 
 WINE = """

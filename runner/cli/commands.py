@@ -100,8 +100,8 @@ def _run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, t
 
     try:
         grid = expand(recipe)
-        where = on or recipe.run.get("on", "local")
-        workers = workers or recipe.run.get("workers") or default_workers()
+        where = on or recipe.run.on
+        workers = workers or recipe.run.workers or default_workers()
         with Store(_store_path(recipe, store)) as db:
             if fresh:
                 _confirm_fresh(db, grid, yes)
@@ -111,7 +111,7 @@ def _run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, t
             progress = Progress(len(todo.to_run), grid.rank_by, grid.goal, quiet=quiet,
                                 live=False if verbose else None, verbose=verbose)
             executor = make_executor(where, workers, threads, max_attempts, time_limit)
-            tracker = RunLogger(mlflow_uri or recipe.tracking.get("mlflow"), grid, db)
+            tracker = RunLogger(mlflow_uri or recipe.tracking.mlflow, grid, db)
             try:
                 execute(grid, db, todo.to_run, executor, progress, time_limit, on_stored=tracker.stored,
                         stack=not no_stack)
@@ -169,7 +169,7 @@ def board(recipe_path, store, fmt, out, ablation):
         fmt = fmt or "table"
         text = render(doc, fmt)
         if ablation and fmt in ("table", "markdown"):
-            text += render_ablation(doc["ablation"], markdown=fmt == "markdown")
+            text += render_ablation(doc.ablation, markdown=fmt == "markdown")
     except UserError as err:
         _fail(err)
     if out:
@@ -186,21 +186,23 @@ def status(recipe_path, store):
     try:
         recipe, grid = _load(recipe_path)
         from runner.store.database import Store
+        from runner.training.job import Status
 
         path = _store_path(recipe, store)
         keys = {j.key for j in grid}
-        counts = {"done": 0, "diverged": 0, "failed": 0, "timeout": 0}
+        counts = dict.fromkeys(Status, 0)
         running = set()
         if path.exists():
             with Store(path, create=False) as db:
                 for row in db.jobs(keys):
-                    counts[row["status"]] += 1
+                    counts[row.status] += 1
                 running = db.running_keys() & keys
     except UserError as err:
         _fail(err)
     pending = len(keys) - sum(counts.values()) - len(running)
-    click.echo(f"{len(keys)} jobs: {counts['done']} done, {len(running)} running, {pending} pending, "
-               f"{counts['failed']} failed, {counts['diverged']} diverged, {counts['timeout']} timed out")
+    click.echo(f"{len(keys)} jobs: {counts[Status.DONE]} done, {len(running)} running, {pending} pending, "
+               f"{counts[Status.FAILED]} failed, {counts[Status.DIVERGED]} diverged, "
+               f"{counts[Status.TIMEOUT]} timed out")
 
 
 @cli.command()
@@ -218,7 +220,7 @@ def diff(old, new, fmt, fail_on_worse):
     except UserError as err:
         _fail(err)
     click.echo(render_diff(result, fmt), nl=False)
-    if fail_on_worse and result["summary"]["worse"]:
+    if fail_on_worse and result.summary["worse"]:
         sys.exit(1)
 
 
@@ -281,7 +283,7 @@ def check(recipe_path, store, workers, no_probe, no_stack):
         from runner.store.database import Store
 
         path = _store_path(recipe, store)
-        workers = workers or recipe.run.get("workers") or default_workers()
+        workers = workers or recipe.run.workers or default_workers()
         if path.exists():
             with Store(path, create=False) as db:
                 text, _ = describe_plan(grid, db, workers, probe=not no_probe, stack=not no_stack)

@@ -23,14 +23,14 @@ PARAMS = {
 
 def lr_at(step: int, steps_per_epoch: int, train: dict) -> float:
     """Learning rate for optimizer step ``step`` (0-based)."""
-    base = train["lr"]
-    kind = train["schedule"]
-    total = steps_per_epoch * train["epochs"]
+    base = train.lr
+    kind = train.schedule
+    total = steps_per_epoch * train.epochs
     if kind == "constant":
         return base
     if kind == "step":
-        return base * train["step_gamma"] ** ((step // steps_per_epoch) // train["step_every"])
-    warm = steps_per_epoch * train["warmup_epochs"] if kind == "warmup_cosine" else 0
+        return base * train.step_gamma ** ((step // steps_per_epoch) // train.step_every)
+    warm = steps_per_epoch * train.warmup_epochs if kind == "warmup_cosine" else 0
     if step < warm:
         return base * (step + 1) / warm
     progress = (step - warm) / max(1, total - warm)
@@ -39,7 +39,7 @@ def lr_at(step: int, steps_per_epoch: int, train: dict) -> float:
 
 
 def check_schedule(train: dict) -> None:
-    if train["schedule"] == "warmup_cosine" and train["warmup_epochs"] >= train["epochs"]:
+    if train.schedule == "warmup_cosine" and train.warmup_epochs >= train.epochs:
         raise RecipeError("warm-up must end before training does", key="train.warmup_epochs",
-                          value=train["warmup_epochs"],
+                          value=train.warmup_epochs,
                           allowed=f"a whole number below train.epochs ({train['epochs']})")

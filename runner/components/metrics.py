@@ -7,27 +7,60 @@ mean_absolute_error, r2_score) on the same predictions.
 """
 from __future__ import annotations
 
+from enum import Enum
+from typing import NamedTuple
+
 import numpy as np
 
-__all__ = ["METRICS", "goal", "for_task", "evaluate", "quick"]
+__all__ = ["METRICS", "Goal", "Task", "MetricInfo", "goal", "for_task", "evaluate", "quick"]
 
-# metric -> (task, goal)
+
+class Task(str, Enum):
+    CLASSIFICATION = "classification"
+    REGRESSION = "regression"
+
+    def __str__(self) -> str:
+        return self.value
+
+
+class Goal(str, Enum):
+    """Which way a metric improves."""
+    MAX = "max"
+    MIN = "min"
+
+    def __str__(self) -> str:
+        return self.value
+
+    def better(self, a: float, b: float) -> bool:
+        """Whether ``a`` is strictly better than ``b``."""
+        return a > b if self is Goal.MAX else a < b
+
+    @property
+    def words(self) -> str:
+        return "higher is better" if self is Goal.MAX else "lower is better"
+
+
+class MetricInfo(NamedTuple):
+    task: Task
+    goal: Goal
+
+
 METRICS = {
-    "accuracy": ("classification", "max"),
-    "f1_macro": ("classification", "max"),
-    "log_loss": ("classification", "min"),
-    "mae": ("regression", "min"),
-    "r2": ("regression", "max"),
-    "rmse": ("regression", "min"),
+    "accuracy": MetricInfo(Task.CLASSIFICATION, Goal.MAX),
+    "f1_macro": MetricInfo(Task.CLASSIFICATION, Goal.MAX),
+    "log_loss": MetricInfo(Task.CLASSIFICATION, Goal.MIN),
+    "mae": MetricInfo(Task.REGRESSION, Goal.MIN),
+    "r2": MetricInfo(Task.REGRESSION, Goal.MAX),
+    "rmse": MetricInfo(Task.REGRESSION, Goal.MIN),
 }
 
 
-def goal(metric: str) -> str:
-    return METRICS[metric][1]
+def goal(metric: str) -> Goal:
+    return METRICS[metric].goal
 
 
 def for_task(task: str) -> list[str]:
-    return sorted(m for m, (t, _) in METRICS.items() if t == task)
+    return sorted(m for m, info in METRICS.items() if info.task == task)
 
 
 def evaluate(task: str, y_true: np.ndarray, output: np.ndarray, n_classes: int = 0) -> dict[str, float]:

@@ -52,31 +52,31 @@ def _optim():
 
 
 def _sgd(groups, t):
-    return _optim().SGD(groups, lr=t["lr"], momentum=0.0)
+    return _optim().SGD(groups, lr=t.lr, momentum=0.0)
 
 
 def _momentum(groups, t):
-    return _optim().SGD(groups, lr=t["lr"], momentum=t["momentum"])
+    return _optim().SGD(groups, lr=t.lr, momentum=t.momentum)
 
 
 def _nesterov(groups, t):
-    return _optim().SGD(groups, lr=t["lr"], momentum=t["momentum"], nesterov=True)
+    return _optim().SGD(groups, lr=t.lr, momentum=t.momentum, nesterov=True)
 
 
 def _adam(groups, t):
-    return _optim().Adam(groups, lr=t["lr"], betas=(t["beta1"], t["beta2"]), eps=t["eps"])
+    return _optim().Adam(groups, lr=t.lr, betas=(t.beta1, t.beta2), eps=t.eps)
 
 
 def _adamw(groups, t):
-    return _optim().AdamW(groups, lr=t["lr"], betas=(t["beta1"], t["beta2"]), eps=t["eps"])
+    return _optim().AdamW(groups, lr=t.lr, betas=(t.beta1, t.beta2), eps=t.eps)
 
 
 def _rmsprop(groups, t):
-    return _optim().RMSprop(groups, lr=t["lr"], alpha=t["alpha"], eps=t["eps"])
+    return _optim().RMSprop(groups, lr=t.lr, alpha=t.alpha, eps=t.eps)
 
 
 def _adagrad(groups, t):
-    return _optim().Adagrad(groups, lr=t["lr"], eps=t["eps"])
+    return _optim().Adagrad(groups, lr=t.lr, eps=t.eps)
 
 
 OPTIMIZERS = {
@@ -92,19 +92,19 @@ OPTIMIZERS = {
 
 def check_optimizer(train: dict) -> None:
     """Rules that span two settings."""
-    if train["optimizer"] in ("momentum", "nesterov") and train["momentum"] <= 0:
-        raise RecipeError(f'{train["optimizer"]} needs momentum > 0', key="train.momentum",
-                          value=train["momentum"], allowed="a number in (0, 1)",
+    if train.optimizer in ("momentum", "nesterov") and train.momentum <= 0:
+        raise RecipeError(f'{train.optimizer} needs momentum > 0', key="train.momentum",
+                          value=train.momentum, allowed="a number in (0, 1)",
                           hint='Use optimizer = "sgd" for plain gradient descent')
 
 
 def build_optimizer(model: torch.nn.Module, train: dict) -> torch.optim.Optimizer:
     """Weight matrices get ``weight_decay``; biases and normalization parameters get none."""
     decay, no_decay = split_parameters(model)
-    groups = [{"params": decay, "weight_decay": train["weight_decay"]},
+    groups = [{"params": decay, "weight_decay": train.weight_decay},
               {"params": no_decay, "weight_decay": 0.0}]
     groups = [g for g in groups if g["params"]]
-    return OPTIMIZERS[train["optimizer"]].build(groups, train)
+    return OPTIMIZERS[train.optimizer].build(groups, train)
 
 
 def split_parameters(model: torch.nn.Module) -> tuple[list, list]:

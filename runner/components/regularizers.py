@@ -32,10 +32,10 @@ PARAMS = {
 def penalty(weights: list[torch.Tensor], train: dict) -> torch.Tensor | None:
     """The explicit penalty term to add to the loss, or None when there is none."""
     total = None
-    if train["l2"] > 0:
-        total = train["l2"] * sum((w * w).sum() for w in weights)
-    if train["l1"] > 0 and train["l1_mode"] == "penalty":
-        l1 = train["l1"] * sum(w.abs().sum() for w in weights)
+    if train.l2 > 0:
+        total = train.l2 * sum((w * w).sum() for w in weights)
+    if train.l1 > 0 and train.l1_mode == "penalty":
+        l1 = train.l1 * sum(w.abs().sum() for w in weights)
         total = l1 if total is None else total + l1
     return total
 

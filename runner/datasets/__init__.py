@@ -1,0 +1,1 @@
+"""Data sources (CSV, NPZ, bundled sets) and each seed's split of them."""

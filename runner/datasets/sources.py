@@ -1,8 +1,7 @@
 """Datasets: CSV and NPZ files, scikit-learn's bundled sets, moons and circles.
 
 ``load_dataset`` reads a source once (in the main process) into a ``Dataset`` with a
-fingerprint of its bytes; ``split_and_scale`` makes one seed's train/val/test arrays, with
-scaling fitted on the training split only.
+fingerprint of its bytes; splits.py cuts it per seed.
 """
 from __future__ import annotations
 
@@ -11,14 +10,18 @@ import hashlib
 import io
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Mapping
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from runner.errors import DataError
+from runner.components.metrics import Task
 from runner.recipe.settings import BUNDLED
 
-__all__ = ["Dataset", "Splits", "load_dataset", "split_and_scale", "MAX_CLASSES_AUTO"]
+if TYPE_CHECKING:
+    from runner.recipe.settings import DataSettings
+
+__all__ = ["Dataset", "load_dataset", "source_key", "MAX_CLASSES_AUTO"]
 
 MAX_CLASSES_AUTO = 20  # whole-number targets with at most this many values count as classes
 
@@ -27,7 +30,7 @@ MAX_CLASSES_AUTO = 20  # whole-number targets with at most this many values coun
 class Dataset:
     X: np.ndarray                   # float32, (N, F) or (N, C, H, W) for images
     y: np.ndarray                   # int64 class indices, or float64 targets
-    task: str                       # "classification" | "regression"
+    task: Task
     classes: tuple[str, ...]        # class labels (classification)
     feature_names: tuple[str, ...]
     fingerprint: str                # sha256 of the bytes (files) or of the generator's settings
@@ -38,26 +41,13 @@ class Dataset:
         return tuple(self.X.shape[1:]) if self.X.ndim == 4 else None
 
 
-@dataclass(frozen=True)
-class Splits:
-    X_train: np.ndarray
-    y_train: np.ndarray
-    X_val: np.ndarray
-    y_val: np.ndarray
-    X_test: np.ndarray | None
-    y_test: np.ndarray | None
-    y_mean: float = 0.0           # regression: targets are standardized for training
-    y_std: float = 1.0
-    scaler_mean: np.ndarray | None = None
-
-
-def source_key(data: Mapping[str, Any]) -> tuple:
+def source_key(data: DataSettings) -> tuple:
     """The settings that decide which rows are loaded (not how they are split)."""
-    return (data["source"], data["target"], data["task"], data["n_samples"], data["noise"])
+    return (data.source, data.target, data.task, data.n_samples, data.noise)
 
 
-def load_dataset(data: Mapping[str, Any], base_dir: Path) -> Dataset:
-    source = data["source"]
+def load_dataset(data: DataSettings, base_dir: Path) -> Dataset:
+    source = data.source
     if source in BUNDLED:
         X, y, names, classes, task, fp = _bundled(source, data)
         label = source
@@ -76,18 +66,18 @@ def load_dataset(data: Mapping[str, Any], base_dir: Path) -> Dataset:
         if path.suffix.lower() == ".npz":
             X, y = _npz(raw, label)
             names = tuple(f"pixel{i}" for i in range(int(np.prod(X.shape[1:]))))
-            task, y, classes = _target(y, data["task"], label, is_text=False)
+            task, y, classes = _target(y, data.task, label, is_text=False)
         else:
-            X, y_raw, names, is_text = _csv(raw, label, data["target"])
-            task, y, classes = _target(y_raw, data["task"], label, is_text)
-    if task == "classification" and len(classes) < 2:
-        raise DataError("the target has only one class", key="data.target", value=data["target"],
+            X, y_raw, names, is_text = _csv(raw, label, data.target)
+            task, y, classes = _target(y_raw, data.task, label, is_text)
+    if task is Task.CLASSIFICATION and len(classes) < 2:
+        raise DataError("the target has only one class", key="data.target", value=data.target,
                         hint="A classifier needs at least two classes")
     return Dataset(X=X, y=y, task=task, classes=classes, feature_names=names, fingerprint=fp,
                    label=label)
 
 
-def _bundled(name: str, data: Mapping[str, Any]):
+def _bundled(name: str, data: DataSettings):
     import sklearn
     from sklearn import datasets
 
@@ -96,15 +86,15 @@ def _bundled(name: str, data: Mapping[str, Any]):
         make = datasets.make_moons if name == "moons" else datasets.make_circles
         kwargs = {"factor": 0.5} if name == "circles" else {}
         # A fixed generator seed: the dataset is the same for every job; seeds vary the split.
-        X, y = make(n_samples=data["n_samples"], noise=data["noise"], random_state=0, **kwargs)
-        fp_text += f"|n={data['n_samples']}|noise={data['noise']}"
+        X, y = make(n_samples=data.n_samples, noise=data.noise, random_state=0, **kwargs)
+        fp_text += f"|n={data.n_samples}|noise={data.noise}"
         return (X.astype(np.float32), y.astype(np.int64), ("x1", "x2"), ("0", "1"),
-                "classification", hashlib.sha256(fp_text.encode()).hexdigest())
+                Task.CLASSIFICATION, hashlib.sha256(fp_text.encode()).hexdigest())
     bunch = getattr(datasets, f"load_{name}")()
     X = bunch.data.astype(np.float32)
     fp = hashlib.sha256(fp_text.encode()).hexdigest()
     if name == "diabetes":
-        return X, bunch.target.astype(np.float64), tuple(bunch.feature_names), (), "regression", fp
+        return X, bunch.target.astype(np.float64), tuple(bunch.feature_names), (), Task.REGRESSION, fp
     if name == "digits":
         # Kept as 8x8 single-channel images; an MLP flattens them.
         X = X.reshape(-1, 1, 8, 8)
@@ -112,7 +102,7 @@ def _bundled(name: str, data: Mapping[str, Any]):
     else:
         names = tuple(bunch.feature_names)
     classes = tuple(str(c) for c in bunch.target_names)
-    return X, bunch.target.astype(np.int64), names, classes, "classification", fp
+    return X, bunch.target.astype(np.int64), names, classes, Task.CLASSIFICATION, fp
 
 
 def _csv(raw: bytes, label: str, target: str | None):
@@ -199,59 +189,12 @@ def _target(y: np.ndarray, task: str, label: str, is_text: bool):
     if task == "auto":
         whole = not is_text and np.all(np.mod(y.astype(float), 1) == 0)
         task = "classification" if is_text or (whole and len(np.unique(y)) <= MAX_CLASSES_AUTO) else "regression"
-    if task == "regression":
+    if task == Task.REGRESSION:
         if is_text:
             raise DataError("a text target cannot be a regression target", where=label,
                             key="data.task", value="regression", allowed='"classification"')
-        return task, y.astype(np.float64), ()
+        return Task.REGRESSION, y.astype(np.float64), ()
     values = sorted(set(y.tolist()), key=lambda v: (isinstance(v, str), v))
     index = {v: i for i, v in enumerate(values)}
     classes = tuple(str(int(v)) if isinstance(v, float) and v.is_integer() else str(v) for v in values)
-    return task, np.array([index[v] for v in y.tolist()], dtype=np.int64), classes
-
-
-def _split_off(idx: np.ndarray, share: float, seed: int, strat: np.ndarray | None):
-    """(kept, split off) rows of ``idx``: exactly sklearn's train_test_split(idx,
-    test_size=share, random_state=seed, stratify=strat), through the splitter it uses,
-    without its argument checks (about a millisecond a call, paid once per job)."""
-    from sklearn.model_selection import ShuffleSplit, StratifiedShuffleSplit
-
-    splitter = (ShuffleSplit if strat is None else StratifiedShuffleSplit)(
-        n_splits=1, test_size=share, random_state=seed)
-    kept, off = next(splitter.split(idx, strat))
-    return idx[kept], idx[off]
-
-
-def split_and_scale(ds: Dataset, data: Mapping[str, Any], seed: int) -> Splits:
-    """One seed's split. Scaling statistics come from the training rows only."""
-    split = data["split"]
-    idx = np.arange(len(ds.y))
-    strat = ds.y if (split["stratify"] and ds.task == "classification") else None
-    test_idx = None
-    try:
-        if split["test"] > 0:
-            idx, test_idx = _split_off(idx, split["test"], seed, strat)
-            strat = ds.y[idx] if strat is not None else None
-        val_share = split["val"] / (1.0 - split["test"])
-        train_idx, val_idx = _split_off(idx, val_share, seed, strat)
-    except ValueError as exc:
-        raise DataError(f"cannot split the data as asked ({exc})", key="data.split",
-                        hint="Use larger val/test fractions or stratify = false") from None
-    X = ds.X.reshape(len(ds.X), -1)
-    mean = np.zeros(X.shape[1], np.float32)
-    scale = np.ones(X.shape[1], np.float32)
-    if data["scale"] == "standard":
-        mean = X[train_idx].mean(axis=0)
-        std = X[train_idx].std(axis=0)
-        scale = np.where(std > 0, std, 1.0).astype(np.float32)  # constant columns keep scale 1
-    elif data["scale"] == "minmax":
-        lo, hi = X[train_idx].min(axis=0), X[train_idx].max(axis=0)
-        mean, scale = lo, np.where(hi > lo, hi - lo, 1.0).astype(np.float32)
-    Xs = ((X - mean) / scale).astype(np.float32).reshape(ds.X.shape)
-    y = ds.y
-    y_mean, y_std = 0.0, 1.0
-    if ds.task == "regression":
-        y_mean = float(y[train_idx].mean())
-        y_std = float(y[train_idx].std()) or 1.0
-    Xte, yte = (Xs[test_idx], y[test_idx]) if test_idx is not None else (None, None)
-    return Splits(Xs[train_idx], y[train_idx], Xs[val_idx], y[val_idx], Xte, yte, y_mean, y_std, mean)
+    return Task.CLASSIFICATION, np.array([index[v] for v in y.tolist()], dtype=np.int64), classes

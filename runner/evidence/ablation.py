@@ -16,9 +16,13 @@ import itertools
 import statistics
 from collections import defaultdict
 
+from runner.components.metrics import Goal
 from runner.evidence import stats
+from runner.evidence.document import (Ablation, Interaction, LevelEffect, MainEffect, MatchedDifference,
+                                      OneAtATime, OneAtATimeRow, OptimizationRow, RegularizationRow)
 from runner.recipe.grid import Grid
 from runner.store.database import Store
+from runner.training.job import Status
 
 __all__ = ["ablation", "REGULARIZATION_PATHS", "OPTIMIZATION_PATHS"]
 
@@ -35,7 +39,7 @@ class _Table:
     def __init__(self, grid: Grid, store: Store, with_curves: bool):
         split, self.metric = grid.rank_by.split(".", 1)
         self.goal = grid.goal
-        stored = {r["key"]: r for r in store.jobs({j.key for j in grid})}
+        stored = {r.key: r for r in store.jobs({j.key for j in grid})}
         metrics = store.metrics()
         self.value, self.status, self.diag, self.key = {}, {}, {}, {}
         for job in grid:
@@ -43,13 +47,13 @@ class _Table:
             if row is None:
                 continue
             cell = (job.config.levels, job.seed)
-            self.status[cell] = row["status"]
+            self.status[cell] = row.status
             self.key[cell] = job.key
-            if row["status"] == "done":
+            if row.status is Status.DONE:
                 v = metrics.get(job.key, {}).get(split, {}).get(self.metric)
                 if v is not None:
                     self.value[cell] = v
-                    self.diag[cell] = row["diagnostics"]
+                    self.diag[cell] = row.diagnostics
         self.curves = store.curves(self.key.values()) if with_curves else {}
         self.seeds = list(grid.recipe.seeds)
 
@@ -62,7 +66,7 @@ def _per_seed_mean(table: _Table, match) -> dict[int, float]:
     return {s: statistics.fmean(vs) for s, vs in by_seed.items()}
 
 
-def _matched_difference(table: _Table, f: int, level: int, base: int) -> dict | None:
+def _matched_difference(table: _Table, f: int, level: int, base: int) -> MatchedDifference | None:
     """Differences (level - base) over cells equal in every other factor and the seed."""
     per_seed = defaultdict(list)
     for (levels, seed), v in table.value.items():
@@ -78,27 +82,27 @@ def _matched_difference(table: _Table, f: int, level: int, base: int) -> dict | 
     out = stats.paired(means, [0.0] * len(means))
     pairs = sum(len(v) for v in per_seed.values())
     if out is None:
-        return {"diff_mean": means[0], "ci95": None, "p_value": None, "n_pairs": pairs, "n_seeds": len(seeds)}
-    return {"diff_mean": out["diff_mean"], "ci95": out["ci95"], "p_value": out["p_value"],
-            "n_pairs": pairs, "n_seeds": len(seeds)}
+        return MatchedDifference(diff_mean=means[0], ci95=None, p_value=None, n_pairs=pairs, n_seeds=len(seeds))
+    return MatchedDifference(diff_mean=out["diff_mean"], ci95=out["ci95"], p_value=out["p_value"],
+                             n_pairs=pairs, n_seeds=len(seeds))
 
 
-def _main_effects(grid: Grid, table: _Table) -> list[dict]:
+def _main_effects(grid: Grid, table: _Table) -> list[MainEffect]:
     out = []
     for f, factor in enumerate(grid.recipe.factors):
         base = grid.recipe.baseline[factor.name]
         levels = []
         for i in range(len(factor.levels)):
             per_seed = _per_seed_mean(table, lambda lv, i=i, f=f: lv[f] == i)
-            summary = stats.describe(list(per_seed.values()))
-            levels.append({"label": factor.label(i), "mean": summary["mean"], "ci95": summary["ci95"],
-                           "n_seeds": summary["n"],
-                           "diff_vs_baseline": None if i == base else _matched_difference(table, f, i, base)})
-        out.append({"factor": factor.name, "baseline": factor.label(base), "levels": levels})
+            summary = stats.summarize(list(per_seed.values()))
+            levels.append(LevelEffect(label=factor.label(i), mean=summary["mean"], ci95=summary["ci95"],
+                                      n_seeds=summary["n"],
+                                      diff_vs_baseline=None if i == base else _matched_difference(table, f, i, base)))
+        out.append(MainEffect(factor=factor.name, baseline=factor.label(base), levels=levels))
     return out
 
 
-def _one_at_a_time(grid: Grid, table: _Table) -> dict | None:
+def _one_at_a_time(grid: Grid, table: _Table) -> OneAtATime | None:
     factors = grid.recipe.factors
     if not grid.recipe.baseline_given or not factors:
         return None
@@ -113,18 +117,18 @@ def _one_at_a_time(grid: Grid, table: _Table) -> dict | None:
             vals = {s: table.value[(cell, s)] for s in table.seeds if (cell, s) in table.value}
             seeds = sorted(set(vals) & set(base_vals))
             cmp = stats.paired([vals[s] for s in seeds], [base_vals[s] for s in seeds])
-            rows.append({"factor": factor.name, "label": factor.label(i), "n_pairs": len(seeds),
-                         "mean": statistics.fmean(vals.values()) if vals else None,
-                         "diff_mean": cmp["diff_mean"] if cmp else None,
-                         "ci95": cmp["ci95"] if cmp else None, "p_value": cmp["p_value"] if cmp else None})
+            rows.append(OneAtATimeRow(factor=factor.name, label=factor.label(i), n_pairs=len(seeds),
+                                      mean=statistics.fmean(vals.values()) if vals else None,
+                                      diff_mean=cmp["diff_mean"] if cmp else None,
+                                      ci95=cmp["ci95"] if cmp else None, p_value=cmp["p_value"] if cmp else None))
     labels = {f.name: f.label(b) for f, b in zip(factors, base)}
-    return {"baseline": labels, "baseline_mean": statistics.fmean(base_vals.values()) if base_vals else None,
-            "rows": rows}
+    return OneAtATime(baseline=labels, baseline_mean=statistics.fmean(base_vals.values()) if base_vals else None,
+                      rows=rows)
 
 
-def _interactions(grid: Grid, table: _Table) -> list[dict]:
+def _interactions(grid: Grid, table: _Table) -> list[Interaction]:
     factors = grid.recipe.factors
-    pick = max if grid.goal == "max" else min
+    pick = max if grid.goal is Goal.MAX else min
     out = []
     for a, b in itertools.permutations(range(len(factors)), 2):
         if a > b and len(factors) == 2:
@@ -141,8 +145,8 @@ def _interactions(grid: Grid, table: _Table) -> list[dict]:
             known = {k: v for k, v in row.items() if v is not None}
             best[bl] = pick(known, key=known.get) if known else None
         distinct = {v for v in best.values() if v is not None}
-        out.append({"a": factors[a].name, "b": factors[b].name, "means": means, "best_a_by_b": best,
-                    "depends": len(distinct) > 1})
+        out.append(Interaction(a=factors[a].name, b=factors[b].name, means=means, best_a_by_b=best,
+                               depends=len(distinct) > 1))
     return out
 
 
@@ -155,34 +159,35 @@ def _mean_of(values):
     return statistics.fmean(values) if values else None
 
 
-def _regularization(grid: Grid, table: _Table) -> list[dict]:
+def _regularization(grid: Grid, table: _Table) -> list[RegularizationRow]:
     out = []
     for f, factor in enumerate(grid.recipe.factors):
         if not set(factor.paths) & REGULARIZATION_PATHS:
             continue
         for i in range(len(factor.levels)):
             done = [c for c in _level_cells(table, f, i) if c in table.value]
-            out.append({"factor": factor.name, "label": factor.label(i), "n": len(done),
-                        "mean": _mean_of(table.value[c] for c in done),
-                        "gap": _mean_of(table.diag[c].get("gap") for c in done),
-                        "zero_fraction": _mean_of(table.diag[c].get("zero_fraction") for c in done),
-                        "near_zero_fraction": _mean_of(table.diag[c].get("near_zero_fraction") for c in done)})
+            out.append(RegularizationRow(
+                factor=factor.name, label=factor.label(i), n=len(done), mean=_mean_of(table.value[c] for c in done),
+                gap=_mean_of(table.diag[c].get("gap") for c in done),
+                zero_fraction=_mean_of(table.diag[c].get("zero_fraction") for c in done),
+                near_zero_fraction=_mean_of(table.diag[c].get("near_zero_fraction") for c in done)))
     return out
 
 
-def _epochs_to_reach(curve: list, goal: str) -> int | None:
+def _epochs_to_reach(curve: list, goal: Goal) -> int | None:
     values = [v for v in curve if v is not None]
     if not values:
         return None
-    best = max(values) if goal == "max" else min(values)
-    target = REACH * best if goal == "max" else best / REACH
+    up = goal is Goal.MAX
+    best = max(values) if up else min(values)
+    target = REACH * best if up else best / REACH
     for epoch, v in enumerate(curve, 1):
-        if v is not None and (v >= target if goal == "max" else v <= target):
+        if v is not None and (v >= target if up else v <= target):
             return epoch
     return None
 
 
-def _optimization(grid: Grid, table: _Table) -> list[dict]:
+def _optimization(grid: Grid, table: _Table) -> list[OptimizationRow]:
     out = []
     name = f"val_{table.metric}"
     for f, factor in enumerate(grid.recipe.factors):
@@ -197,20 +202,15 @@ def _optimization(grid: Grid, table: _Table) -> list[dict]:
                 reach.append(_epochs_to_reach(curves.get(name, []), table.goal))
                 losses = curves.get("train_loss", [])
                 final.append(losses[-1] if losses else None)
-            out.append({"factor": factor.name, "label": factor.label(i), "n": len(done),
-                        "mean": _mean_of(table.value[c] for c in done),
-                        "epochs_to_95pct": _mean_of(reach), "final_train_loss": _mean_of(final),
-                        "diverged": sum(1 for c in cells if table.status[c] == "diverged")})
+            out.append(OptimizationRow(
+                factor=factor.name, label=factor.label(i), n=len(done), mean=_mean_of(table.value[c] for c in done),
+                epochs_to_95pct=_mean_of(reach), final_train_loss=_mean_of(final),
+                diverged=sum(1 for c in cells if table.status[c] is Status.DIVERGED)))
     return out
 
 
-def ablation(grid: Grid, store: Store) -> dict:
+def ablation(grid: Grid, store: Store) -> Ablation:
     table = _Table(grid, store, with_curves=any(set(f.paths) & OPTIMIZATION_PATHS for f in grid.recipe.factors))
-    return {
-        "metric": grid.rank_by,
-        "main_effects": _main_effects(grid, table),
-        "one_at_a_time": _one_at_a_time(grid, table),
-        "interactions": _interactions(grid, table),
-        "regularization": _regularization(grid, table),
-        "optimization": _optimization(grid, table),
-    }
+    return Ablation(metric=grid.rank_by, main_effects=_main_effects(grid, table),
+                    one_at_a_time=_one_at_a_time(grid, table), interactions=_interactions(grid, table),
+                    regularization=_regularization(grid, table), optimization=_optimization(grid, table))

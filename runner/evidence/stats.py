@@ -10,7 +10,7 @@ from typing import Sequence
 import numpy as np
 from scipy import stats as _st
 
-__all__ = ["describe", "t_interval", "paired", "welch", "holm", "wilcoxon_p"]
+__all__ = ["summarize", "t_interval", "paired", "welch", "holm", "wilcoxon_p"]
 
 
 def t_interval(values: Sequence[float], level: float = 0.95):
@@ -28,7 +28,7 @@ def t_interval(values: Sequence[float], level: float = 0.95):
     return mean, sd, (mean - half, mean + half)
 
 
-def describe(values: Sequence[float]) -> dict:
+def summarize(values: Sequence[float]) -> dict:
     mean, sd, ci = t_interval(values)
     return {"n": len(values), "mean": mean, "std": sd, "ci95": list(ci) if ci else None}
 

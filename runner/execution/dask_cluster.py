@@ -10,16 +10,18 @@ whose worker dies is rescheduled by dask; after ``max_attempts`` deaths dask giv
 from __future__ import annotations
 
 from runner.errors import UserError
-from runner.training.job import JobResult
+from runner.training.job import JobResult, Status
 
 __all__ = ["DaskExecutor"]
 
 
 def _task(item, dataset, threads):
-    from runner.execution.executors import prepare_process, run_item
+    from runner.execution.executors import prepare_process, ready_for
+    from runner.training.loop import train_item
 
     prepare_process(threads)
-    return run_item(item, {item[0].data_id: dataset})
+    ready_for(item)
+    return train_item(item, {item[0].data_id: dataset})
 
 
 class DaskExecutor:
@@ -71,7 +73,7 @@ class DaskExecutor:
                 except FutureCancelledError:
                     continue
                 except Exception as exc:  # KilledWorker and friends: the cluster gave up on it
-                    results = [JobResult(key=s.key, status="failed",
+                    results = [JobResult(key=s.key, status=Status.FAILED,
                                          error=f"{type(exc).__name__} on the Dask cluster: {exc}") for s in item]
                 for spec, result in zip(item, results):
                     on_result(spec, result, 1)

@@ -8,6 +8,7 @@ import time
 
 from runner.recipe.grid import Grid, canonical
 from runner.store.database import Store
+from runner.training.job import Status
 
 __all__ = ["describe_plan", "estimate_seconds", "PROBE_EPOCHS", "MAX_PROBES"]
 
@@ -18,13 +19,12 @@ MAX_PROBES = 6  # distinct kinds of work item timed; others are costed from thes
 def _probe_item(item, epochs: int = PROBE_EPOCHS) -> tuple:
     """The item with every member cut to ``epochs`` epochs and nothing that outlives it
     (no early stopping, checkpoints or time limit), of the same type (stacked or single)."""
-    from runner.training.stacked import Stacked
+    from runner.training.grouping import Stacked
 
     specs = []
     for spec in item:
-        settings = {s: dict(v) for s, v in spec.settings.items()}
-        settings["train"].update(epochs=min(epochs, settings["train"]["epochs"]), patience=0,
-                                 checkpoint_every=0, time_limit=0.0)
+        settings = spec.settings.with_train(epochs=min(epochs, spec.settings.train.epochs), patience=0,
+                                            checkpoint_every=0, time_limit=0.0)
         specs.append(dataclasses.replace(spec, settings=settings, checkpoint=None, time_limit=None))
     return Stacked(specs) if isinstance(item, Stacked) else tuple(specs)
 
@@ -32,22 +32,24 @@ def _probe_item(item, epochs: int = PROBE_EPOCHS) -> tuple:
 def _kind(item) -> str:
     """Work items of one kind cost the same per member and epoch: a stacked group's shapes
     (its stack key), or a single job's model, batch size and data."""
-    from runner.training.stacked import Stacked, stack_key
+    from runner.training.grouping import Stacked, stack_key
 
     spec = item[0]
     if isinstance(item, Stacked):
         return "stacked " + stack_key(spec)
-    return canonical({"model": spec.settings["model"], "bs": spec.settings["train"]["batch_size"],
+    return canonical({"model": spec.settings.model, "bs": spec.settings.train.batch_size,
                       "data": spec.data_id})
 
 
 def _seconds_per_member_epoch(item, grid: Grid) -> float:
-    from runner.execution.executors import run_item
+    from runner.execution.executors import ready_for
+    from runner.training.loop import train_item
 
-    run_item(_probe_item(item, epochs=1), grid.datasets)  # untimed: this kind's one-off costs
+    ready_for(item)
+    train_item(_probe_item(item, epochs=1), grid.datasets)  # untimed: this kind's one-off costs
     probe = _probe_item(item)  # (imports, first calls of its kernels, pages of code read from disk)
     start = time.perf_counter()
-    results = run_item(probe, grid.datasets)
+    results = train_item(probe, grid.datasets)
     elapsed = time.perf_counter() - start
     epochs = max(1, max((r.epochs_run or 0) for r in results))
     return elapsed / epochs / len(probe)
@@ -63,7 +65,7 @@ def estimate_seconds(grid: Grid, todo: list, workers: int, stack: bool = True) -
     kinds not probed get the mean of the probed kinds), and the items are dealt to the
     workers longest first, each to the least loaded."""
     from runner.execution.executors import prepare_process
-    from runner.training.stacked import group_specs
+    from runner.training.grouping import group_specs
 
     keys = {j.key for j in todo}
     specs = [j.spec() for j in grid] if stack else [j.spec() for j in todo]
@@ -77,7 +79,7 @@ def estimate_seconds(grid: Grid, todo: list, workers: int, stack: bool = True) -
         if kind not in rates and len(rates) < MAX_PROBES:
             rates[kind] = _seconds_per_member_epoch(item, grid)
     fallback = sum(rates.values()) / len(rates)
-    costs = sorted((rates.get(_kind(it), fallback) * len(it) * max(s.settings["train"]["epochs"] for s in it)
+    costs = sorted((rates.get(_kind(it), fallback) * len(it) * max(s.settings.train.epochs for s in it)
                     for it in items), reverse=True)
     loads = [0.0] * max(1, min(workers, len(items)))
     for cost in costs:
@@ -91,13 +93,13 @@ def describe_plan(grid: Grid, store: Store | None, workers: int, probe: bool = T
     jobs = list(grid)
     statuses = {}
     if store is not None:
-        statuses = {r["key"]: r["status"] for r in store.jobs({j.key for j in jobs})}
-    counts = {s: 0 for s in ("done", "diverged", "failed", "timeout")}
+        statuses = {r.key: r.status for r in store.jobs({j.key for j in jobs})}
+    counts = dict.fromkeys(Status, 0)
     for status in statuses.values():
         counts[status] += 1
     todo = [j for j in jobs if j.key not in statuses]
     lines = [f"{recipe.name}: {recipe.description}" if recipe.description else recipe.name,
-             f"ranked by {grid.rank_by} ({'higher' if grid.goal == 'max' else 'lower'} is better); "
+             f"ranked by {grid.rank_by} ({grid.goal.words}); "
              f"task {grid.task}; seeds {', '.join(map(str, recipe.seeds))}"]
     if recipe.factors:
         lines.append("factors:")
@@ -109,9 +111,10 @@ def describe_plan(grid: Grid, store: Store | None, workers: int, probe: bool = T
     if recipe.exclude:
         lines.append(f"exclusions: {len(recipe.exclude)} rule(s)")
     lines.append(f"{len(grid.configs)} configurations x {len(recipe.seeds)} seeds = {len(jobs)} jobs: "
-                 f"{counts['done']} done, {counts['diverged']} diverged, {counts['failed']} failed, "
-                 f"{counts['timeout']} timed out, {len(todo)} to run")
-    info = {"configurations": len(grid.configs), "jobs": len(jobs), **counts, "to_run": len(todo),
+                 f"{counts[Status.DONE]} done, {counts[Status.DIVERGED]} diverged, {counts[Status.FAILED]} failed, "
+                 f"{counts[Status.TIMEOUT]} timed out, {len(todo)} to run")
+    info = {"configurations": len(grid.configs), "jobs": len(jobs), **{s.value: n for s, n in counts.items()},
+            "to_run": len(todo),
             "estimate_seconds": None}
     if probe and todo:
         estimate = estimate_seconds(grid, todo, workers, stack)

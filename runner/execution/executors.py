@@ -21,7 +21,7 @@ import torch
 
 from runner.datasets.sources import Dataset
 from runner.execution.forkserver import default_workers, start_early, worker_context
-from runner.training.single import JobResult, JobSpec, run_job
+from runner.training.job import JobResult, JobSpec, Status
 
 __all__ = ["SerialExecutor", "PoolExecutor", "prepare_process", "deterministic_kernels", "default_workers"]
 
@@ -71,26 +71,18 @@ def ready_for(item: tuple[JobSpec, ...]) -> None:
     a second, enough to trip a short time limit); stacked groups never need it, so workers
     and the fork server do not import it unless a single job comes."""
     global _SINGLE_PATH_READY
-    from runner.training.stacked import Stacked
+    from runner.training.grouping import Stacked
 
     if not _SINGLE_PATH_READY and not isinstance(item, Stacked):
         torch.optim.SGD([torch.zeros(1, requires_grad=True)], lr=0.1)
         _SINGLE_PATH_READY = True
 
 
-def run_item(item: tuple[JobSpec, ...], datasets: dict[str, Dataset]) -> list[JobResult]:
-    """Train one work item: a single job, or a stacked group of same-shaped jobs."""
-    from runner.training.stacked import Stacked, run_group
+def _work(item: tuple[JobSpec, ...]) -> list[JobResult]:
+    from runner.training.loop import train_item
 
     ready_for(item)
-    ds = datasets[item[0].data_id]
-    if isinstance(item, Stacked):
-        return run_group(item, ds)
-    return [run_job(spec, ds) for spec in item]
-
-
-def _work(item: tuple[JobSpec, ...]) -> list[JobResult]:
-    return run_item(item, _DATASETS)
+    return train_item(item, _DATASETS)
 
 
 class SerialExecutor:
@@ -221,12 +213,12 @@ class PoolExecutor:
                             error = (f"worker killed {grace(self.hard_limit):g} s past the "
                                      f"{self.hard_limit:g} s time limit")
                             for spec in item:
-                                on_result(spec, JobResult(key=spec.key, status="timeout", error=error), tries)
+                                on_result(spec, JobResult(key=spec.key, status=Status.TIMEOUT, error=error), tries)
                         elif tries < self.max_attempts:
                             queue.appendleft(item)
                         else:
                             for spec in item:
-                                on_result(spec, JobResult(key=spec.key, status="failed",
+                                on_result(spec, JobResult(key=spec.key, status=Status.FAILED,
                                                           error=f"{_death(code)} on each of {tries} attempts"), tries)
         finally:
             for w in pool:

@@ -17,6 +17,10 @@ import multiprocessing
 import os
 import signal
 import threading
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from runner.recipe.loader import RunSettings
 
 __all__ = ["worker_context", "start_early", "wants_workers", "default_workers"]
 
@@ -65,8 +69,8 @@ def default_workers() -> int:
     return max(1, os.cpu_count() or 1)
 
 
-def wants_workers(workers: int | None, on: str | None, run: dict) -> bool:
+def wants_workers(workers: int | None, on: str | None, run: RunSettings) -> bool:
     """Whether ``recipe run`` will use local worker processes: from its options and the
     recipe's validated [run] table (the option wins)."""
-    where = on or run.get("on", "local")
-    return where == "local" and (workers or run.get("workers") or default_workers()) > 1
+    where = on or run.on
+    return where == "local" and (workers or run.workers or default_workers()) > 1

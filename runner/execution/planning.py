@@ -11,7 +11,8 @@ from pathlib import Path
 
 from runner.recipe.grid import Grid, Job
 from runner.execution.progress import Progress
-from runner.store.database import FINISHED, RunnerLock, Store
+from runner.store import RunnerLock, Store
+from runner.training.job import FINISHED, Status
 
 __all__ = ["Plan", "plan", "execute", "make_executor", "checkpoint_dir", "forget"]
 
@@ -27,7 +28,7 @@ class Plan:
 
 
 def plan(grid: Grid, store: Store, retry_failed: bool = False) -> Plan:
-    finished = store.finished_keys(("done", "diverged") if retry_failed else FINISHED)
+    finished = store.finished_keys((Status.DONE, Status.DIVERGED) if retry_failed else FINISHED)
     jobs = list(grid)
     todo = [j for j in jobs if j.key not in finished]
     return Plan(total=len(jobs), done=len(jobs) - len(todo), to_run=todo)
@@ -68,7 +69,7 @@ def execute(grid: Grid, store: Store, todo: list[Job], executor, progress: Progr
     """Run ``todo``; each result is committed to the store as soon as it arrives. With
     ``stack``, same-shaped jobs train together as one stacked computation (stack.py)."""
     from runner.training import checkpoints as checkpoint
-    from runner.training.stacked import describe, group_specs
+    from runner.training.grouping import group_specs, training_note
 
     if not todo:
         return
@@ -95,7 +96,7 @@ def execute(grid: Grid, store: Store, todo: list[Job], executor, progress: Progr
             on_stored(job, result)
 
     def spec_of(j):
-        ckpt = ckpt_dir / f"{j.key}.pt" if j.config.settings["train"]["checkpoint_every"] else None
+        ckpt = ckpt_dir / f"{j.key}.pt" if j.config.settings.train.checkpoint_every else None
         return j.spec(checkpoint=str(ckpt) if ckpt else None, time_limit=time_limit)
 
     # Groups are formed over the whole grid (see stack.group_specs); a group with any job to run
@@ -104,7 +105,7 @@ def execute(grid: Grid, store: Store, todo: list[Job], executor, progress: Progr
     items = [item for item in group_specs(everything, grid.datasets, enabled=stack)
              if any(s.key in by_key for s in item)]
     if progress is not None:
-        progress.note(describe(items))
+        progress.note(training_note(items))
     with RunnerLock(store):
         store.remember_recipe(grid.recipe)
         try:

@@ -14,6 +14,7 @@ import signal
 signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 import runner.execution.executors  # noqa: E402
+import runner.training.loop  # noqa: E402,F401
 import runner.training.stacked  # noqa: E402,F401
 import sklearn.model_selection  # noqa: E402,F401  (runner.datasets.sources imports it lazily, for the CLI's start-up)
 

@@ -5,6 +5,9 @@ import statistics
 import sys
 import time
 
+from runner.components.metrics import Goal
+from runner.training.job import Status
+
 __all__ = ["Progress"]
 
 
@@ -31,7 +34,7 @@ class Progress:
         self.live = self.stream.isatty() if live is None else live
         self.quiet = quiet
         self.start = time.monotonic()
-        self.counts = {"done": 0, "diverged": 0, "failed": 0, "timeout": 0}
+        self.counts = dict.fromkeys(Status, 0)
         self.values: dict[str, list[float]] = {}
         self.finished = 0
 
@@ -41,11 +44,12 @@ class Progress:
             self.stream.write(text + "\n")
             self.stream.flush()
 
-    def update(self, label: str, seed: int, status: str, value: float | None, seconds: float,
+    def update(self, label: str, seed: int, status: Status, value: float | None, seconds: float,
                error: str | None = None) -> None:
+        status = Status(status)
         self.finished += 1
-        self.counts[status] = self.counts.get(status, 0) + 1
-        if value is not None and status == "done":
+        self.counts[status] += 1
+        if value is not None and status is Status.DONE:
             self.values.setdefault(label, []).append(value)
         if self.quiet:
             return
@@ -53,13 +57,13 @@ class Progress:
         left = elapsed / self.finished * (self.total - self.finished)
         if self.live:
             best = self._best()
-            line = (f"[{self.finished}/{self.total}] failed {self.counts['failed']}, diverged "
-                    f"{self.counts['diverged']} | {_clock(elapsed)} elapsed, ~{_clock(left)} left"
+            line = (f"[{self.finished}/{self.total}] failed {self.counts[Status.FAILED]}, diverged "
+                    f"{self.counts[Status.DIVERGED]} | {_clock(elapsed)} elapsed, ~{_clock(left)} left"
                     + (f" | best {best[0]}: {best[1]:.4f}" if best else ""))
             self.stream.write("\r\033[K" + line)
         else:
             shown = f"{self.metric}={value:.4f}" if value is not None else ""
-            self.stream.write(f"[{self.finished}/{self.total}] {status:<8} {label} seed {seed} "
+            self.stream.write(f"[{self.finished}/{self.total}] {status.value:<8} {label} seed {seed} "
                               f"{shown} ({_seconds(seconds)}; ~{_clock(left)} left)\n")
             if self.verbose and error:
                 self.stream.write(f"    {error}\n")
@@ -74,6 +78,6 @@ class Progress:
         if not self.values:
             return None
         means = {k: statistics.fmean(v) for k, v in self.values.items()}
-        pick = max if self.goal == "max" else min
+        pick = max if Goal(self.goal) is Goal.MAX else min
         label = pick(means, key=means.get)
         return label, means[label]

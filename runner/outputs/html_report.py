@@ -14,7 +14,8 @@ import io
 import numpy as np
 
 from runner.recipe.grid import Grid
-from runner.outputs.text import _ci, _num, _versus
+from runner.evidence.document import Leaderboard, Row
+from runner.outputs.text import interval, number, versus
 from runner.store.database import Store
 from runner.evidence.leaderboard import leaderboard
 
@@ -57,44 +58,40 @@ def _figure(fig, caption: str, name: str) -> str:
             f"<figcaption>{html.escape(caption)}</figcaption></figure>")
 
 
-def _label(row) -> str:
-    return ", ".join(f"{v}" for v in row["labels"].values()) or "base"
-
-
-def _table(doc: dict) -> str:
-    names = [f["name"] for f in doc["factors"]]
+def _table(doc: Leaderboard) -> str:
+    names = doc.factor_names
     head = "".join(f"<th>{html.escape(h)}</th>" for h in
                    ["rank", *names, "n", "mean", "sd", "95% CI", "test", "vs best (Holm)", "flags"])
     body = []
-    for row in doc["rows"]:
-        cells = [str(row["rank"] or "-"), *[html.escape(row["labels"][n]) for n in names], str(row["n"])]
-        nums = [_num(row["mean"]), _num(row["std"]), _ci(row["ci95"]), _num(row["test_mean"])]
-        flags = ", ".join(row["flags"])
-        body.append(f'<tr class="{"top" if row.get("top_group") else ""}">'
+    for row in doc.rows:
+        cells = [str(row.rank or "-"), *[html.escape(row.labels[n]) for n in names], str(row.n)]
+        nums = [number(row.mean), number(row.std), interval(row.ci95), number(row.test_mean)]
+        flags = ", ".join(row.flags)
+        body.append(f'<tr class="{"top" if row.top_group else ""}">'
                     + "".join(f"<td>{c}</td>" for c in cells)
                     + "".join(f'<td class="num">{c}</td>' for c in nums)
-                    + f'<td class="vs">{html.escape(_versus(row))}</td><td class="flag">{html.escape(flags)}</td></tr>')
+                    + f'<td class="vs">{html.escape(versus(row))}</td><td class="flag">{html.escape(flags)}</td></tr>')
     return f'<table id="leaderboard"><thead><tr>{head}</tr></thead><tbody>{"".join(body)}</tbody></table>'
 
 
 def _curves_figure(grid: Grid, store: Store, doc: dict, plt):
-    ranked = [r for r in doc["rows"] if r["mean"] is not None]
+    ranked = [r for r in doc.rows if r.mean is not None]
     chosen = ranked[:TOP]
     base_levels = tuple(grid.recipe.baseline[f.name] for f in grid.recipe.factors)
     base_cfg = next((c for c in grid.configs if c.levels == base_levels), None)
-    if base_cfg is not None and all(r["config_id"] != base_cfg.id for r in chosen):
-        chosen += [r for r in doc["rows"] if r["config_id"] == base_cfg.id and r["mean"] is not None]
+    if base_cfg is not None and all(r.config_id != base_cfg.id for r in chosen):
+        chosen += [r for r in doc.rows if r.config_id == base_cfg.id and r.mean is not None]
     if not chosen:
         return None
     jobs = {}
     for job in grid:
         jobs.setdefault(job.config.id, []).append(job.key)
-    curves = store.curves([k for r in chosen for k in jobs[r["config_id"]]])
+    curves = store.curves([k for r in chosen for k in jobs[r.config_id]])
     fig, axes = plt.subplots(1, 2, figsize=(11, 3.8), sharey=False)
     for row in chosen:
-        tag = _label(row) + (" (baseline)" if base_cfg is not None and row["config_id"] == base_cfg.id else "")
+        tag = row.label + (" (baseline)" if base_cfg is not None and row.config_id == base_cfg.id else "")
         for ax, name in zip(axes, ("train_loss", "val_loss")):
-            series = [curves[k][name] for k in jobs[row["config_id"]] if k in curves and name in curves[k]]
+            series = [curves[k][name] for k in jobs[row.config_id] if k in curves and name in curves[k]]
             if not series:
                 continue
             length = min(len(s) for s in series)
@@ -112,43 +109,43 @@ def _curves_figure(grid: Grid, store: Store, doc: dict, plt):
 
 
 def _effects_figure(doc: dict, plt):
-    effects = doc["ablation"]["main_effects"]
-    if not any(l["mean"] is not None for e in effects for l in e["levels"]):
+    effects = doc.ablation.main_effects
+    if not any(lvl.mean is not None for e in effects for lvl in e.levels):
         return None
     fig, axes = plt.subplots(1, len(effects), figsize=(max(5, 3.6 * len(effects)), 3.6), squeeze=False)
     for ax, eff in zip(axes[0], effects):
-        labels = [l["label"] for l in eff["levels"]]
-        means = [l["mean"] if l["mean"] is not None else np.nan for l in eff["levels"]]
-        err = [[(m - l["ci95"][0]) if l["ci95"] else 0 for m, l in zip(means, eff["levels"])],
-               [(l["ci95"][1] - m) if l["ci95"] else 0 for m, l in zip(means, eff["levels"])]]
-        colors = ["#8c6d46" if l == eff["baseline"] else "#3f7f6b" for l in labels]
+        labels = [lvl.label for lvl in eff.levels]
+        means = [lvl.mean if lvl.mean is not None else np.nan for lvl in eff.levels]
+        err = [[(m - lvl.ci95[0]) if lvl.ci95 else 0 for m, lvl in zip(means, eff.levels)],
+               [(lvl.ci95[1] - m) if lvl.ci95 else 0 for m, lvl in zip(means, eff.levels)]]
+        colors = ["#8c6d46" if label == eff.baseline else "#3f7f6b" for label in labels]
         ax.bar(range(len(labels)), means, yerr=err, capsize=4, color=colors)
         ax.set_xticks(range(len(labels)), labels, rotation=30, ha="right", fontsize=8)
-        ax.set_title(eff["factor"], fontsize=10)
+        ax.set_title(eff.factor, fontsize=10)
         finite = [m for m in means if m == m]
         if finite:
-            lo = min(l["ci95"][0] if l["ci95"] else m for m, l in zip(means, eff["levels"]) if m == m)
-            hi = max(l["ci95"][1] if l["ci95"] else m for m, l in zip(means, eff["levels"]) if m == m)
+            lo = min(lvl.ci95[0] if lvl.ci95 else m for m, lvl in zip(means, eff.levels) if m == m)
+            hi = max(lvl.ci95[1] if lvl.ci95 else m for m, lvl in zip(means, eff.levels) if m == m)
             pad = (hi - lo) * 0.15 or 0.01
             ax.set_ylim(lo - pad, hi + pad)
-    axes[0][0].set_ylabel(doc["metric"])
+    axes[0][0].set_ylabel(doc.metric)
     return fig
 
 
 def _gradients_figure(grid: Grid, store: Store, doc: dict, plt):
-    stored = {r["key"]: r for r in store.jobs({j.key for j in grid})}
+    stored = {r.key: r for r in store.jobs({j.key for j in grid})}
     fig, ax = plt.subplots(figsize=(8, 3.8))
     drawn = 0
-    for row in doc["rows"]:
-        norms = [stored[j.key]["diagnostics"].get("init_grad_norms") for j in grid
-                 if j.config.id == row["config_id"] and j.key in stored]
+    for row in doc.rows:
+        norms = [stored[j.key].diagnostics.get("init_grad_norms") for j in grid
+                 if j.config.id == row.config_id and j.key in stored]
         norms = [n for n in norms if n]
         if not norms:
             continue
         depth = min(len(n) for n in norms)
         mean = np.mean([n[:depth] for n in norms], axis=0)
         mean = np.where(mean > 0, mean, np.nan)
-        ax.plot(range(1, depth + 1), mean, marker="o", label=_label(row))
+        ax.plot(range(1, depth + 1), mean, marker="o", label=row.label)
         drawn += 1
     if not drawn:
         plt.close(fig)
@@ -162,11 +159,11 @@ def _gradients_figure(grid: Grid, store: Store, doc: dict, plt):
 
 
 def _bars_figure(doc: dict, key: str, title: str, plt):
-    rows = [r for r in doc["rows"] if r["diagnostics"].get(key) is not None]
-    if not rows or not any(r["diagnostics"][key] for r in rows):
+    rows = [r for r in doc.rows if r.diagnostics.get(key) is not None]
+    if not rows or not any(r.diagnostics[key] for r in rows):
         return None
     fig, ax = plt.subplots(figsize=(8, 0.35 * len(rows) + 1.2))
-    ax.barh([_label(r) for r in rows], [r["diagnostics"][key] for r in rows], color="#3f6f8f")
+    ax.barh([r.label for r in rows], [r.diagnostics[key] for r in rows], color="#3f6f8f")
     ax.invert_yaxis()
     ax.set_xlim(0, 1)
     ax.set_xlabel(title)
@@ -192,7 +189,7 @@ def build_report(grid: Grid, store: Store) -> str:
         ("curves", _curves_figure(grid, store, doc, plt),
          f"Loss per epoch, mean over seeds with the min-max band, for the top {TOP} configurations and the baseline."),
         ("effects", _effects_figure(doc, plt),
-         f"Main effect of each factor on {doc['metric']}: mean over the other factors, 95% interval over seeds "
+         f"Main effect of each factor on {doc.metric}: mean over the other factors, 95% interval over seeds "
          "(brown: baseline level)."),
         ("gradients", _gradients_figure(grid, store, doc, plt),
          "Per-layer weight-gradient norm at initialization (log scale): a steep fall towards layer 1 is a "
@@ -205,17 +202,17 @@ def build_report(grid: Grid, store: Store) -> str:
     for name, fig, caption in made:
         if fig is not None:
             figures.append(_figure(fig, caption, name))
-    j = doc["jobs"]
-    cautions = "".join(f"<li>{html.escape(c)}</li>" for c in doc["cautions"])
+    j = doc.jobs
+    cautions = "".join(f"<li>{html.escape(c)}</li>" for c in doc.cautions)
     title = html.escape(grid.recipe.name)
     return f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8"><title>{title}: recipe report</title>
 <style>{_CSS}</style></head><body>
 <h1>{title}</h1>
 <p class="sub">{html.escape(grid.recipe.description)}</p>
-<p class="sub">Ranked by {html.escape(doc['metric'])} ({'higher' if doc['goal'] == 'max' else 'lower'} is better).
-{len(doc['rows'])} configurations, {j['total']} jobs: {j['done']} done, {j['diverged']} diverged, {j['failed']} failed,
-{j['timeout']} timed out, {j['pending']} pending. Seeds: {', '.join(map(str, doc['seeds']))}.</p>
+<p class="sub">Ranked by {html.escape(doc.metric)} ({doc.goal.words}).
+{len(doc.rows)} configurations, {j.total} jobs: {j.done} done, {j.diverged} diverged, {j.failed} failed,
+{j.timeout} timed out, {j.pending} pending. Seeds: {', '.join(map(str, doc.seeds))}.</p>
 <h2>Leaderboard</h2>
 {_table(doc)}
 <div class="caution"><ul>{cautions}</ul></div>

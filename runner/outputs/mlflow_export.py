@@ -13,28 +13,15 @@ import time
 
 from runner.errors import UserError
 from runner.recipe.grid import Grid
-from runner.store.database import Store
+from runner.recipe.settings import Settings
+from runner.store.database import Store, StoredJob
+from runner.training.job import Status
 
 __all__ = ["Exporter", "RunLogger", "export_all"]
 
-_TABLE = """CREATE TABLE IF NOT EXISTS exports (
-    uri TEXT NOT NULL, job_key TEXT NOT NULL, run_id TEXT NOT NULL, exported REAL NOT NULL,
-    PRIMARY KEY (uri, job_key))"""
-
-
-def _flat(settings: dict) -> dict[str, str]:
-    out = {}
-
-    def walk(node, prefix):
-        for key, value in node.items():
-            path = f"{prefix}.{key}" if prefix else key
-            if isinstance(value, dict):
-                walk(value, path)
-            else:
-                out[path] = json.dumps(list(value)) if isinstance(value, (list, tuple)) else str(value)
-
-    walk(settings, "")
-    return out
+def _flat(settings: Settings) -> dict[str, str]:
+    return {path: json.dumps(list(value)) if isinstance(value, (list, tuple)) else str(value)
+            for path, value in settings.flat().items()}
 
 
 class Exporter:
@@ -50,7 +37,6 @@ class Exporter:
         for name in ("mlflow", "alembic"):
             logging.getLogger(name).setLevel(logging.WARNING)
         self.uri, self.grid, self.store = uri, grid, store
-        self.store.conn.execute(_TABLE)
         try:
             self.client = MlflowClient(tracking_uri=uri)
             self.client.search_experiments(max_results=1)  # fail here, before any job runs
@@ -68,48 +54,46 @@ class Exporter:
         exp = self.client.get_experiment_by_name(name)
         self._experiment = exp.experiment_id if exp else self.client.create_experiment(name)
         key = f"mlflow_parent:{self.uri}:{self.grid.recipe.name}"
-        row = self.store.conn.execute("SELECT value FROM meta WHERE key = ?", (key,)).fetchone()
-        if row is None:
+        known = self.store.meta(key)
+        if known is None:
             parent = self.client.create_run(self._experiment, run_name=f"grid {self.grid.recipe.name}",
                                             tags={"recipe.name": self.grid.recipe.name, "recipe.kind": "grid",
                                                   "recipe.hash": self.grid.recipe.hash})
-            self.store.conn.execute("INSERT OR REPLACE INTO meta VALUES (?, ?)", (key, parent.info.run_id))
+            self.store.set_meta(key, parent.info.run_id)
             self._parent = parent.info.run_id
         else:
-            self._parent = row[0]
+            self._parent = known
         return self._parent
 
     def exported(self) -> set[str]:
-        rows = self.store.conn.execute("SELECT job_key FROM exports WHERE uri = ?", (self.uri,))
-        return {r[0] for r in rows}
+        return self.store.exported_keys(self.uri)
 
-    def export(self, job, stored: dict, metrics: dict, curves: dict) -> str:
+    def export(self, job, stored: StoredJob, metrics: dict, curves: dict) -> str:
         from mlflow.entities import Metric, Param, RunTag
 
         parent = self._parent_run()
         labels = ", ".join(f"{v}" for v in self.grid.labels(job.config).values()) or "base"
         run = self.client.create_run(self._experiment, run_name=f"{labels} / seed {job.seed}", tags={
             "mlflow.parentRunId": parent, "recipe.job_key": job.key, "recipe.config_id": job.config.id,
-            "recipe.seed": str(job.seed), "recipe.status": stored["status"], "recipe.name": self.grid.recipe.name})
+            "recipe.seed": str(job.seed), "recipe.status": stored.status.value, "recipe.name": self.grid.recipe.name})
         run_id = run.info.run_id
         now = int(time.time() * 1000)
-        params = [Param(k, v) for k, v in sorted(_flat(dict(job.config.settings)).items())]
+        params = [Param(k, v) for k, v in sorted(_flat(job.config.settings).items())]
         params.append(Param("seed", str(job.seed)))
         points = []
         for name, values in curves.items():
             points += [Metric(name, float(v), now, epoch) for epoch, v in enumerate(values, 1) if v is not None]
         for split, vals in metrics.items():
             points += [Metric(f"{split}.{n}", float(v), now, 0) for n, v in vals.items() if v is not None]
-        tags = [RunTag("recipe.error", stored["error"])] if stored.get("error") else []
+        tags = [RunTag("recipe.error", stored.error)] if stored.error else []
         for i in range(0, max(len(params), 1), 100):
             self.client.log_batch(run_id, params=params[i:i + 100])
         for i in range(0, len(points), 1000):
             self.client.log_batch(run_id, metrics=points[i:i + 1000])
         if tags:
             self.client.log_batch(run_id, tags=tags)
-        self.client.set_terminated(run_id, status="FINISHED" if stored["status"] == "done" else "FAILED")
-        self.store.conn.execute("INSERT OR REPLACE INTO exports VALUES (?, ?, ?, ?)",
-                                (self.uri, job.key, run_id, time.time()))
+        self.client.set_terminated(run_id, status="FINISHED" if stored.status is Status.DONE else "FAILED")
+        self.store.record_export(self.uri, job.key, run_id)
         return run_id
 
 
@@ -117,7 +101,7 @@ def export_all(uri: str, grid: Grid, store: Store) -> tuple[int, int, list[str]]
     """Export every stored job of the grid not yet at ``uri``: (sent, already there, errors)."""
     exporter = Exporter(uri, grid, store)
     done = exporter.exported()
-    stored = {r["key"]: r for r in store.jobs({j.key for j in grid})}
+    stored = {r.key: r for r in store.jobs({j.key for j in grid})}
     todo = [j for j in grid if j.key in stored and j.key not in done]
     all_metrics = store.metrics()
     curves = store.curves([j.key for j in todo])

@@ -5,6 +5,7 @@ runs: an impossible combination is a RecipeError, not a failed job.
 """
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import itertools
 import json
@@ -17,7 +18,7 @@ from runner.components.metrics import METRICS, for_task
 from runner.components.optimizers import check_optimizer
 from runner.recipe.loader import Recipe, resolve
 from runner.components.lr_schedules import check_schedule
-from runner.recipe.settings import identity
+from runner.recipe.settings import Settings
 from runner.training.job import JobSpec
 
 __all__ = ["Config", "Job", "Grid", "expand", "canonical"]
@@ -26,8 +27,15 @@ KEY_VERSION = 1  # bump when a change to training makes old results incomparable
 
 
 def canonical(obj: Any) -> str:
-    """Sorted, compact JSON: the text that identities are hashed from."""
-    return json.dumps(obj, sort_keys=True, separators=(",", ":"), default=list)
+    """Sorted, compact JSON: the text that identities are hashed from. Typed settings
+    appear as their plain dict form, tuples as lists."""
+    return json.dumps(obj, sort_keys=True, separators=(",", ":"), default=_plain)
+
+
+def _plain(obj: Any) -> Any:
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        return dataclasses.asdict(obj)
+    return list(obj)
 
 
 @dataclass(frozen=True)
@@ -36,7 +44,7 @@ class Config:
     id: str                          # hash of the resolved settings and data, without the seed
     levels: tuple[int, ...]          # level index of each factor
     assignments: Mapping[str, Any]   # path -> value set by the factors
-    settings: Mapping[str, Any]
+    settings: Settings
     data_id: str
 
 
@@ -48,7 +56,7 @@ class Job:
     monitor: str
 
     def spec(self, checkpoint: str | None = None, time_limit: float | None = None) -> JobSpec:
-        return JobSpec(key=self.key, seed=self.seed, settings=dict(self.config.settings),
+        return JobSpec(key=self.key, seed=self.seed, settings=self.config.settings,
                        monitor=self.monitor, data_id=self.config.data_id, checkpoint=checkpoint,
                        time_limit=time_limit)
 
@@ -85,7 +93,7 @@ class Grid:
 
 
 def job_key(config: Config, seed: int, monitor: str) -> str:
-    text = canonical({"v": KEY_VERSION, "settings": identity(config.settings), "data": config.data_id,
+    text = canonical({"v": KEY_VERSION, "settings": config.settings.identity(), "data": config.data_id,
                       "seed": seed, "monitor": monitor})
     return hashlib.sha256(text.encode()).hexdigest()[:24]
 
@@ -122,10 +130,10 @@ def _expand(recipe: Recipe) -> Grid:
             if where:
                 err.hint = (err.hint + "; " if err.hint else "") + f"in the configuration {where}"
             raise
-        skey = source_key(settings["data"])
+        skey = source_key(settings.data)
         if skey not in by_source:
             try:
-                by_source[skey] = load_dataset(settings["data"], recipe.base_dir)
+                by_source[skey] = load_dataset(settings.data, recipe.base_dir)
             except DataError as err:
                 raise err.located(where=err.where or recipe.path.name) from None
         ds = by_source[skey]
@@ -135,10 +143,10 @@ def _expand(recipe: Recipe) -> Grid:
         elif ds.task != task:
             raise RecipeError("all configurations must share one task (classification or regression)",
                               key="data.source", value=ds.label)
-        if settings["model"]["kind"] == "cnn" and ds.image_shape is None:
+        if settings.model.kind == "cnn" and ds.image_shape is None:
             raise RecipeError('model.kind = "cnn" needs image data', key="model.kind", value="cnn",
                               allowed='"digits" or an NPZ file with X of shape (N, H, W) or (N, C, H, W)')
-        ident = hashlib.sha256(canonical({"settings": identity(settings), "data": ds.fingerprint}).encode())
+        ident = hashlib.sha256(canonical({"settings": settings.identity(), "data": ds.fingerprint}).encode())
         configs.append(Config(index=len(configs), id=ident.hexdigest()[:12], levels=combo,
                               assignments=assign, settings=settings, data_id=ds.fingerprint))
     if not configs:
@@ -152,11 +160,11 @@ def _expand(recipe: Recipe) -> Grid:
     return Grid(recipe, configs, datasets, rank_by, task)
 
 
-def _check_rules(settings: dict) -> None:
+def _check_rules(settings: Settings) -> None:
     """Rules that span two settings, checked for every configuration."""
-    check_optimizer(settings["train"])
-    check_schedule(settings["train"])
-    split = settings["data"]["split"]
-    if split["val"] + split["test"] >= 0.9:
+    check_optimizer(settings.train)
+    check_schedule(settings.train)
+    split = settings.data.split
+    if split.val + split.test >= 0.9:
         raise RecipeError("val and test together must leave at least 10% for training",
-                          key="data.split", value={"val": split["val"], "test": split["test"]})
+                          key="data.split", value={"val": split.val, "test": split.test})

@@ -18,9 +18,10 @@ import tomli
 from runner.errors import RecipeError, UserError
 from runner.components.metrics import METRICS
 from runner.recipe.constraints import Choice, Either, Integer, Invalid, Param, Pattern, Real, Text, suggest, validate_table
-from runner.recipe.settings import SECTIONS, all_paths, param_at
+from runner.recipe.settings import SECTIONS, Settings, all_paths, param_at
 
-__all__ = ["Factor", "Recipe", "load_recipe", "parse_recipe", "resolve"]
+__all__ = ["Factor", "Recipe", "RunSettings", "TrackingSettings", "DiagnosticThresholds", "load_recipe",
+           "parse_recipe", "resolve"]
 
 TOP_LEVEL = ("baseline", "data", "description", "diagnostics", "exclude", "factors", "model",
              "name", "rank_by", "run", "seeds", "tracking", "train")
@@ -50,6 +51,29 @@ DIAGNOSTICS = {
 
 
 @dataclass(frozen=True, slots=True)
+class RunSettings:
+    """The [run] table: where and how wide the grid runs (command-line options win)."""
+    on: str = "local"
+    workers: int = 0            # 0: chosen by the tool
+
+
+@dataclass(frozen=True, slots=True)
+class TrackingSettings:
+    """The [tracking] table."""
+    mlflow: str | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class DiagnosticThresholds:
+    """The [diagnostics] table: thresholds of the leaderboard's flags."""
+    vanishing_below: float = 1e-3
+    exploding_above: float = 1e3
+    dead_above: float = 0.5
+    saturated_above: float = 0.5
+    gap_above: float = 0.1
+
+
+@dataclass(frozen=True, slots=True)
 class Factor:
     """A factor: one path, or several linked paths whose levels move together."""
     name: str
@@ -76,10 +100,10 @@ class Recipe:
     factors: tuple[Factor, ...]
     exclude: tuple[Mapping[str, Any], ...]
     baseline: Mapping[str, int]    # factor name -> level index
-    diagnostics: Mapping[str, float]
+    diagnostics: DiagnosticThresholds
     baseline_given: bool = False   # the recipe has a [baseline] table of its own
-    run: Mapping[str, Any] = field(default_factory=dict)       # the [run] table
-    tracking: Mapping[str, Any] = field(default_factory=dict)  # the [tracking] table
+    run: RunSettings = RunSettings()
+    tracking: TrackingSettings = TrackingSettings()
 
     @property
     def base_dir(self) -> Path:
@@ -147,19 +171,19 @@ def _build(raw: dict, text: str, path: Path) -> Recipe:
     factors = _factors(raw.get("factors", {}), sections)
     exclude = _exclude(raw.get("exclude", []), factors)
     baseline = _baseline(raw.get("baseline", {}), factors)
-    diagnostics = validate_table(raw.get("diagnostics", {}), DIAGNOSTICS, "diagnostics")
-    run = validate_table(raw.get("run", {}), RUN, "run")
-    tracking = validate_table(raw.get("tracking", {}), TRACKING, "tracking")
+    diagnostics = DiagnosticThresholds(**validate_table(raw.get("diagnostics", {}), DIAGNOSTICS, "diagnostics"))
+    run = RunSettings(**validate_table(raw.get("run", {}), RUN, "run"))
+    tracking = TrackingSettings(**validate_table(raw.get("tracking", {}), TRACKING, "tracking"))
     return Recipe(
         path=path.resolve(), text=text, hash=hashlib.sha256(text.encode()).hexdigest(),
         name=name, description=description, seeds=seeds, rank_by=rank_by,
         sections=MappingProxyType(copy.deepcopy(sections)), factors=factors, exclude=exclude,
-        baseline=MappingProxyType(baseline), diagnostics=MappingProxyType(diagnostics),
-        baseline_given="baseline" in raw, run=MappingProxyType(run), tracking=MappingProxyType(tracking))
+        baseline=MappingProxyType(baseline), diagnostics=diagnostics,
+        baseline_given="baseline" in raw, run=run, tracking=tracking)
 
 
-def resolve(sections: Mapping[str, Any], assignments: Mapping[str, Any]) -> dict[str, dict]:
-    """Apply dotted-path assignments to the raw sections and validate: full settings."""
+def resolve(sections: Mapping[str, Any], assignments: Mapping[str, Any]) -> Settings:
+    """Apply dotted-path assignments to the raw sections and validate: full, typed settings."""
     merged = copy.deepcopy(dict(sections))
     for path, value in assignments.items():
         parts = path.split(".")
@@ -167,7 +191,7 @@ def resolve(sections: Mapping[str, Any], assignments: Mapping[str, Any]) -> dict
         for part in parts[1:-1]:
             node = node.setdefault(part, {})
         node[parts[-1]] = value
-    return {s: validate_table(merged.get(s, {}), table, s) for s, table in SECTIONS.items()}
+    return Settings.from_dict({s: validate_table(merged.get(s, {}), table, s) for s, table in SECTIONS.items()})
 
 
 def _seeds(value: Any) -> tuple[int, ...]:

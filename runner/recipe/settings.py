@@ -1,19 +1,26 @@
-"""The tables of every setting in [data], [model] and [train], assembled from the components.
+"""Every setting of [data], [model] and [train]: its constraint table, assembled from the
+components, and the frozen, typed objects a validated recipe becomes.
 
 A recipe key exists if and only if it is in one of these tables; factor paths, defaults,
-the validator and the JSON Schema all come from here.
+the validator and the JSON Schema all come from here. Past the recipe loader, settings
+travel only as ``Settings`` (``DataSettings``, ``ModelSettings``, ``TrainSettings``), never
+as raw dicts; ``Settings.to_dict`` gives the plain form that job keys are hashed from and the
+store keeps.
 """
 from __future__ import annotations
 
+import dataclasses
+from dataclasses import dataclass
+from typing import Any, Mapping
+
+from runner.components import lr_schedules, regularizers
 from runner.components.activations import ACTIVATIONS
 from runner.components.initializers import INITIALIZERS
 from runner.components.optimizers import HYPERPARAMS, OPTIMIZERS
 from runner.recipe.constraints import Boolean, Choice, Either, Integer, IntList, Param, Real, Text
-from runner.components import regularizers
-from runner.components import lr_schedules as schedules
 
 __all__ = ["SECTIONS", "DATA", "MODEL", "TRAIN", "BUNDLED", "NOT_IDENTITY", "all_paths", "param_at",
-           "identity"]
+           "Settings", "DataSettings", "SplitSettings", "ModelSettings", "TrainSettings"]
 
 BUNDLED = ("breast_cancer", "circles", "diabetes", "digits", "iris", "moons", "wine")
 
@@ -55,7 +62,7 @@ TRAIN = {
     "optimizer": Param(Choice(tuple(OPTIMIZERS)), "adam", "optimization algorithm"),
     **HYPERPARAMS,
     **regularizers.PARAMS,
-    **schedules.PARAMS,
+    **lr_schedules.PARAMS,
     "batch_size": Param(Either((Integer(1), Choice(("full",)))), 32,
                         'mini-batch size, or "full" for full-batch gradient descent'),
     "epochs": Param(Integer(1, 100_000), 30, "passes over the training split"),
@@ -101,10 +108,129 @@ def param_at(path: str) -> Param | None:
     return param if param is not None and param.table is None else None
 
 
-def identity(settings: dict) -> dict:
-    """The settings a job's key is hashed from (without NOT_IDENTITY)."""
-    out = {section: dict(values) for section, values in settings.items()}
-    for section, keys in NOT_IDENTITY.items():
-        for key in keys:
-            out.get(section, {}).pop(key, None)
-    return out
+@dataclass(frozen=True, slots=True)
+class SplitSettings:
+    val: float
+    test: float
+    stratify: bool
+
+
+@dataclass(frozen=True, slots=True)
+class DataSettings:
+    source: str
+    target: str | None
+    task: str                  # "auto", "classification" or "regression"
+    split: SplitSettings
+    scale: str
+    n_samples: int
+    noise: float
+
+
+@dataclass(frozen=True, slots=True)
+class ModelSettings:
+    kind: str
+    hidden: tuple[int, ...]
+    activation: str
+    leaky_slope: float
+    init: str
+    init_scale: float
+    dropout: float
+    input_dropout: float
+    batch_norm: bool
+    channels: tuple[int, ...]
+    kernel_size: int
+    pool: str
+
+
+@dataclass(frozen=True, slots=True)
+class TrainSettings:
+    optimizer: str
+    lr: float
+    momentum: float
+    beta1: float
+    beta2: float
+    alpha: float
+    eps: float
+    weight_decay: float
+    l2: float
+    l1: float
+    l1_mode: str
+    sparsity_tol: float
+    schedule: str
+    step_every: int
+    step_gamma: float
+    warmup_epochs: int
+    batch_size: int | str      # a row count, or "full"
+    epochs: int
+    clip_norm: float
+    patience: int
+    diverge_factor: float
+    time_limit: float
+    checkpoint_every: int
+
+    def batch_rows(self, n: int) -> int:
+        """Rows per mini-batch for a training split of ``n`` rows ("full": all of them)."""
+        return n if self.batch_size == "full" else min(int(self.batch_size), n)
+
+    @property
+    def proximal_l1(self) -> float:
+        """The L1 strength applied as a soft-threshold step (0 when L1 is a loss term)."""
+        return self.l1 if self.l1_mode == "proximal" else 0.0
+
+    @property
+    def penalty_l1(self) -> float:
+        """The L1 strength added to the loss (0 when L1 is a proximal step)."""
+        return self.l1 if self.l1_mode == "penalty" else 0.0
+
+
+@dataclass(frozen=True, slots=True)
+class Settings:
+    """One configuration's fully resolved settings."""
+    data: DataSettings
+    model: ModelSettings
+    train: TrainSettings
+
+    @classmethod
+    def from_dict(cls, raw: Mapping[str, Mapping[str, Any]]) -> Settings:
+        """From the validated tables (``constraints.validate_table`` output)."""
+        data = dict(raw["data"])
+        data["split"] = SplitSettings(**data["split"])
+        model = {k: tuple(v) if isinstance(v, list) else v for k, v in raw["model"].items()}
+        return cls(DataSettings(**data), ModelSettings(**model), TrainSettings(**raw["train"]))
+
+    def to_dict(self) -> dict[str, dict[str, Any]]:
+        """The plain nested form: what job keys are hashed from and the store keeps."""
+        return {"data": dataclasses.asdict(self.data), "model": dataclasses.asdict(self.model),
+                "train": dataclasses.asdict(self.train)}
+
+    def identity(self) -> dict[str, dict[str, Any]]:
+        """``to_dict`` without NOT_IDENTITY: what a job's key is hashed from."""
+        out = self.to_dict()
+        for section, keys in NOT_IDENTITY.items():
+            for key in keys:
+                out[section].pop(key)
+        return out
+
+    def flat(self) -> dict[str, Any]:
+        """Every setting by dotted path, e.g. {"train.lr": 0.001, "data.split.val": 0.2}."""
+        out: dict[str, Any] = {}
+
+        def walk(node: Mapping[str, Any], prefix: str) -> None:
+            for key, value in node.items():
+                if isinstance(value, Mapping):
+                    walk(value, f"{prefix}{key}.")
+                else:
+                    out[f"{prefix}{key}"] = value
+
+        walk(self.to_dict(), "")
+        return out
+
+    def with_train(self, **changes: Any) -> Settings:
+        """A copy with some [train] settings changed (e.g. the estimate's short probes)."""
+        return dataclasses.replace(self, train=dataclasses.replace(self.train, **changes))
+
+
+_TYPED = {"data": DataSettings, "model": ModelSettings, "train": TrainSettings}
+for _section, _cls in _TYPED.items():  # a key added to a table needs its field, and back
+    assert [f.name for f in dataclasses.fields(_cls)] == list(SECTIONS[_section]), _section
+assert [f.name for f in dataclasses.fields(SplitSettings)] == list(SPLIT)

@@ -14,17 +14,15 @@ import sqlite3
 import threading
 import time
 from pathlib import Path
-from typing import Iterable
+from dataclasses import dataclass
+from typing import Any, Iterable
 
 from runner.errors import StoreError
-from runner.training.job import JobResult
+from runner.training.job import FINISHED, JobResult, Status
 
-__all__ = ["Store", "RunnerLock", "FINISHED", "SCHEMA_VERSION", "STALE_AFTER"]
-
-STALE_AFTER = 60.0  # seconds without a heartbeat after which a runner's lock is abandoned
+__all__ = ["Store", "StoredJob", "SCHEMA_VERSION"]
 
 SCHEMA_VERSION = 1
-FINISHED = ("done", "diverged", "failed", "timeout")
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
@@ -45,7 +43,27 @@ CREATE TABLE IF NOT EXISTS running (
 CREATE TABLE IF NOT EXISTS curves (
     job_key TEXT NOT NULL REFERENCES jobs(key) ON DELETE CASCADE, name TEXT NOT NULL,
     epoch INTEGER NOT NULL, value REAL, PRIMARY KEY (job_key, name, epoch));
+CREATE TABLE IF NOT EXISTS exports (
+    uri TEXT NOT NULL, job_key TEXT NOT NULL, run_id TEXT NOT NULL, exported REAL NOT NULL,
+    PRIMARY KEY (uri, job_key));
 """
+
+
+@dataclass(frozen=True)
+class StoredJob:
+    """A finished job as the store holds it."""
+    key: str
+    config_id: str
+    seed: int
+    levels: dict[str, str]       # factor name -> level label
+    status: Status
+    error: str | None
+    duration: float
+    epochs_run: int
+    best_epoch: int | None
+    env: dict[str, Any]
+    diagnostics: dict[str, Any]
+    recipe_hash: str
 
 
 def _num(value):
@@ -90,8 +108,8 @@ class Store:
         self.conn.execute("INSERT OR IGNORE INTO recipes VALUES (?, ?, ?, ?, ?)",
                           (recipe.hash, recipe.name, str(recipe.path), recipe.text, time.time()))
 
-    def finished_keys(self, statuses: Iterable[str] = FINISHED) -> set[str]:
-        statuses = tuple(statuses)
+    def finished_keys(self, statuses: Iterable[Status] = FINISHED) -> set[str]:
+        statuses = tuple(s.value for s in statuses)
         marks = ",".join("?" * len(statuses))
         rows = self.conn.execute(f"SELECT key FROM jobs WHERE status IN ({marks})", statuses)
         return {r[0] for r in rows}
@@ -100,6 +118,7 @@ class Store:
                      attempts: int = 1) -> None:
         """The whole result in one transaction (metrics and curves replace any earlier try)."""
         c = self.conn
+        diagnostics = {**result.diagnostics, "notes": result.notes} if result.notes else result.diagnostics
         c.execute("BEGIN IMMEDIATE")
         try:
             c.execute("DELETE FROM jobs WHERE key = ?", (job.key,))
@@ -108,10 +127,10 @@ class Store:
                 "INSERT INTO jobs (key, config_id, seed, levels, settings, recipe_hash, status, error,"
                 " finished, duration, epochs_run, best_epoch, attempts, env, diagnostics)"
                 " VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)",
-                (job.key, job.config.id, job.seed, json.dumps(labels), json.dumps(job.config.settings,
-                 sort_keys=True, default=list), recipe_hash, result.status, result.error, time.time(),
+                (job.key, job.config.id, job.seed, json.dumps(labels), json.dumps(job.config.settings.to_dict(),
+                 sort_keys=True), recipe_hash, Status(result.status).value, result.error, time.time(),
                  result.duration, result.epochs_run, result.best_epoch, attempts,
-                 json.dumps(result.env, sort_keys=True), json.dumps(result.diagnostics, sort_keys=True)))
+                 json.dumps(result.env, sort_keys=True), json.dumps(diagnostics, sort_keys=True)))
             c.executemany("INSERT INTO metrics VALUES (?,?,?,?)",
                           [(job.key, split, name, _num(v)) for split, vals in result.metrics.items()
                            for name, v in vals.items()])
@@ -123,7 +142,7 @@ class Store:
             c.execute("ROLLBACK")
             raise
 
-    def jobs(self, keys: Iterable[str] | None = None) -> list[dict]:
+    def jobs(self, keys: Iterable[str] | None = None) -> list[StoredJob]:
         rows = self.conn.execute(
             "SELECT key, config_id, seed, levels, status, error, duration, epochs_run, best_epoch,"
             " env, diagnostics, recipe_hash FROM jobs").fetchall()
@@ -132,11 +151,30 @@ class Store:
         for r in rows:
             if wanted is not None and r[0] not in wanted:
                 continue
-            out.append({"key": r[0], "config_id": r[1], "seed": r[2], "levels": json.loads(r[3]),
-                        "status": r[4], "error": r[5], "duration": r[6], "epochs_run": r[7],
-                        "best_epoch": r[8], "env": json.loads(r[9]), "diagnostics": json.loads(r[10]),
-                        "recipe_hash": r[11]})
+            out.append(StoredJob(key=r[0], config_id=r[1], seed=r[2], levels=json.loads(r[3]),
+                                 status=Status(r[4]), error=r[5], duration=r[6], epochs_run=r[7],
+                                 best_epoch=r[8], env=json.loads(r[9]), diagnostics=json.loads(r[10]),
+                                 recipe_hash=r[11]))
         return out
+
+    def latest_recipe(self) -> tuple[str, str] | None:
+        """(text, path) of the recipe this store saw last, or None."""
+        row = self.conn.execute("SELECT text, path FROM recipes ORDER BY first_seen DESC LIMIT 1").fetchone()
+        return None if row is None else (row[0], row[1])
+
+    def meta(self, key: str) -> str | None:
+        row = self.conn.execute("SELECT value FROM meta WHERE key = ?", (key,)).fetchone()
+        return None if row is None else row[0]
+
+    def set_meta(self, key: str, value: str) -> None:
+        self.conn.execute("INSERT OR REPLACE INTO meta VALUES (?, ?)", (key, value))
+
+    def exported_keys(self, uri: str) -> set[str]:
+        """Jobs already logged to this MLflow tracking URI."""
+        return {r[0] for r in self.conn.execute("SELECT job_key FROM exports WHERE uri = ?", (uri,))}
+
+    def record_export(self, uri: str, key: str, run_id: str) -> None:
+        self.conn.execute("INSERT OR REPLACE INTO exports VALUES (?, ?, ?, ?)", (uri, key, run_id, time.time()))
 
     def metrics(self) -> dict[str, dict[str, dict[str, float | None]]]:
         out: dict = {}
@@ -161,6 +199,8 @@ class Store:
 
     def running_keys(self) -> set[str]:
         """Jobs marked running by a runner that still holds the store; stale marks are ignored."""
+        from runner.store.lock import RunnerLock
+
         if RunnerLock.holder(self) is None:
             return set()
         return {r[0] for r in self.conn.execute("SELECT key FROM running")}
@@ -187,92 +227,3 @@ class Store:
         return self.conn.execute("PRAGMA integrity_check").fetchone()[0]
 
 
-def _alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
-
-
-_MINE = ("DELETE FROM meta WHERE key = 'runner' AND json_extract(value, '$.pid') = ?"
-         " AND json_extract(value, '$.host') = ?")
-
-
-class RunnerLock:
-    """One runner per store at a time: a second ``recipe run`` on the same store refuses.
-
-    The holder writes a heartbeat every few seconds from a background thread. A lock whose
-    process is gone (same host) or whose heartbeat is older than STALE_AFTER seconds was left
-    by a killed runner and is taken over, and its "running" marks are cleared.
-    """
-
-    def __init__(self, store: Store):
-        self.path = store.path
-        self.store = store
-        self._stop = threading.Event()
-        self._thread: threading.Thread | None = None
-        self.me = {"pid": os.getpid(), "host": socket.gethostname(), "started": time.time()}
-
-    @staticmethod
-    def holder(store: Store) -> dict | None:
-        row = store.conn.execute("SELECT value FROM meta WHERE key = 'runner'").fetchone()
-        if row is None:
-            return None
-        info = json.loads(row[0])
-        stale = time.time() - info.get("heartbeat", 0) > STALE_AFTER
-        gone = info.get("host") == socket.gethostname() and not _alive(info.get("pid", -1))
-        return None if (stale or gone) else info
-
-    def acquire(self) -> None:
-        c = self.store.conn
-        c.execute("BEGIN IMMEDIATE")
-        try:
-            other = self.holder(self.store)
-            if other is not None and other.get("pid") != os.getpid():
-                c.execute("ROLLBACK")
-                raise StoreError(
-                    f"another 'recipe run' (pid {other['pid']} on {other['host']}) is using this store",
-                    where=str(self.path),
-                    hint="Wait for it to finish, or give this run its own --store; a killed run's lock "
-                         f"is recovered automatically (at once on the same host, else after {STALE_AFTER:g} s)")
-            c.execute("DELETE FROM running")
-            c.execute("INSERT OR REPLACE INTO meta VALUES ('runner', ?)",
-                      (json.dumps({**self.me, "heartbeat": time.time()}),))
-            c.execute("COMMIT")
-        except StoreError:
-            raise
-        except BaseException:
-            c.execute("ROLLBACK")
-            raise
-        self._thread = threading.Thread(target=self._beat, daemon=True)
-        self._thread.start()
-
-    def _beat(self) -> None:
-        conn = sqlite3.connect(self.path, timeout=30.0)
-        try:
-            while not self._stop.wait(5.0):
-                with conn:
-                    conn.execute(_MINE.replace("DELETE FROM meta", "UPDATE meta SET value = ?"),
-                                 (json.dumps({**self.me, "heartbeat": time.time()}), *self._who()))
-        finally:
-            conn.close()
-
-    def release(self) -> None:
-        self._stop.set()
-        if self._thread:
-            self._thread.join(timeout=10)
-        if self.store.conn.execute(_MINE, self._who()).rowcount:
-            self.store.conn.execute("DELETE FROM running")
-
-    def _who(self) -> tuple:
-        return (self.me["pid"], self.me["host"])
-
-    def __enter__(self):
-        self.acquire()
-        return self
-
-    def __exit__(self, *exc):
-        self.release()

@@ -1,19 +1,40 @@
 """A job as the pipeline passes it around: what to train (JobSpec) and what came of it
-(JobResult). Plain data with no torch, so the grid, the store and the summary can be used
-without importing it; the executors send these to workers and back.
+(JobResult), with its end state (Status). Plain data with no torch, so the grid, the store
+and the leaderboard can be used without importing it; the executors send these to workers
+and back.
 """
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from enum import Enum
+from typing import TYPE_CHECKING, Any
 
-__all__ = ["JobSpec", "JobResult"]
+if TYPE_CHECKING:
+    from runner.recipe.settings import Settings
+
+__all__ = ["JobSpec", "JobResult", "Status", "FINISHED"]
+
+
+class Status(str, Enum):
+    """How a job ended. Every finished job is stored with one of these; a job with no
+    stored result is pending."""
+    DONE = "done"
+    DIVERGED = "diverged"
+    FAILED = "failed"
+    TIMEOUT = "timeout"
+
+    def __str__(self) -> str:
+        return self.value
+
+
+FINISHED = tuple(Status)
 
 
 @dataclass(frozen=True)
 class JobSpec:
     key: str
     seed: int
-    settings: dict          # {"data": {...}, "model": {...}, "train": {...}}, fully resolved
+    settings: Settings      # fully resolved
     monitor: str            # the rank metric, watched by early stopping
     data_id: str            # the dataset's fingerprint
     checkpoint: str | None = None     # file for mid-job checkpoints (train.checkpoint_every)
@@ -23,12 +44,13 @@ class JobSpec:
 @dataclass
 class JobResult:
     key: str
-    status: str             # done | diverged | failed | timeout
+    status: Status
     error: str | None = None
-    metrics: dict = field(default_factory=dict)      # split -> {metric: value}
-    curves: dict = field(default_factory=dict)       # name -> [value per epoch]
-    diagnostics: dict = field(default_factory=dict)
+    metrics: dict[str, dict[str, float]] = field(default_factory=dict)  # split -> {metric: value}
+    curves: dict[str, list[float]] = field(default_factory=dict)        # name -> [value per epoch]
+    diagnostics: dict[str, Any] = field(default_factory=dict)
     epochs_run: int = 0
     best_epoch: int | None = None
     duration: float = 0.0
-    env: dict = field(default_factory=dict)
+    env: dict[str, Any] = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)  # what the user should know of how it ran

@@ -33,22 +33,22 @@ class Dropout(nn.Module):
 
 def build_model(model: Mapping[str, Any], in_shape: tuple[int, ...], n_out: int,
                 init_gen: torch.Generator, dropout_gen: torch.Generator) -> nn.Sequential:
-    act = model["activation"]
-    slope = model["leaky_slope"]
+    act = model.activation
+    slope = model.leaky_slope
     layers: list[nn.Module] = []
-    if model["input_dropout"] > 0:
-        layers.append(Dropout(model["input_dropout"], dropout_gen))
-    if model["kind"] == "cnn":
+    if model.input_dropout > 0:
+        layers.append(Dropout(model.input_dropout, dropout_gen))
+    if model.kind == "cnn":
         channels, height, width = in_shape
-        k = model["kernel_size"]
-        for c in model["channels"]:
+        k = model.kernel_size
+        for c in model.channels:
             layers.append(nn.Conv2d(channels, c, k, padding=k // 2))
             height, width = height + 2 * (k // 2) - k + 1, width + 2 * (k // 2) - k + 1
-            if model["batch_norm"]:
+            if model.batch_norm:
                 layers.append(nn.BatchNorm2d(c))
             layers.append(make_activation(act, slope))
-            if model["pool"] != "none" and min(height, width) >= 2:
-                layers.append(nn.MaxPool2d(2) if model["pool"] == "max" else nn.AvgPool2d(2))
+            if model.pool != "none" and min(height, width) >= 2:
+                layers.append(nn.MaxPool2d(2) if model.pool == "max" else nn.AvgPool2d(2))
                 height, width = height // 2, width // 2
             channels = c
         layers.append(nn.Flatten())
@@ -56,20 +56,20 @@ def build_model(model: Mapping[str, Any], in_shape: tuple[int, ...], n_out: int,
     else:
         layers.append(nn.Flatten())
         width_in = int(torch.tensor(in_shape).prod())
-    for h in model["hidden"]:
+    for h in model.hidden:
         layers.append(nn.Linear(width_in, h))
-        if model["batch_norm"]:
+        if model.batch_norm:
             layers.append(nn.BatchNorm1d(h))
         layers.append(make_activation(act, slope))
-        if model["dropout"] > 0:
-            layers.append(Dropout(model["dropout"], dropout_gen))
+        if model.dropout > 0:
+            layers.append(Dropout(model.dropout, dropout_gen))
         width_in = h
     layers.append(nn.Linear(width_in, n_out))
     net = nn.Sequential(*layers)
     weighted = layers_with_weights(net)
     for i, layer in enumerate(weighted):
         layer_gain = 1.0 if i == len(weighted) - 1 else gain(act, slope)  # output layer is linear
-        initialize(model["init"], layer.weight, layer_gain, model["init_scale"], init_gen)
+        initialize(model.init, layer.weight, layer_gain, model.init_scale, init_gen)
         with torch.no_grad():
             layer.bias.zero_()
     return net

@@ -1,0 +1,93 @@
+"""Which jobs train together: work items of one job, or stacked groups of same-shaped jobs.
+
+The stacked path (stacked.py) trains K jobs whose tensor shapes agree as one computation;
+``stack_key`` says which jobs agree, ``group_specs`` cuts each bucket into groups bounded by
+``GROUP_SIZE`` and by an estimate of the group's memory (``member_bytes``) against
+``MEMORY_BUDGET`` per worker process.
+"""
+from __future__ import annotations
+
+import math
+from typing import Sequence
+
+import numpy as np
+
+from runner.components.stacked_optim import STACKED_OPTIMIZERS
+from runner.datasets.sources import Dataset
+from runner.recipe.grid import canonical
+from runner.training.job import JobSpec
+
+__all__ = ["Stacked", "stack_key", "group_specs", "training_note", "member_bytes", "GROUP_SIZE",
+           "MEMORY_BUDGET"]
+
+GROUP_SIZE = 16  # members per stacked group: enough to share the per-operation overhead,
+# few enough that a small grid still spreads over several workers
+MEMORY_BUDGET = 512 * 2**20  # bytes of tensors one stacked group may hold in a worker
+
+class Stacked(tuple):
+    """A work item of job specs trained together on the stacked path (even a group of one)."""
+
+    __slots__ = ()
+
+
+def stack_key(spec: JobSpec) -> str | None:
+    """Jobs with equal keys can share one stacked computation; None: this job runs alone."""
+    m, t = spec.settings.model, spec.settings.train
+    if (m.kind != "mlp" or m.batch_norm or t.optimizer not in STACKED_OPTIMIZERS
+            or t.checkpoint_every or t.time_limit or spec.time_limit or spec.checkpoint):
+        return None
+    return canonical({"data": spec.data_id, "split": spec.settings.data, "hidden": m.hidden,
+                      "act": m.activation, "slope": m.leaky_slope, "bs": t.batch_size,
+                      "epochs": t.epochs, "monitor": spec.monitor})
+
+
+def member_bytes(spec: JobSpec, ds: Dataset) -> int:
+    """A generous estimate of one member's tensors: parameters with gradients, optimizer
+    moments, a best-epoch copy and momentum buffer (6 copies), its data splits, and the
+    activations of one mini-batch with their gradients and masks (4 copies)."""
+    features = int(np.prod(ds.X.shape[1:]))
+    widths = [features, *spec.settings.model.hidden, max(1, len(ds.classes))]
+    params = sum((a + 1) * b for a, b in zip(widths, widths[1:]))
+    bs = spec.settings.train.batch_size
+    batch = len(ds.y) if bs == "full" else min(int(bs), len(ds.y))
+    return 4 * (6 * params + len(ds.y) * features + 4 * batch * sum(widths))
+
+
+def group_specs(specs: Sequence[JobSpec], datasets: dict[str, Dataset],
+                enabled: bool = True) -> list[tuple[JobSpec, ...]]:
+    """Work items over the grid's jobs in grid order: stackable jobs in groups of up to
+    GROUP_SIZE (fewer when the memory estimate says so), others alone.
+
+    Groups depend only on the grid, never on which jobs are already stored or on the worker
+    count: a member's numbers depend (in the last bits) on its place in its group, so a fixed
+    grouping keeps resumed and uninterrupted runs bitwise equal."""
+    if not enabled:
+        return [(s,) for s in specs]
+    buckets: dict[str, list[JobSpec]] = {}
+    items: list[tuple[JobSpec, ...]] = []
+    for spec in specs:
+        key = stack_key(spec)
+        if key is None:
+            items.append((spec,))
+        else:
+            buckets.setdefault(key, []).append(spec)
+    for members in buckets.values():
+        cap = max(1, min(GROUP_SIZE, MEMORY_BUDGET // member_bytes(members[0], datasets[members[0].data_id])))
+        count = math.ceil(len(members) / cap)  # near-equal groups: 18 jobs -> 9 + 9, not 16 + 2
+        cuts = [round(i * len(members) / count) for i in range(count + 1)]
+        items += [Stacked(members[a:b]) for a, b in zip(cuts, cuts[1:])]
+    return items
+
+
+def training_note(items: Sequence[tuple[JobSpec, ...]]) -> str:
+    """How a run's work items train, in words: "2 stacked groups of 9 jobs, 3 jobs one at a time"."""
+    sizes = sorted(len(item) for item in items if isinstance(item, Stacked))
+    alone = sum(len(item) for item in items if not isinstance(item, Stacked))
+    parts = []
+    if sizes:
+        span = str(sizes[0]) if sizes[0] == sizes[-1] else f"{sizes[0]}-{sizes[-1]}"
+        parts.append(f"{len(sizes)} stacked group{'s' if len(sizes) > 1 else ''} of {span} "
+                     f"job{'s' if sizes[-1] > 1 else ''}")
+    if alone:
+        parts.append(f"{alone} job{'s' if alone > 1 else ''} one at a time")
+    return "training " + ", ".join(parts)
