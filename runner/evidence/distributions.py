@@ -35,12 +35,30 @@ def norm_sf(x: float) -> float:
     return 0.5 * math.erfc(x / math.sqrt(2.0))
 
 
-_erfc_array = np.frompyfunc(math.erfc, 1, 1)
+_STEP = 1.0 / 512.0
+_REACH = 9.0  # beyond +-9 the normal cdf is within 1.2e-19 of 0 or 1
 
 
-def norm_cdf_array(x: np.ndarray) -> np.ndarray:
-    """Elementwise standard normal cdf of an array (math.erfc, vectorized)."""
-    return 0.5 * _erfc_array(-np.asarray(x, dtype=float) / math.sqrt(2.0)).astype(float)
+@lru_cache(maxsize=1)
+def _cdf_table() -> tuple[np.ndarray, np.ndarray]:
+    grid = np.arange(-_REACH, _REACH + _STEP / 2, _STEP)
+    values = np.array([norm_cdf(x) for x in grid])
+    slopes = np.exp(-0.5 * grid * grid - _LN_SQRT_2PI) * _STEP
+    return values, slopes
+
+
+def norm_cdf_array(x) -> np.ndarray:
+    """Standard normal cdf of an array to ~1e-13 absolute error (not relative: use norm_cdf
+    for far tails). Cubic Hermite interpolation of a table with exact slopes, step 1/512,
+    whose error is below step^4 * max(fourth derivative) / 384."""
+    x = np.clip(np.asarray(x, dtype=float), -_REACH, _REACH)
+    values, slopes = _cdf_table()
+    pos = (x + _REACH) / _STEP
+    i = np.minimum(pos.astype(np.int64), values.size - 2)
+    t = pos - i
+    t2, t3 = t * t, t * t * t
+    return ((2 * t3 - 3 * t2 + 1) * values[i] + (t3 - 2 * t2 + t) * slopes[i]
+            + (3 * t2 - 2 * t3) * values[i + 1] + (t3 - t2) * slopes[i + 1])
 
 
 def _norm_pdf(x: float) -> float:
