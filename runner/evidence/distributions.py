@@ -315,7 +315,7 @@ def scaled_chi_nodes(df: float, panels: int = 24, per_panel: int = 8) -> tuple[n
     # power-law left tail and steep integrands such as Phi(c s) are smooth
     split = max(lo, 0.5)
     s_parts, w_parts = [], []
-    log_panels = max(2, math.ceil((math.log(split) - math.log(lo)) / min(1.5, 6.0 / df)))
+    log_panels = max(2, math.ceil((math.log(split) - math.log(lo)) / min(0.75, 6.0 / df)))
     for a, b, count, log_scale in ((math.log(lo), math.log(split), log_panels, True),
                                    (split, hi, panels, False)):
         if b <= a:
