@@ -222,8 +222,9 @@ def _newton_log_tail(tail, dens, target: float, x: float, lo: float,
     raise ArithmeticError(f"quantile search did not converge (target {target})")
 
 
+@lru_cache(maxsize=4096)
 def t_isf(q: float, df: float) -> float:
-    """t with P(T > t) = q."""
+    """t with P(T > t) = q (cached: intervals ask for the same few quantiles)."""
     _check_df(df)
     if not 0.0 <= q <= 1.0:
         raise ValueError(f"probability must be in [0, 1], got {q}")

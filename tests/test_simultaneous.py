@@ -1,12 +1,13 @@
-"""dunnett: the one-sided many-to-one constant against scipy.stats.multivariate_t,
-scipy.stats.multivariate_normal, the t quantile and the orthant identity."""
+"""simultaneous: Dunnett's one-sided constant and the studentized range quantile against
+scipy.stats (multivariate_t, multivariate_normal, dunnett, studentized_range), the t
+quantile and the orthant identity."""
 import math
 
 import numpy as np
 import pytest
 from scipy import stats as st
 
-from runner.evidence.dunnett import dunnett_cdf, dunnett_one_sided
+from runner.evidence.simultaneous import dunnett_cdf, dunnett_one_sided, range_cdf, range_quantile
 
 
 def _corr(m):
@@ -83,3 +84,19 @@ def test_invalid_arguments():
         dunnett_one_sided(0, 10)
     with pytest.raises(ValueError):
         dunnett_one_sided(3, 10, alpha=1.5)
+
+
+@pytest.mark.parametrize("k, df", [(3, 10), (4, 20), (8, 21), (16, 45), (64, 63), (4, 3), (2, 7)])
+def test_range_quantile_matches_scipy(k, df):
+    """Studentized range quantile equals scipy.stats.studentized_range.ppf to 1e-7 relative."""
+    assert range_quantile(k, df) == pytest.approx(st.studentized_range.ppf(0.95, k, df), rel=1e-7)
+
+
+@pytest.mark.parametrize("q", [1.0, 3.0, 5.0])
+def test_range_cdf_matches_scipy(q):
+    assert range_cdf(q, 5, 12) == pytest.approx(st.studentized_range.cdf(q, 5, 12), abs=1e-9)
+
+
+def test_range_of_two_means_is_the_t_quantile():
+    """k = 2: q = sqrt(2) t_{0.975, df} (the range of two means is |difference|)."""
+    assert range_quantile(2, 9) == pytest.approx(math.sqrt(2) * st.t.isf(0.025, 9), rel=1e-12)
