@@ -91,15 +91,15 @@ def selection_rates(draw, protocol, k, n, reps, rng, old_rule):
     old_wrong = 0
     for _ in range(reps):
         y, _ = draw(rng, k, n, equal)
-        for c in counts:
-            counts[c][0] += not all(possibly_best(y, "max", ALPHA, protocol, constant=c).possibly_best)
+        for c, tally in counts.items():
+            tally[0] += not all(possibly_best(y, "max", ALPHA, protocol, constant=c).possibly_best)
         if old_rule:
             old_wrong += _old_rule_flags(y)
         y, _ = draw(rng, k, n, better)
-        for c in counts:
+        for c, tally in counts.items():
             kept = possibly_best(y, "max", ALPHA, protocol, constant=c).possibly_best
-            counts[c][1] += kept[0]
-            counts[c][2] += sum(kept)
+            tally[1] += kept[0]
+            tally[2] += sum(kept)
     for c, (wrong, covered, size) in counts.items():
         out[c] = (wrong / reps, covered / reps, size / reps)
     return out, (old_wrong / reps if old_rule else None)

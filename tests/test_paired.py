@@ -6,8 +6,7 @@ import numpy as np
 import pytest
 from scipy import stats as st
 
-from runner.evidence.paired import (min_attainable_p, paired_difference, seeds_for_any_verdict,
-                                    sign_flip_test)
+from runner.evidence.paired import min_attainable_p, paired_difference, seeds_for_any_verdict, sign_flip_test
 from runner.evidence.protocols import FIXED, Resampling
 
 

@@ -19,8 +19,14 @@ from runner.evidence.distributions import f_isf, f_sf
 from runner.evidence.paired import PairedDifference, paired_difference
 from runner.evidence.protocols import FIXED, Resampling
 
-__all__ = ["Effect", "TwoWay", "InteractionContrast", "two_way_blocks", "interaction_contrasts",
-           "matched_difference"]
+__all__ = [
+    "Effect",
+    "InteractionContrast",
+    "TwoWay",
+    "interaction_contrasts",
+    "matched_difference",
+    "two_way_blocks",
+]
 
 
 @dataclass(frozen=True, slots=True)

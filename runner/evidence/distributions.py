@@ -15,8 +15,21 @@ from functools import lru_cache
 
 import numpy as np
 
-__all__ = ["norm_cdf", "norm_sf", "norm_ppf", "norm_isf", "norm_cdf_array", "t_cdf", "t_sf",
-           "t_ppf", "t_isf", "t_pdf", "f_sf", "f_isf", "scaled_chi_nodes"]
+__all__ = [
+    "f_isf",
+    "f_sf",
+    "norm_cdf",
+    "norm_cdf_array",
+    "norm_isf",
+    "norm_ppf",
+    "norm_sf",
+    "scaled_chi_nodes",
+    "t_cdf",
+    "t_isf",
+    "t_pdf",
+    "t_ppf",
+    "t_sf",
+]
 
 _EPS = 1e-16
 _TINY = 1e-300

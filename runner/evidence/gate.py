@@ -11,8 +11,8 @@ configurations, which pairing by seed largely removes. Identical runs give p = 1
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Sequence
 
 import numpy as np
 
@@ -20,7 +20,7 @@ from runner.evidence.distributions import t_cdf, t_isf, t_sf
 from runner.evidence.paired import min_attainable_p, paired_difference, sign_flip_test
 from runner.evidence.protocols import FIXED, Resampling
 
-__all__ = ["Pairing", "ConfigChange", "GateResult", "VERDICTS", "pairing", "compare_runs", "holm"]
+__all__ = ["VERDICTS", "ConfigChange", "GateResult", "Pairing", "compare_runs", "holm", "pairing"]
 
 VERDICTS = ("regressed", "improved", "no shift shown", "too few seeds")
 

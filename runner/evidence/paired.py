@@ -18,8 +18,15 @@ import numpy as np
 from runner.evidence.distributions import t_cdf, t_isf, t_sf
 from runner.evidence.protocols import FIXED, Resampling
 
-__all__ = ["SignFlip", "PairedDifference", "sign_flip_test", "min_attainable_p",
-           "seeds_for_any_verdict", "paired_difference", "EXACT_MAX_N"]
+__all__ = [
+    "EXACT_MAX_N",
+    "PairedDifference",
+    "SignFlip",
+    "min_attainable_p",
+    "paired_difference",
+    "seeds_for_any_verdict",
+    "sign_flip_test",
+]
 
 EXACT_MAX_N = 20  # 2^20 sign patterns: about 8 MB of sums, well under a second
 _ALTERNATIVES = ("two-sided", "greater", "less")

@@ -18,7 +18,7 @@ from runner.evidence.distributions import norm_cdf_array, scaled_chi_nodes, t_is
 from runner.evidence.paired import seeds_for_any_verdict
 from runner.evidence.protocols import FIXED, Resampling
 
-__all__ = ["SeedAdvice", "paired_t_power", "tost_power", "seeds_to_detect", "seeds_for_equivalence"]
+__all__ = ["SeedAdvice", "paired_t_power", "seeds_for_equivalence", "seeds_to_detect", "tost_power"]
 
 _MAX_SEEDS = 100_000
 

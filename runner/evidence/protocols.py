@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-__all__ = ["Resampling", "FIXED"]
+__all__ = ["FIXED", "Resampling"]
 
 _KINDS = ("fixed", "repeated_kfold", "resample")
 
@@ -45,12 +45,12 @@ class Resampling:
                 raise ValueError(f"resampling repeats: must be an integer >= 1, got {self.repeats!r}")
 
     @classmethod
-    def resample(cls, n_val: int, n_train: int) -> "Resampling":
+    def resample(cls, n_val: int, n_train: int) -> Resampling:
         """Each seed redraws the split: n_val validation rows, n_train training rows."""
         return cls("resample", n_val=n_val, n_train=n_train)
 
     @classmethod
-    def repeated_kfold(cls, folds: int, repeats: int) -> "Resampling":
+    def repeated_kfold(cls, folds: int, repeats: int) -> Resampling:
         """``repeats`` repetitions of ``folds``-fold cross-validation."""
         return cls("repeated_kfold", folds=folds, repeats=repeats)
 

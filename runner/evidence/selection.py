@@ -22,9 +22,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from runner.evidence.simultaneous import dunnett_one_sided, range_quantile
 from runner.evidence.paired import min_attainable_p
 from runner.evidence.protocols import FIXED, Resampling
+from runner.evidence.simultaneous import dunnett_one_sided, range_quantile
 
 __all__ = ["BestSet", "possibly_best"]
 
@@ -34,18 +34,19 @@ _CONSTANTS = ("range", "dunnett")
 
 @dataclass(frozen=True, slots=True)
 class BestSet:
-    """Hsu's MCB over k configurations and n matched seeds, in metric units.
+    """Constrained MCB over k configurations and n matched seeds, in metric units.
 
-    advantage_i = mean_i - (best mean among the others), signed so that positive is better
+    advantage[i] = mean_i - (best mean among the others), signed so that positive is better
     for the goal ("max": larger is better; "min": smaller is better). lower/upper bound the
     true advantage simultaneously for all rows (-inf/inf when the data cannot bound it;
-    None for a single configuration). possibly_best[i]: upper[i] >= 0 when lower < 0, i.e.
-    the row cannot be ruled out as the best. shortfall[i] = -lower[i]: the largest amount
-    the data still allow the row to trail the best of the others. within_margin[i] (when a
-    margin is given): lower > -margin and upper < margin. basis names the method used:
-    "Hsu MCB", "zero residual variance: exact sign-flip bound", "one seed: no verdict",
-    "one configuration". constant: "range" or "dunnett"; critical: Tukey's q or Dunnett's d;
-    half_width: w = q s sqrt(v) or d s sqrt(2 v).
+    None for a single configuration). possibly_best[i]: advantage + w >= 0, the row cannot
+    be ruled out as the best. shortfall[i] = -lower[i]: the largest amount the data still
+    allow the row to trail the best of the others (report it for rows that cannot be
+    separated from the best). within_margin[i] (when a margin is given): lower > -margin
+    and upper < margin. basis: "constrained MCB, studentized range", "Hsu MCB", "zero
+    residual variance: exact sign-flip bound", "one seed: no verdict" or "one
+    configuration". constant: "range" or "dunnett"; critical: Tukey's q or Dunnett's d;
+    half_width: w = q s sqrt(v) or d s sqrt(2 v); residual_sd: s; protocol: its kind.
     """
 
     goal: str
