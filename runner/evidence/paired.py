@@ -123,8 +123,9 @@ class PairedDifference:
     t and the interval (low, high) at ``level`` are None when sd is 0 or n < 2 (a t
     interval of zero width would claim certainty). p_value is the one a verdict should use,
     named by ``basis``: the exact sign-flip test for a fixed split, the corrected t when the
-    split is redrawn per seed (then zero spread gives p = 1 unless the mean is 0 too: no
-    verdict). t_p_value is the corrected t's own p (None without spread).
+    split is redrawn per seed (then zero spread gives p = 1: no verdict, since the overlap
+    of training sets leaves no exact test). t_p_value is the corrected t's own p (None
+    without spread).
     """
 
     n: int
