@@ -19,8 +19,9 @@ import numpy as np
 from runner.evidence.distributions import t_cdf, t_isf, t_sf
 from runner.evidence.paired import min_attainable_p, paired_difference, sign_flip_test
 from runner.evidence.protocols import FIXED, Resampling
+from runner.evidence.stats import holm
 
-__all__ = ["VERDICTS", "ConfigChange", "GateResult", "Pairing", "compare_runs", "holm", "pairing"]
+__all__ = ["VERDICTS", "ConfigChange", "GateResult", "Pairing", "compare_runs", "pairing"]
 
 VERDICTS = ("regressed", "improved", "no shift shown", "too few seeds")
 
@@ -78,16 +79,6 @@ class GateResult:
     min_change: float
     correction: str
     failed: bool
-
-
-def holm(pvalues: Sequence[float]) -> list[float]:
-    """Holm 1979 step-down adjusted p-values, in the input order."""
-    p = np.asarray(pvalues, dtype=float)
-    out, running = np.empty(p.size), 0.0
-    for rank, i in enumerate(np.argsort(p, kind="stable")):
-        running = max(running, min(1.0, (p.size - rank) * p[i]))
-        out[i] = running
-    return out.tolist()
 
 
 def _two_tails(p_up: float, p_down: float) -> float:
