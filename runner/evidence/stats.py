@@ -1,6 +1,8 @@
 """Statistics across seeds: Student-t intervals, paired and Welch tests, Holm's correction.
 
 The formulas are written out here; tests check them against scipy.stats and statsmodels.
+The t distribution comes from runner.evidence.distributions, so importing this module does
+not import scipy.stats (about 1 s); only the Wilcoxon helper imports it, when called.
 """
 from __future__ import annotations
 
@@ -8,7 +10,8 @@ import math
 from typing import Sequence
 
 import numpy as np
-from scipy import stats as _st
+
+from runner.evidence.distributions import t_ppf, t_sf
 
 __all__ = ["summarize", "t_interval", "paired", "welch", "holm", "wilcoxon_p"]
 
@@ -24,7 +27,7 @@ def t_interval(values: Sequence[float], level: float = 0.95):
     if n < 2:
         return mean, None, None
     sd = float(x.std(ddof=1))
-    half = float(_st.t.ppf(0.5 + level / 2, n - 1)) * sd / math.sqrt(n)
+    half = t_ppf(0.5 + level / 2, n - 1) * sd / math.sqrt(n)
     return mean, sd, (mean - half, mean + half)
 
 
@@ -49,7 +52,7 @@ def paired(a: Sequence[float], b: Sequence[float]) -> dict | None:
         t = 0.0 if mean == 0 else math.copysign(math.inf, mean)
     else:
         t = mean / (sd / math.sqrt(n))
-        p = float(2 * _st.t.sf(abs(t), n - 1))
+        p = 2 * t_sf(abs(t), n - 1)
     return {"diff_mean": mean, "ci95": list(ci), "t": t, "df": n - 1, "p_value": p}
 
 
@@ -68,9 +71,9 @@ def welch(new: Sequence[float], old: Sequence[float]) -> dict | None:
                 "df": float(len(x) + len(y) - 2), "p_value": 1.0 if diff == 0 else 0.0}
     df = (vx + vy) ** 2 / (vx ** 2 / (len(x) - 1) + vy ** 2 / (len(y) - 1))
     t = diff / se
-    half = float(_st.t.ppf(0.975, df)) * se
+    half = t_ppf(0.975, df) * se
     return {"diff_mean": diff, "ci95": [diff - half, diff + half], "t": t, "df": float(df),
-            "p_value": float(2 * _st.t.sf(abs(t), df))}
+            "p_value": 2 * t_sf(abs(t), df)}
 
 
 def holm(pvalues: Sequence[float]) -> list[float]:
@@ -95,4 +98,6 @@ def wilcoxon_p(a: Sequence[float], b: Sequence[float]) -> float | None:
         return None
     if np.all(d == 0):
         return 1.0
+    from scipy import stats as _st  # 1 s to import: only when a Wilcoxon p is asked for
+
     return float(_st.wilcoxon(d, zero_method="wilcox", alternative="two-sided").pvalue)
