@@ -16,6 +16,7 @@ Each single-thread figure is the best of ROUNDS interleaved rounds (the machines
 
 Run: python bench/stacking.py   (needs the test extra: psutil comes with dask.distributed)
 """
+
 from __future__ import annotations
 
 import os
@@ -32,8 +33,8 @@ import torch
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from runner.recipe.grid import expand  # noqa: E402
 from runner.execution.planning import execute, make_executor  # noqa: E402
+from runner.recipe.grid import expand  # noqa: E402
 from runner.recipe.loader import parse_recipe  # noqa: E402
 from runner.store.database import Store  # noqa: E402
 
@@ -94,7 +95,7 @@ def matmul_gflops() -> tuple[float, float]:
                 for _ in range(10):
                     mm()
                 best = min(best, (time.perf_counter() - start) / 10)
-            rates.append(2 * 512 ** 3 / best / 1e9)
+            rates.append(2 * 512**3 / best / 1e9)
     return rates[0], rates[1]
 
 
@@ -127,12 +128,19 @@ def plain_torch(grid) -> float:
         train = TensorDataset(torch.tensor(scaler.transform(Xtr), dtype=torch.float32), torch.tensor(ytr))
         loader = DataLoader(train, batch_size=BATCH, shuffle=True)
         Xv, yv = torch.tensor(scaler.transform(Xva), dtype=torch.float32), torch.tensor(yva)
-        model = torch.nn.Sequential(torch.nn.Linear(64, 128), torch.nn.ReLU(), torch.nn.Linear(128, 128),
-                                    torch.nn.ReLU(), torch.nn.Linear(128, 10))
+        model = torch.nn.Sequential(
+            torch.nn.Linear(64, 128),
+            torch.nn.ReLU(),
+            torch.nn.Linear(128, 128),
+            torch.nn.ReLU(),
+            torch.nn.Linear(128, 10),
+        )
         if t["optimizer"] == "adam":
             opt = torch.optim.Adam(model.parameters(), lr=t["lr"])
         else:
-            opt = torch.optim.SGD(model.parameters(), lr=t["lr"], momentum=t["momentum"] if t["optimizer"] == "momentum" else 0)
+            opt = torch.optim.SGD(
+                model.parameters(), lr=t["lr"], momentum=t["momentum"] if t["optimizer"] == "momentum" else 0
+            )
         loss_fn = torch.nn.CrossEntropyLoss()
         for _ in range(EPOCHS):
             model.train()
@@ -140,7 +148,7 @@ def plain_torch(grid) -> float:
                 opt.zero_grad()
                 loss = loss_fn(model(xb), yb)
                 if t["l2"]:
-                    loss = loss + t["l2"] * sum((p ** 2).sum() for n, p in model.named_parameters() if "weight" in n)
+                    loss = loss + t["l2"] * sum((p**2).sum() for n, p in model.named_parameters() if "weight" in n)
                 loss.backward()
                 opt.step()
             model.eval()
@@ -166,10 +174,19 @@ def sklearn_mlp(grid) -> float:
             Xtr, Xva, ytr, yva = train_test_split(X, ds.y, test_size=0.2, random_state=job.seed, stratify=ds.y)
             scaler = StandardScaler().fit(Xtr)
             solver = "adam" if t["optimizer"] == "adam" else "sgd"
-            clf = MLPClassifier(hidden_layer_sizes=HIDDEN, solver=solver, batch_size=BATCH, max_iter=EPOCHS,
-                                learning_rate_init=t["lr"], alpha=2 * t["l2"], random_state=job.seed,
-                                momentum=t["momentum"] if t["optimizer"] == "momentum" else 0.0,
-                                nesterovs_momentum=False, n_iter_no_change=EPOCHS + 1, tol=0.0)
+            clf = MLPClassifier(
+                hidden_layer_sizes=HIDDEN,
+                solver=solver,
+                batch_size=BATCH,
+                max_iter=EPOCHS,
+                learning_rate_init=t["lr"],
+                alpha=2 * t["l2"],
+                random_state=job.seed,
+                momentum=t["momentum"] if t["optimizer"] == "momentum" else 0.0,
+                nesterovs_momentum=False,
+                n_iter_no_change=EPOCHS + 1,
+                tol=0.0,
+            )
             clf.fit(scaler.transform(Xtr), ytr)
             clf.score(scaler.transform(Xva), yva)
     return time.perf_counter() - start
@@ -208,20 +225,19 @@ def tool(grid, workers: int, stack: bool):
     from runner.training import stacked as stacking
 
     stacking._SPLIT_CACHE.clear()  # each run starts as a fresh `recipe run` would
-    with tempfile.TemporaryDirectory() as tmp:
-        with Store(Path(tmp) / "b.sqlite") as db:
-            executor = make_executor("local", workers)
-            peak = PeakRSS() if workers > 1 else None
-            start = time.perf_counter()
-            if peak:
-                with peak:
-                    execute(grid, db, list(grid), executor, stack=stack)
-            else:
+    with tempfile.TemporaryDirectory() as tmp, Store(Path(tmp) / "b.sqlite") as db:
+        executor = make_executor("local", workers)
+        peak = PeakRSS() if workers > 1 else None
+        start = time.perf_counter()
+        if peak:
+            with peak:
                 execute(grid, db, list(grid), executor, stack=stack)
-            wall = time.perf_counter() - start
-            trained = sum(r.duration for r in db.jobs())
-            statuses = {r.status for r in db.jobs()}
-            assert statuses == {"done"}, statuses
+        else:
+            execute(grid, db, list(grid), executor, stack=stack)
+        wall = time.perf_counter() - start
+        trained = sum(r.duration for r in db.jobs())
+        statuses = {r.status for r in db.jobs()}
+        assert statuses == {"done"}, statuses
     torch.set_num_threads(1)
     return wall, trained, (peak.peak if peak else None)
 
@@ -246,12 +262,14 @@ class ProductClock:
                 self.seconds += time.perf_counter() - start
                 key = (name, *(_layout(a) for a in (*args, kwargs["out"])))
                 self.calls[key] = self.calls.get(key, 0) + 1
+
         return call
 
     def __enter__(self):
         import types
 
         import numpy as np
+
         from runner.training import stacked_network as stacked_mlp
 
         self._module, self._saved = stacked_mlp, (stacked_mlp.np, stacked_mlp.torch)
@@ -324,16 +342,17 @@ def main() -> None:
     rate = max(torch_rate, numpy_rate)  # the bound uses the faster of the two
     cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
     print(f"# recipe benchmark, {time.strftime('%Y-%m-%d')}, {cores} cores, torch {torch.__version__}")
-    print(f"single-thread matmul rate (512x512 float32, best of 5): torch {torch_rate:.1f} GFLOP/s, "
-          f"numpy's BLAS {numpy_rate:.1f} GFLOP/s")
+    print(
+        f"single-thread matmul rate (512x512 float32, best of 5): torch {torch_rate:.1f} GFLOP/s, "
+        f"numpy's BLAS {numpy_rate:.1f} GFLOP/s"
+    )
     for name, text in (("A: 16 x Adam", GRID_A), ("B: 3 optimizers x 2 L2 x 3 seeds", GRID_B)):
         grid = grid_of(text)
         jobs = len(grid)
         ds = next(iter(grid.datasets.values()))
         n_val = int(round(0.2 * len(ds.y)))
         bound = jobs * flops_per_job(len(ds.y) - n_val, n_val) / (rate * 1e9)
-        print(f"\ngrid {name}: {jobs} jobs; arithmetic-bound time {bound:.2f} s "
-              f"({bound / jobs * 1000:.0f} ms per job)")
+        print(f"\ngrid {name}: {jobs} jobs; arithmetic-bound time {bound:.2f} s ({bound / jobs * 1000:.0f} ms per job)")
         # Interleaved rounds, best of ROUNDS per method: this machine is shared, and a burst
         # of load in one measurement would otherwise decide a ratio.
         results = {label: float("inf") for label in METHODS}
@@ -348,8 +367,10 @@ def main() -> None:
         base = results["plain PyTorch loop"]
         print(f"one thread, one process (best of {ROUNDS} interleaved rounds):")
         for label, seconds in results.items():
-            print(f"  {label:<24} {seconds:7.2f} s  {jobs / seconds * 60:8.0f} jobs/min  "
-                  f"{base / seconds:5.2f}x plain loop  {results['sklearn MLPClassifier'] / seconds:5.2f}x MLPClassifier")
+            print(
+                f"  {label:<24} {seconds:7.2f} s  {jobs / seconds * 60:8.0f} jobs/min  "
+                f"{base / seconds:5.2f}x plain loop  {results['sklearn MLPClassifier'] / seconds:5.2f}x MLPClassifier"
+            )
         overhead = sorted(overheads)[len(overheads) // 2]
         print(f"  tool overhead per job (scheduling, storing) beyond its training time: {overhead * 100:.1f}% (median)")
         print(f"  stacked time / arithmetic bound: {results['tool, stacked'] / bound:.1f}")
@@ -357,21 +378,29 @@ def main() -> None:
         with ProductClock() as clock:
             wall = tool(grid, 1, stack=True)[0]
         budget = results["sklearn MLPClassifier"] / 3
-        print(f"  stacked, one more run with its matrix products timed in place: {wall:.2f} s, of which products "
-              f"{clock.seconds:.2f} s ({clock.seconds / wall * 100:.0f}%), everything else {wall - clock.seconds:.2f} s; "
-              f"3x MLPClassifier allows {budget:.2f} s in all")
+        print(
+            f"  stacked, one more run with its matrix products timed in place: {wall:.2f} s, of which products "
+            f"{clock.seconds:.2f} s ({clock.seconds / wall * 100:.0f}%), everything else {wall - clock.seconds:.2f} s; "
+            f"3x MLPClassifier allows {budget:.2f} s in all"
+        )
         alone = clock.replay()
-        print(f"  the same product calls replayed alone (warm caches, best of 3): {alone:.2f} s, "
-              f"{alone / budget * 100:.0f}% of that allowance, leaving {budget - alone:.2f} s for everything else")
+        print(
+            f"  the same product calls replayed alone (warm caches, best of 3): {alone:.2f} s, "
+            f"{alone / budget * 100:.0f}% of that allowance, leaving {budget - alone:.2f} s for everything else"
+        )
         if name.startswith("A"):
-            print(f"worker fork server start-up, once per `recipe run` (it overlaps the main process's own "
-                  f"start-up there): {fork_server_startup():.1f} s; not in the timings below")
+            print(
+                f"worker fork server start-up, once per `recipe run` (it overlaps the main process's own "
+                f"start-up there): {fork_server_startup():.1f} s; not in the timings below"
+            )
         print(f"default worker count ({cores}):")
         for stack in (False, True):
             wall, _, peak = tool(grid, cores, stack=stack)
             label = "tool, stacked" if stack else "tool, no stacking"
-            print(f"  {label:<24} {wall:7.2f} s  {jobs / wall * 60:8.0f} jobs/min  {base / wall:5.2f}x plain loop"
-                  f"  peak worker RSS {peak / 2**20:.0f} MB")
+            print(
+                f"  {label:<24} {wall:7.2f} s  {jobs / wall * 60:8.0f} jobs/min  {base / wall:5.2f}x plain loop"
+                f"  peak worker RSS {peak / 2**20:.0f} MB"
+            )
     print(f"\nthis process's peak RSS: {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MB")
 
 

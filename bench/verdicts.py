@@ -25,23 +25,24 @@ It prints, per setting:
 
 Run: python bench/verdicts.py [--quick] [--seed N]
 """
+
 from __future__ import annotations
 
 import argparse
 import math
-from concurrent.futures import ProcessPoolExecutor
 import sys
 import time
+from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
 
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from runner.evidence import stats as old_stats  # noqa: E402
-from runner.evidence.gate import compare_runs  # noqa: E402
-from runner.evidence.protocols import FIXED, Resampling  # noqa: E402
-from runner.evidence.selection import possibly_best  # noqa: E402
+from runner.evidence import stats as old_stats
+from runner.evidence.gate import compare_runs
+from runner.evidence.protocols import FIXED, Resampling
+from runner.evidence.selection import possibly_best
 
 CONFIGS = (4, 8, 16)
 SEEDS = (2, 3, 5, 10)
@@ -56,7 +57,7 @@ def continuous(rng, k, n, shift):
 
 
 def _acc_sd(rows):
-    return math.sqrt(0.005 ** 2 + 0.9 * 0.1 / rows)
+    return math.sqrt(0.005**2 + 0.9 * 0.1 / rows)
 
 
 def accuracy(rows):
@@ -65,6 +66,7 @@ def accuracy(rows):
         g = rng.normal(0, 0.005, (k, n)) if g is None else g
         p = np.clip(0.9 + shift[:, None] * sd + rng.normal(0, 0.01, n)[None, :] + g, 0, 1)
         return rng.binomial(rows, p) / rows, sd
+
     return draw
 
 
@@ -148,9 +150,13 @@ def _grade(rate, goal, reps, upper):
     return "PASS" if met else ("AT LEVEL" if near else "FAIL")
 
 
-METRICS = {"continuous": (continuous, FIXED, True), "accuracy/100": (accuracy(100), FIXED, True),
-           "accuracy/500": (accuracy(500), FIXED, True), "resample, naive": (resampled, FIXED, False),
-           "resample, corrected": (resampled, RESAMPLE, False)}
+METRICS = {
+    "continuous": (continuous, FIXED, True),
+    "accuracy/100": (accuracy(100), FIXED, True),
+    "accuracy/500": (accuracy(500), FIXED, True),
+    "resample, naive": (resampled, FIXED, False),
+    "resample, corrected": (resampled, RESAMPLE, False),
+}
 GATE_METRICS = {"continuous": None, "accuracy/100": 100, "accuracy/500": 500}
 
 
@@ -188,8 +194,10 @@ def main(argv=None):
     print(f"  Monte Carlo standard error of a rate near 0.05: {math.sqrt(0.05 * 0.95 / reps):.4f}; AT LEVEL = misses")
     print(f"  the goal by less than {SLACK} standard errors (the range constant's rate is exactly 0.05 for")
     print("  normal data when all configurations are equal; ~70 rates are graded at once)\n")
-    header = (f"{'metric':<20} {'k':>3} {'n':>3} | {'equal':>6} {'cover':>6} {'size':>6} | "
-              f"{'equal':>6} {'cover':>6} {'size':>6} | {'old':>6} | goals (range)")
+    header = (
+        f"{'metric':<20} {'k':>3} {'n':>3} | {'equal':>6} {'cover':>6} {'size':>6} | "
+        f"{'equal':>6} {'cover':>6} {'size':>6} | {'old':>6} | goals (range)"
+    )
     print(f"{'':<28} | {'range (default)':^20} | {'dunnett (Hsu)':^20} |")
     print(header)
     print("-" * len(header))
@@ -203,13 +211,18 @@ def main(argv=None):
         if not graded:
             marks += " (not graded: variance left uncorrected on purpose)"
         old_text = "-" if old is None else f"{old:.3f}"
-        print(f"{name:<20} {k:>3} {n:>3} | {eq:>6.3f} {cov:>6.3f} {size:>6.2f} | "
-              f"{deq:>6.3f} {dcov:>6.3f} {dsize:>6.2f} | {old_text:>6} | {marks}")
-    graded_rates = [rates["range"][0] for (name, *_), (rates, _) in zip(sel_tasks, sel_results)
-              if name != "resample, naive"]
+        print(
+            f"{name:<20} {k:>3} {n:>3} | {eq:>6.3f} {cov:>6.3f} {size:>6.2f} | "
+            f"{deq:>6.3f} {dcov:>6.3f} {dsize:>6.2f} | {old_text:>6} | {marks}"
+        )
+    graded_rates = [
+        rates["range"][0] for (name, *_), (rates, _) in zip(sel_tasks, sel_results) if name != "resample, naive"
+    ]
     pooled = sum(graded_rates) / len(graded_rates)
     pooled_se = math.sqrt(pooled * (1 - pooled) / (reps * len(graded_rates)))
-    print(f"\nrange constant, all graded rows pooled: equal {pooled:.4f} (standard error {pooled_se:.4f}; goal <= 0.05)")
+    print(
+        f"\nrange constant, all graded rows pooled: equal {pooled:.4f} (standard error {pooled_se:.4f}; goal <= 0.05)"
+    )
     print(f"\nGate: 16 configurations run twice on the same seeds, {gate_reps} pairs of runs per row")
     print("  alarm = any configuration called changed when none changed (goal <= 0.05)")
     print("  power = the one configuration changed by 2 sd of its paired differences is called changed\n")

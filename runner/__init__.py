@@ -8,17 +8,37 @@ package (a worker's ``runner.execution.executors``, the CLI's ``runner.errors``)
 torch, scipy.stats and scikit-learn unless that module needs them: ``recipe --help`` and
 a worker's start-up stay quick.
 """
+
 from __future__ import annotations
 
 import importlib
 
-__all__ = ["DataError", "RecipeError", "StoreError", "UserError", "Grid", "expand", "Recipe",
-           "load_recipe", "Store", "leaderboard"]
+__all__ = [
+    "DataError",
+    "Grid",
+    "Recipe",
+    "RecipeError",
+    "Store",
+    "StoreError",
+    "UserError",
+    "expand",
+    "leaderboard",
+    "load_recipe",
+]
 __version__ = "0.1.0"
 
-_HOME = {"DataError": "errors", "RecipeError": "errors", "StoreError": "errors", "UserError": "errors",
-         "Grid": "recipe.grid", "expand": "recipe.grid", "Recipe": "recipe.loader",
-         "load_recipe": "recipe.loader", "Store": "store.database", "leaderboard": "evidence.leaderboard"}
+_HOME = {
+    "DataError": "errors",
+    "RecipeError": "errors",
+    "StoreError": "errors",
+    "UserError": "errors",
+    "Grid": "recipe.grid",
+    "expand": "recipe.grid",
+    "Recipe": "recipe.loader",
+    "load_recipe": "recipe.loader",
+    "Store": "store.database",
+    "leaderboard": "evidence.leaderboard",
+}
 
 
 def __getattr__(name: str):

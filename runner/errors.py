@@ -3,9 +3,10 @@
 They carry fields and are turned into text only at the command line (see
 ``UserError.message``). The CLI prints them as one paragraph and exits 2.
 """
+
 from __future__ import annotations
 
-__all__ = ["UserError", "RecipeError", "DataError", "StoreError", "MISSING"]
+__all__ = ["MISSING", "DataError", "RecipeError", "StoreError", "UserError"]
 
 
 class _Missing:
@@ -19,9 +20,17 @@ MISSING = _Missing()
 class UserError(Exception):
     """A mistake in the user's input, not a bug in the tool."""
 
-    def __init__(self, problem: str, *, where: str | None = None, key: str | None = None,
-                 line: int | None = None, value: object = MISSING, allowed: str | None = None,
-                 hint: str | None = None):
+    def __init__(
+        self,
+        problem: str,
+        *,
+        where: str | None = None,
+        key: str | None = None,
+        line: int | None = None,
+        value: object = MISSING,
+        allowed: str | None = None,
+        hint: str | None = None,
+    ):
         self.problem = problem
         self.where = where
         self.key = key
@@ -46,8 +55,7 @@ class UserError(Exception):
             text += f". {self.hint}"
         return text
 
-    def located(self, where: str | None = None, line: int | None = None,
-                key: str | None = None) -> "UserError":
+    def located(self, where: str | None = None, line: int | None = None, key: str | None = None) -> UserError:
         """Fill in location fields that were unknown where the error was raised."""
         if where and not self.where:
             self.where = where

@@ -35,7 +35,9 @@ PYTHON = sys.executable
 @pytest.fixture
 def tiny_recipe(tmp_path):
     """A fast iris grid: 2 optimizers x 2 seeds, small MLP."""
-    return write_recipe(tmp_path, """
+    return write_recipe(
+        tmp_path,
+        """
         name = "tiny"
         seeds = [1, 2]
         [data]
@@ -48,7 +50,8 @@ def tiny_recipe(tmp_path):
         lr = 0.01
         [factors]
         "train.optimizer" = ["sgd", "adam"]
-    """)
+    """,
+    )
 
 
 def stored_metrics(store) -> list[tuple]:
@@ -57,5 +60,8 @@ def stored_metrics(store) -> list[tuple]:
     import sqlite3
 
     with sqlite3.connect(store) as c:
-        return sorted(c.execute("SELECT j.seed, j.levels, m.split, m.name, m.value FROM metrics m "
-                                "JOIN jobs j ON j.key = m.job_key"))
+        return sorted(
+            c.execute(
+                "SELECT j.seed, j.levels, m.split, m.name, m.value FROM metrics m JOIN jobs j ON j.key = m.job_key"
+            )
+        )

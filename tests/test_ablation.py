@@ -5,16 +5,15 @@ table computable by hand.
 """
 
 import pytest
+from conftest import DATA, write_recipe
 
 from runner.evidence.ablation import ablation
+from runner.evidence.leaderboard import leaderboard
+from runner.outputs.text import render, render_ablation
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
-from runner.outputs.text import render, render_ablation
 from runner.store.database import Store
-from runner.evidence.leaderboard import leaderboard
 from runner.training.job import JobResult
-
-from conftest import DATA, write_recipe
 
 # (optimizer, l2) -> val accuracy for seeds 1, 2, 3 (invented values)
 VALUES = {
@@ -45,9 +44,14 @@ def known_store(tmp_path):
     for job in grid:
         a = job.config.assignments
         v = VALUES[(a["train.optimizer"], a["train.l2"])][grid.recipe.seeds.index(job.seed)]
-        result = JobResult(key=job.key, status="done", metrics={"val": {"accuracy": v}, "test": {"accuracy": v - 0.01}},
-                           curves={"val_accuracy": [v / 2, v], "train_loss": [1.0, 0.5]},
-                           diagnostics={"gap": 0.02, "zero_fraction": 0.0, "near_zero_fraction": 0.1}, epochs_run=2)
+        result = JobResult(
+            key=job.key,
+            status="done",
+            metrics={"val": {"accuracy": v}, "test": {"accuracy": v - 0.01}},
+            curves={"val_accuracy": [v / 2, v], "train_loss": [1.0, 0.5]},
+            diagnostics={"gap": 0.02, "zero_fraction": 0.0, "near_zero_fraction": 0.1},
+            epochs_run=2,
+        )
         store.write_result(job, grid.labels(job.config), grid.recipe.hash, result)
     return grid, store
 
@@ -68,7 +72,7 @@ def test_main_effect_equals_hand_computation(tmp_path):
     # matched differences adam - sgd, averaged within each seed: 0.085, 0.075, 0.085
     d = [0.085, 0.075, 0.085]
     sd = (sum((x - mean(d)) ** 2 for x in d) / 2) ** 0.5
-    half = T_2DF * sd / 3 ** 0.5
+    half = T_2DF * sd / 3**0.5
     got = adam["diff_vs_baseline"]
     assert got["diff_mean"] == pytest.approx(mean(d))
     assert got["ci95"] == [pytest.approx(mean(d) - half, abs=1e-5), pytest.approx(mean(d) + half, abs=1e-5)]
@@ -77,7 +81,7 @@ def test_main_effect_equals_hand_computation(tmp_path):
     # the level's own interval over its three per-seed means
     ps = [0.805, 0.83, 0.79]
     sd = (sum((x - mean(ps)) ** 2 for x in ps) / 2) ** 0.5
-    assert sgd["ci95"][1] - sgd["ci95"][0] == pytest.approx(2 * T_2DF * sd / 3 ** 0.5, abs=1e-5)
+    assert sgd["ci95"][1] - sgd["ci95"][0] == pytest.approx(2 * T_2DF * sd / 3**0.5, abs=1e-5)
 
 
 def test_one_at_a_time_and_interaction(tmp_path):

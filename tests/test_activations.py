@@ -1,4 +1,5 @@
 """activations: derivative facts of the trade, computed by autograd."""
+
 import torch
 
 from runner.components.activations import ACTIVATIONS, make_activation

@@ -1,5 +1,6 @@
 """blocks: the two-way analysis with seeds as blocks against statsmodels' anova_lm and OLS
 intervals, Scheffe intervals against scipy.stats.f, matched effects against scipy.stats."""
+
 import math
 
 import numpy as np
@@ -22,8 +23,9 @@ def _table(a, b, n, seed, interaction=0.0):
 
 def _fit(y):
     a, b, n = y.shape
-    frame = pd.DataFrame([{"y": y[i, j, s], "A": i, "B": j, "seed": s}
-                          for i in range(a) for j in range(b) for s in range(n)])
+    frame = pd.DataFrame(
+        [{"y": y[i, j, s], "A": i, "B": j, "seed": s} for i in range(a) for j in range(b) for s in range(n)]
+    )
     return smf.ols("y ~ C(seed) + C(A) * C(B)", frame).fit()
 
 
@@ -49,8 +51,10 @@ def test_two_by_two_contrast_interval_is_the_ols_interval():
     name = "C(A)[T.1]:C(B)[T.1]"
     (c,) = interaction_contrasts(y)
     assert c.estimate == pytest.approx(fit.params[name], rel=1e-10)
-    assert (c.low, c.high) == (pytest.approx(fit.conf_int().loc[name, 0], rel=1e-9),
-                               pytest.approx(fit.conf_int().loc[name, 1], rel=1e-9))
+    assert (c.low, c.high) == (
+        pytest.approx(fit.conf_int().loc[name, 0], rel=1e-9),
+        pytest.approx(fit.conf_int().loc[name, 1], rel=1e-9),
+    )
 
 
 def test_scheffe_half_width_for_larger_tables():
@@ -97,8 +101,9 @@ def test_matched_difference_is_a_one_sample_t_on_seed_means():
     of the matched differences; interval equals scipy.stats.ttest_1samp on those means."""
     rng = np.random.default_rng(4)
     y = rng.normal(0, 1, (3, 2, 2, 6))
-    per_seed = np.array([np.mean([y[2, j, k, s] - y[0, j, k, s] for j in range(2) for k in range(2)])
-                         for s in range(6)])
+    per_seed = np.array(
+        [np.mean([y[2, j, k, s] - y[0, j, k, s] for j in range(2) for k in range(2)]) for s in range(6)]
+    )
     out = matched_difference(y, axis=0, level=2, base=0)
     ref = st.ttest_1samp(per_seed, 0)
     ci = ref.confidence_interval(0.95)

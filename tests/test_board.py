@@ -1,13 +1,13 @@
 """summary/render: the leaderboard from the store, in every format, without training."""
+
 import csv
 import io
 import json
 
 import numpy as np
 import pytest
-from scipy import stats as st
-
 from conftest import invoke
+from scipy import stats as st
 
 
 @pytest.fixture

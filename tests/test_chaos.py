@@ -1,6 +1,7 @@
 """Chaos: the runner is SIGKILLed at randomized moments (fixed seed) until the grid is done.
 Every job is finished exactly once, the numbers equal an uninterrupted run, and the store
 passes SQLite's integrity check after every kill."""
+
 import os
 import signal
 import sqlite3
@@ -8,8 +9,7 @@ import subprocess
 import time
 
 import numpy as np
-
-from conftest import stored_metrics, PYTHON, invoke, subprocess_env, write_recipe
+from conftest import PYTHON, invoke, stored_metrics, subprocess_env, write_recipe
 
 RECIPE = """
     name = "chaos"
@@ -41,9 +41,13 @@ def test_random_kills_then_complete(tmp_path):
     seen: dict = {}
     kills = 0
     for delay in rng.uniform(1.5, 5.0, size=8):
-        proc = subprocess.Popen([PYTHON, "-m", "runner", "run", str(path), "--store", str(store),
-                                 "--workers", "2", "-q"], env=subprocess_env(), start_new_session=True,
-                                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        proc = subprocess.Popen(
+            [PYTHON, "-m", "runner", "run", str(path), "--store", str(store), "--workers", "2", "-q"],
+            env=subprocess_env(),
+            start_new_session=True,
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
+        )
         time.sleep(delay)
         if proc.poll() is None:
             os.killpg(proc.pid, signal.SIGKILL)

@@ -1,13 +1,13 @@
 """checkpoint: a job killed part-way resumes from its last checkpoint and ends bit for bit
 where an uninterrupted run ends."""
+
 import sqlite3
 import subprocess
 
 import torch
+from conftest import PYTHON, invoke, subprocess_env, write_recipe
 
 from runner.training import checkpoints as checkpoint
-
-from conftest import PYTHON, invoke, subprocess_env, write_recipe
 
 RECIPE = """
     name = "ckpt"
@@ -41,8 +41,13 @@ def test_killed_job_resumes_from_checkpoint_bit_for_bit(tmp_path):
     env = subprocess_env()
     env.update(RECIPE_FAULT="kill@7", RECIPE_FAULT_ONCE=str(tmp_path / "fired"))
     # The worker is SIGKILLed at the start of epoch 8 (index 7); the last checkpoint is epoch 6.
-    proc = subprocess.run([PYTHON, "-m", "runner", "run", str(path), "--store", str(killed), "--workers", "2",
-                           "-q"], env=env, capture_output=True, text=True, timeout=180)
+    proc = subprocess.run(
+        [PYTHON, "-m", "runner", "run", str(path), "--store", str(killed), "--workers", "2", "-q"],
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=180,
+    )
     assert proc.returncode == 0, proc.stderr
     assert (tmp_path / "fired").exists()
     assert invoke("run", path, "--store", clean, "--workers", 1, "-q").exit_code == 0
@@ -55,8 +60,13 @@ def test_killed_job_resumes_from_checkpoint_bit_for_bit(tmp_path):
 
 def test_checkpoint_file_loads_with_weights_only(tmp_path):
     """Checkpoints hold only tensors and plain values: torch.load(weights_only=True) reads them."""
-    state = {"model": {"w": torch.ones(2)}, "rng": torch.Generator().get_state(), "curves": {"a": [1.0]},
-             "best": None, "epoch": 3}
+    state = {
+        "model": {"w": torch.ones(2)},
+        "rng": torch.Generator().get_state(),
+        "curves": {"a": [1.0]},
+        "best": None,
+        "epoch": 3,
+    }
     target = tmp_path / "x.pt"
     checkpoint.save(str(target), state)
     back = torch.load(target, weights_only=True)

@@ -1,11 +1,12 @@
 """check, new, completion and progress: the commands around a run."""
+
 import io
 import re
 import subprocess
 
-from runner.execution.progress import Progress
-
 from conftest import DATA, PYTHON, ROOT, invoke, subprocess_env, write_recipe
+
+from runner.execution.progress import Progress
 
 RECIPE = """
     name = "plan"
@@ -81,8 +82,7 @@ def test_progress_live_line_and_plain_lines():
     plain = io.StringIO()
     p = Progress(2, "val.accuracy", "max", stream=plain, live=False, verbose=True)
     p.update("sgd", 3, "failed", None, 0.5, "ValueError: x")
-    assert plain.getvalue().splitlines() == [
-        "[1/2] failed   sgd seed 3  (0.5s; ~0:00 left)", "    ValueError: x"]
+    assert plain.getvalue().splitlines() == ["[1/2] failed   sgd seed 3  (0.5s; ~0:00 left)", "    ValueError: x"]
     p.update("adam", 1, "done", 0.9, 0.045)  # a stacked job's share of its group's time
     assert plain.getvalue().splitlines()[-1].startswith("[2/2] done     adam seed 1 val.accuracy=0.9000 (0.045s;")
     quiet = io.StringIO()
@@ -109,6 +109,8 @@ def test_describe_counts_groups_and_single_jobs():
     from runner.training.grouping import Stacked
     from runner.training.grouping import training_note as describe
 
-    assert describe([Stacked("abcdefghi"), Stacked("abcdefghij"), ("x",), ("y",)]) == \
-        "training 2 stacked groups of 9-10 jobs, 2 jobs one at a time"
+    assert (
+        describe([Stacked("abcdefghi"), Stacked("abcdefghij"), ("x",), ("y",)])
+        == "training 2 stacked groups of 9-10 jobs, 2 jobs one at a time"
+    )
     assert describe([Stacked("a")]) == "training 1 stacked group of 1 job"

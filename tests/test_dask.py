@@ -1,5 +1,6 @@
 """dask: a real LocalCluster with two worker processes on 127.0.0.1; one worker is killed
 mid-grid; the grid completes with metrics bitwise equal to a local run."""
+
 import os
 import signal
 
@@ -7,12 +8,12 @@ import pytest
 
 distributed = pytest.importorskip("distributed")
 
-from runner.recipe.grid import expand  # noqa: E402
+from conftest import invoke, stored_metrics, write_recipe  # noqa: E402
+
 from runner.execution.planning import execute, make_executor  # noqa: E402
+from runner.recipe.grid import expand  # noqa: E402
 from runner.recipe.loader import load_recipe  # noqa: E402
 from runner.store.database import Store  # noqa: E402
-
-from conftest import stored_metrics, invoke, write_recipe  # noqa: E402
 
 RECIPE = """
     name = "dask"
@@ -32,8 +33,9 @@ RECIPE = """
 
 def test_dask_cluster_with_a_killed_worker_matches_local(tmp_path):
     path = write_recipe(tmp_path, RECIPE)
-    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                                       dashboard_address=None, silence_logs=40)
+    cluster = distributed.LocalCluster(
+        n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1", dashboard_address=None, silence_logs=40
+    )
     client = distributed.Client(cluster)
     try:
         pids = list(client.run(os.getpid).values())
@@ -48,8 +50,7 @@ def test_dask_cluster_with_a_killed_worker_matches_local(tmp_path):
 
         store_path = tmp_path / "dask.sqlite"
         with Store(store_path) as db:
-            executor = make_executor(f"dask://{cluster.scheduler_address.split('://')[1]}", workers=2,
-                                     max_attempts=3)
+            executor = make_executor(f"dask://{cluster.scheduler_address.split('://')[1]}", workers=2, max_attempts=3)
             execute(grid, db, list(grid), executor, on_stored=kill_one)
             statuses = [r.status for r in db.jobs()]
         assert killed and len(statuses) == 6 and set(statuses) == {"done"}
@@ -78,7 +79,9 @@ def test_unreachable_scheduler_is_a_clear_error(tmp_path):
 
 
 def test_run_table_in_the_recipe_selects_dask_local(tmp_path):
-    path = write_recipe(tmp_path, RECIPE.replace("epochs = 30", "epochs = 2") + '\n[run]\non = "dask-local"\nworkers = 2\n')
+    path = write_recipe(
+        tmp_path, RECIPE.replace("epochs = 30", "epochs = 2") + '\n[run]\non = "dask-local"\nworkers = 2\n'
+    )
     result = invoke("run", path, "--store", tmp_path / "s.sqlite", "-q")
     assert result.exit_code == 0, result.stderr
     bad = write_recipe(tmp_path, RECIPE + '\n[run]\non = "cluster"\n', "bad.toml")

@@ -1,14 +1,14 @@
 """data: bundled datasets, CSV parsing, seeded splits, scaling fitted on training rows only."""
+
 import numpy as np
 import pytest
+from conftest import DATA
 from sklearn.model_selection import train_test_split
 
 from runner.datasets.sources import load_dataset
 from runner.datasets.splits import split_and_scale
 from runner.errors import DataError
 from runner.recipe.loader import resolve
-
-from conftest import DATA
 
 
 def settings(**data):
@@ -25,8 +25,10 @@ def test_digits_shape_and_classes():
 
 def test_bundled_shapes():
     """Shapes of the bundled sets: iris 150x4, wine 178x13, breast_cancer 569x30, diabetes 442x10."""
-    shapes = {name: load_dataset(settings(source=name), DATA).X.shape
-              for name in ("iris", "wine", "breast_cancer", "diabetes")}
+    shapes = {
+        name: load_dataset(settings(source=name), DATA).X.shape
+        for name in ("iris", "wine", "breast_cancer", "diabetes")
+    }
     assert shapes == {"iris": (150, 4), "wine": (178, 13), "breast_cancer": (569, 30), "diabetes": (442, 10)}
     assert load_dataset(settings(source="diabetes"), DATA).task == "regression"
 
@@ -51,8 +53,9 @@ def test_split_rows_are_exactly_sklearn_train_test_split(stratify):
     sp = split_and_scale(ds, data, seed=7)
     idx = np.arange(len(ds.y))
     rest, test_idx = train_test_split(idx, test_size=0.25, random_state=7, stratify=ds.y if stratify else None)
-    train_idx, val_idx = train_test_split(rest, test_size=0.2 / 0.75, random_state=7,
-                                          stratify=ds.y[rest] if stratify else None)
+    train_idx, val_idx = train_test_split(
+        rest, test_size=0.2 / 0.75, random_state=7, stratify=ds.y[rest] if stratify else None
+    )
     for got, rows in ((sp.y_train, train_idx), (sp.y_val, val_idx), (sp.y_test, test_idx)):
         assert np.array_equal(got, ds.y[rows])
     flat = ds.X.reshape(len(ds.X), -1)

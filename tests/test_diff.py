@@ -1,10 +1,10 @@
 """diff: two leaderboards matched by level labels, Welch intervals, verdicts, CI gate."""
+
 import json
 
 import pytest
-from scipy import stats as st
-
 from conftest import invoke, write_recipe
+from scipy import stats as st
 
 RECIPE = """
     name = "cmp"

@@ -1,5 +1,6 @@
 """distributions: normal, t and F functions held to scipy.stats (and mpmath where scipy's own
 quantile is less precise than ours)."""
+
 import math
 
 import numpy as np

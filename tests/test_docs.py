@@ -1,7 +1,8 @@
 """The README's reference stays true: every setting is documented, the test command is CI's."""
-from runner.recipe.settings import all_paths
 
 from conftest import ROOT
+
+from runner.recipe.settings import all_paths
 
 
 def test_readme_documents_every_setting():

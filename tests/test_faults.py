@@ -2,6 +2,7 @@
 
 Faults are real: worker processes exit, segfault or hang (runner/faults.py makes them do so
 at a chosen epoch); the runner gets real signals."""
+
 import json
 import os
 import signal
@@ -11,8 +12,7 @@ import subprocess
 import textwrap
 import time
 
-
-from conftest import stored_metrics, PYTHON, invoke, subprocess_env, write_recipe
+from conftest import PYTHON, invoke, stored_metrics, subprocess_env, write_recipe
 
 RECIPE = """
     name = "faults"
@@ -35,8 +35,14 @@ def recipe(tmp_path, epochs=6):
 def start(args, **env):
     e = subprocess_env()
     e.update(env)
-    return subprocess.Popen([PYTHON, "-m", "runner", "run", *map(str, args)], env=e, start_new_session=True,
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    return subprocess.Popen(
+        [PYTHON, "-m", "runner", "run", *map(str, args)],
+        env=e,
+        start_new_session=True,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
 
 
 def rows(store):
@@ -114,8 +120,7 @@ def test_ctrl_c_while_the_command_line_imports_exits_130(tmp_path):
         from runner.cli import main
         main()
     """)
-    proc = subprocess.run([PYTHON, "-c", script], env=subprocess_env(), capture_output=True, text=True,
-                          timeout=60)
+    proc = subprocess.run([PYTHON, "-c", script], env=subprocess_env(), capture_output=True, text=True, timeout=60)
     assert proc.returncode == 130, proc.stderr
     assert "Traceback" not in proc.stderr and "Interrupted before anything ran" in proc.stderr
 
@@ -123,8 +128,9 @@ def test_ctrl_c_while_the_command_line_imports_exits_130(tmp_path):
 def test_worker_death_is_retried_and_result_is_unchanged(tmp_path):
     path = recipe(tmp_path)
     store, clean = tmp_path / "s.sqlite", tmp_path / "clean.sqlite"
-    proc = start([path, "--store", store, "--workers", 2, "-q"], RECIPE_FAULT="exit@2",
-                 RECIPE_FAULT_ONCE=str(tmp_path / "fired"))
+    proc = start(
+        [path, "--store", store, "--workers", 2, "-q"], RECIPE_FAULT="exit@2", RECIPE_FAULT_ONCE=str(tmp_path / "fired")
+    )
     proc.communicate(timeout=120)
     assert proc.returncode == 0
     got = rows(store)
@@ -160,8 +166,11 @@ def test_job_time_limit_in_the_recipe(tmp_path):
 def test_stuck_worker_is_killed_past_the_hard_limit(tmp_path):
     path = recipe(tmp_path)
     store = tmp_path / "s.sqlite"
-    proc = start([path, "--store", store, "--workers", 2, "--time-limit", 1, "-q"], RECIPE_FAULT="hang@1",
-                 RECIPE_FAULT_ONCE=str(tmp_path / "fired"))
+    proc = start(
+        [path, "--store", store, "--workers", 2, "--time-limit", 1, "-q"],
+        RECIPE_FAULT="hang@1",
+        RECIPE_FAULT_ONCE=str(tmp_path / "fired"),
+    )
     proc.communicate(timeout=120)
     assert proc.returncode == 0
     statuses = sorted(v[0] for v in rows(store).values())
@@ -200,8 +209,10 @@ def test_lock_with_old_heartbeat_from_another_host_is_stale(tmp_path):
     store = tmp_path / "s.sqlite"
     assert invoke("run", path, "--store", store, "--workers", 1, "-q").exit_code == 0
     with sqlite3.connect(store) as c:
-        c.execute("INSERT INTO meta VALUES ('runner', ?)", (json.dumps(
-            {"pid": 1, "host": "elsewhere-" + socket.gethostname(), "heartbeat": time.time() - 3600}),))
+        c.execute(
+            "INSERT INTO meta VALUES ('runner', ?)",
+            (json.dumps({"pid": 1, "host": "elsewhere-" + socket.gethostname(), "heartbeat": time.time() - 3600}),),
+        )
     assert invoke("run", path, "--store", store, "--workers", 1, "--retry-failed", "-q").exit_code == 0
 
 

@@ -1,5 +1,6 @@
 """gate: run-to-run comparison against scipy.stats (sign-flip permutation, Welch) and
 statsmodels' Holm; identical runs and zero spread are well defined."""
+
 import numpy as np
 import pytest
 from scipy import stats as st
@@ -10,8 +11,7 @@ from runner.evidence.protocols import Resampling
 
 
 def _perm(d):
-    return st.permutation_test((np.asarray(d, float),), np.mean, permutation_type="samples",
-                               n_resamples=np.inf).pvalue
+    return st.permutation_test((np.asarray(d, float),), np.mean, permutation_type="samples", n_resamples=np.inf).pvalue
 
 
 def test_identical_runs_show_no_shift_and_p_one():
@@ -59,10 +59,12 @@ def test_min_change_is_two_one_sided_tests_on_shifted_data():
     old = [rng.normal(0.9, 0.01, 7)]
     new = [old[0] + rng.normal(0.02, 0.01, 7)]
     d, m = new[0] - old[0], 0.01
-    up = st.permutation_test((d - m,), np.mean, permutation_type="samples", n_resamples=np.inf,
-                             alternative="greater").pvalue
-    down = st.permutation_test((d + m,), np.mean, permutation_type="samples", n_resamples=np.inf,
-                               alternative="less").pvalue
+    up = st.permutation_test(
+        (d - m,), np.mean, permutation_type="samples", n_resamples=np.inf, alternative="greater"
+    ).pvalue
+    down = st.permutation_test(
+        (d + m,), np.mean, permutation_type="samples", n_resamples=np.inf, alternative="less"
+    ).pvalue
     assert compare_runs(old, new, min_change=m).changes[0].p_value == pytest.approx(min(1, 2 * min(up, down)))
     assert compare_runs(old, new, min_change=0.5).changes[0].p_value == 1.0
 
@@ -84,8 +86,9 @@ def test_unpaired_without_spread_uses_the_permutation_bound():
     (scipy.stats.permutation_test, independent, exact)."""
     old, new = [np.full(4, 0.90)], [np.full(4, 0.92)]
     out = compare_runs(old, new, paired=False).changes[0]
-    ref = st.permutation_test((new[0], old[0]), lambda x, y: np.mean(x) - np.mean(y),
-                              permutation_type="independent", n_resamples=np.inf).pvalue
+    ref = st.permutation_test(
+        (new[0], old[0]), lambda x, y: np.mean(x) - np.mean(y), permutation_type="independent", n_resamples=np.inf
+    ).pvalue
     assert out.p_value == pytest.approx(ref)
     same = compare_runs(old, [old[0].copy()], paired=False).changes[0]
     assert same.p_value == 1.0 and same.verdict == "no shift shown"

@@ -1,10 +1,11 @@
 """grid: Cartesian product of levels times seeds, linked factors, exclusions, stable keys."""
+
 import shutil
+
+from conftest import DATA, invoke, write_recipe
 
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
-
-from conftest import DATA, invoke, write_recipe
 
 BASE = """
     name = "g"
@@ -17,21 +18,35 @@ BASE = """
 
 
 def test_product_times_seeds_and_indexing(tmp_path):
-    grid = expand(load_recipe(write_recipe(tmp_path, BASE + """
+    grid = expand(
+        load_recipe(
+            write_recipe(
+                tmp_path,
+                BASE
+                + """
     [factors]
     "train.optimizer" = ["sgd", "adam", "momentum"]
     "train.l2" = [0.0, 1e-3]
-    """)))
+    """,
+            )
+        )
+    )
     assert len(grid.configs) == 6 and len(grid) == 18
     jobs = list(grid)
     assert len({j.key for j in jobs}) == 18
     assert grid[-1].key == jobs[-1].key and grid[4].seed == 2
     assert {(j.config.assignments["train.optimizer"], j.config.assignments["train.l2"]) for j in jobs} == {
-        (o, l) for o in ("sgd", "adam", "momentum") for l in (0.0, 1e-3)}
+        (o, l) for o in ("sgd", "adam", "momentum") for l in (0.0, 1e-3)
+    }
 
 
 def test_linked_factor_and_exclusion(tmp_path):
-    grid = expand(load_recipe(write_recipe(tmp_path, BASE + """
+    grid = expand(
+        load_recipe(
+            write_recipe(
+                tmp_path,
+                BASE
+                + """
     [factors.optimizer]
     "train.optimizer" = ["sgd", "sgd", "adam"]
     "train.lr" = [0.1, 0.01, 0.001]
@@ -40,11 +55,12 @@ def test_linked_factor_and_exclusion(tmp_path):
     [[exclude]]
     "train.optimizer" = "adam"
     "model.dropout" = 0.5
-    """)))
-    pairs = sorted((c.settings.train.optimizer, c.settings.train.lr, c.settings.model.dropout)
-                   for c in grid.configs)
-    assert pairs == [("adam", 0.001, 0.0), ("sgd", 0.01, 0.0), ("sgd", 0.01, 0.5),
-                     ("sgd", 0.1, 0.0), ("sgd", 0.1, 0.5)]
+    """,
+            )
+        )
+    )
+    pairs = sorted((c.settings.train.optimizer, c.settings.train.lr, c.settings.model.dropout) for c in grid.configs)
+    assert pairs == [("adam", 0.001, 0.0), ("sgd", 0.01, 0.0), ("sgd", 0.01, 0.5), ("sgd", 0.1, 0.0), ("sgd", 0.1, 0.5)]
 
 
 def test_keys_are_stable_and_adding_a_level_keeps_old_keys(tmp_path):

@@ -1,4 +1,5 @@
 """initializers: formulas of the papers, checked against torch.nn.init draw for draw."""
+
 import math
 
 import pytest
@@ -6,8 +7,8 @@ import torch
 
 from runner.components.activations import gain
 from runner.components.initializers import INITIALIZERS, initialize
-from runner.training.models import build_model, layers_with_weights
 from runner.recipe.loader import resolve
+from runner.training.models import build_model, layers_with_weights
 
 
 def gen(seed=0):
@@ -27,13 +28,16 @@ def test_glorot_uniform_bound_and_variance():
     assert float(w.var()) == pytest.approx(0.0104167, rel=0.05)
 
 
-@pytest.mark.parametrize("ours, reference", [
-    ("glorot_uniform", lambda w, g: torch.nn.init.xavier_uniform_(w, generator=g)),
-    ("glorot_normal", lambda w, g: torch.nn.init.xavier_normal_(w, generator=g)),
-    ("he_normal", lambda w, g: torch.nn.init.kaiming_normal_(w, nonlinearity="relu", generator=g)),
-    ("he_uniform", lambda w, g: torch.nn.init.kaiming_uniform_(w, nonlinearity="relu", generator=g)),
-    ("orthogonal", lambda w, g: torch.nn.init.orthogonal_(w, gain=math.sqrt(2), generator=g)),
-])
+@pytest.mark.parametrize(
+    "ours, reference",
+    [
+        ("glorot_uniform", lambda w, g: torch.nn.init.xavier_uniform_(w, generator=g)),
+        ("glorot_normal", lambda w, g: torch.nn.init.xavier_normal_(w, generator=g)),
+        ("he_normal", lambda w, g: torch.nn.init.kaiming_normal_(w, nonlinearity="relu", generator=g)),
+        ("he_uniform", lambda w, g: torch.nn.init.kaiming_uniform_(w, nonlinearity="relu", generator=g)),
+        ("orthogonal", lambda w, g: torch.nn.init.orthogonal_(w, gain=math.sqrt(2), generator=g)),
+    ],
+)
 def test_same_draws_as_torch_nn_init(ours, reference):
     """With the same generator state, each initializer equals torch.nn.init's (ReLU gain)."""
     w = initialize(ours, fresh(), gain("relu"), 0.0, gen(7))
@@ -81,8 +85,9 @@ def test_normal_and_uniform_use_the_explicit_scale():
 
 
 def _model(init, activation="sigmoid", hidden=(8, 8)):
-    s = resolve({"data": {"source": "iris"},
-                 "model": {"init": init, "activation": activation, "hidden": list(hidden)}}, {})
+    s = resolve(
+        {"data": {"source": "iris"}, "model": {"init": init, "activation": activation, "hidden": list(hidden)}}, {}
+    )
     return build_model(s.model, (4,), 3, gen(1), gen(2))
 
 

@@ -1,4 +1,5 @@
 """metrics: equal to sklearn.metrics on the same predictions."""
+
 import numpy as np
 import pytest
 from sklearn import metrics as skm
@@ -45,15 +46,20 @@ def test_formulas_equal_sklearn(seed):
     y[:k] = np.arange(k)
     probs = rng.dirichlet(np.ones(k), 150)
     pred = probs.argmax(1)
-    full = {"accuracy": skm.accuracy_score(y, pred),
-            "f1_macro": skm.f1_score(y, pred, average="macro", labels=np.arange(k), zero_division=0),
-            "log_loss": skm.log_loss(y, probs, labels=np.arange(k))}
+    full = {
+        "accuracy": skm.accuracy_score(y, pred),
+        "f1_macro": skm.f1_score(y, pred, average="macro", labels=np.arange(k), zero_division=0),
+        "log_loss": skm.log_loss(y, probs, labels=np.arange(k)),
+    }
     for name in ("accuracy", "f1_macro", "log_loss"):
         assert quick(name, y, probs, k) == pytest.approx(full[name], rel=1e-12, abs=1e-15)
     t = rng.normal(100, 30, 80)
     pred = t + rng.normal(0, 10, 80)
-    full = {"rmse": np.sqrt(skm.mean_squared_error(t, pred)), "mae": skm.mean_absolute_error(t, pred),
-            "r2": skm.r2_score(t, pred)}
+    full = {
+        "rmse": np.sqrt(skm.mean_squared_error(t, pred)),
+        "mae": skm.mean_absolute_error(t, pred),
+        "r2": skm.r2_score(t, pred),
+    }
     for name in ("rmse", "mae", "r2"):
         assert quick(name, t, pred) == pytest.approx(full[name], rel=1e-12)
 
@@ -65,7 +71,8 @@ def test_quick_f1_with_a_class_never_predicted():
     y = np.array([0, 1, 2, 2, 1, 0])
     probs = np.eye(3)[[0, 1, 1, 1, 1, 0]]
     assert quick("f1_macro", y, probs, 3) == pytest.approx(
-        skm.f1_score(y, probs.argmax(1), average="macro", zero_division=0))
+        skm.f1_score(y, probs.argmax(1), average="macro", zero_division=0)
+    )
 
 
 @pytest.mark.parametrize("pred", [np.full(5, 3.0), np.array([3.0, 3, 3, 3, 4])])

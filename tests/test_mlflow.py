@@ -1,4 +1,5 @@
 """mlflow_export: runs read back from a real sqlite-backed MLflow store equal the store's."""
+
 import json
 import sqlite3
 
@@ -6,9 +7,8 @@ import pytest
 
 pytest.importorskip("mlflow")
 pytest.importorskip("sqlalchemy")
-from mlflow.tracking import MlflowClient  # noqa: E402
-
-from conftest import invoke, write_recipe  # noqa: E402
+from conftest import invoke, write_recipe
+from mlflow.tracking import MlflowClient
 
 RECIPE = """
     name = "track"
@@ -26,8 +26,9 @@ RECIPE = """
 
 def store_rows(store):
     with sqlite3.connect(store) as c:
-        jobs = {k: (json.loads(s), seed, st) for k, s, seed, st in
-                c.execute("SELECT key, settings, seed, status FROM jobs")}
+        jobs = {
+            k: (json.loads(s), seed, st) for k, s, seed, st in c.execute("SELECT key, settings, seed, status FROM jobs")
+        }
         metrics = {}
         for k, split, name, v in c.execute("SELECT job_key, split, name, value FROM metrics"):
             metrics.setdefault(k, {})[f"{split}.{name}"] = v

@@ -1,13 +1,14 @@
 """optimizers: trajectories against published update rules, reference values and torch.optim."""
+
 import math
 
 import pytest
 import torch
 
 from runner.components.optimizers import OPTIMIZERS, build_optimizer
-from runner.recipe.loader import resolve
 from runner.errors import RecipeError
 from runner.recipe.grid import _check_rules
+from runner.recipe.loader import resolve
 
 H = torch.tensor([1.0, 10.0], dtype=torch.float64)  # f(w) = 1/2 w^T diag(1, 10) w
 
@@ -82,7 +83,7 @@ def test_nesterov_equals_sutskever_look_ahead_point():
 def test_adam_algorithm_1():
     """Kingma & Ba 2015, Algorithm 1, on f = w^2 from w0 = 1, lr 0.1: w1 0.9000000005,
     w2 0.8004122287, w3 0.7015862729 (defaults b1 0.9, b2 0.999, eps 1e-8)."""
-    grad = lambda w: 2 * w  # noqa: E731
+    grad = lambda w: 2 * w
     got = [float(w[0]) for w in run("adam", steps=3, grad=grad, w0=(1.0, 0.0), lr=0.1)]
     assert got == pytest.approx([0.9000000005, 0.8004122287, 0.7015862729], abs=1e-9)
     # The same numbers from the algorithm written out.
@@ -90,7 +91,7 @@ def test_adam_algorithm_1():
     for t in range(1, 4):
         g = 2 * w
         m, v = b1 * m + (1 - b1) * g, b2 * v + (1 - b2) * g * g
-        w -= lr * (m / (1 - b1 ** t)) / (math.sqrt(v / (1 - b2 ** t)) + eps)
+        w -= lr * (m / (1 - b1**t)) / (math.sqrt(v / (1 - b2**t)) + eps)
         assert got[t - 1] == pytest.approx(w, abs=1e-12)
 
 
@@ -99,25 +100,37 @@ def test_adam_first_step_moves_by_lr_whatever_the_gradient():
     assert (1.0 - w).tolist() == pytest.approx([0.01, 0.01], rel=1e-4)
 
 
-@pytest.mark.parametrize("name, reference", [
-    ("adamw", lambda p: torch.optim.AdamW(p, lr=0.01, betas=(0.8, 0.99), eps=1e-7, weight_decay=0.1)),
-    ("rmsprop", lambda p: torch.optim.RMSprop(p, lr=0.01, alpha=0.9, eps=1e-7, weight_decay=0.1)),
-    ("adagrad", lambda p: torch.optim.Adagrad(p, lr=0.01, eps=1e-7, weight_decay=0.1)),
-    ("adam", lambda p: torch.optim.Adam(p, lr=0.01, betas=(0.8, 0.99), eps=1e-7, weight_decay=0.1)),
-    ("nesterov", lambda p: torch.optim.SGD(p, lr=0.01, momentum=0.8, nesterov=True, weight_decay=0.1)),
-])
+@pytest.mark.parametrize(
+    "name, reference",
+    [
+        ("adamw", lambda p: torch.optim.AdamW(p, lr=0.01, betas=(0.8, 0.99), eps=1e-7, weight_decay=0.1)),
+        ("rmsprop", lambda p: torch.optim.RMSprop(p, lr=0.01, alpha=0.9, eps=1e-7, weight_decay=0.1)),
+        ("adagrad", lambda p: torch.optim.Adagrad(p, lr=0.01, eps=1e-7, weight_decay=0.1)),
+        ("adam", lambda p: torch.optim.Adam(p, lr=0.01, betas=(0.8, 0.99), eps=1e-7, weight_decay=0.1)),
+        ("nesterov", lambda p: torch.optim.SGD(p, lr=0.01, momentum=0.8, nesterov=True, weight_decay=0.1)),
+    ],
+)
 def test_small_network_matches_torch_optim(name, reference):
     """On a small network (no biases, so weight decay applies everywhere), 10 steps equal
     torch.optim configured by hand with the same hyperparameters."""
+
     def net():
         torch.manual_seed(0)
-        return torch.nn.Sequential(torch.nn.Linear(4, 8, bias=False), torch.nn.Tanh(),
-                                   torch.nn.Linear(8, 3, bias=False))
+        return torch.nn.Sequential(
+            torch.nn.Linear(4, 8, bias=False), torch.nn.Tanh(), torch.nn.Linear(8, 3, bias=False)
+        )
+
     x, y = torch.randn(32, 4, generator=torch.Generator().manual_seed(1)), torch.arange(32) % 3
     ours, ref = net(), net()
-    opts = [build_optimizer(ours, train_settings(optimizer=name, lr=0.01, beta1=0.8, beta2=0.99, eps=1e-7,
-                                                 alpha=0.9, momentum=0.8, weight_decay=0.1)),
-            reference(ref.parameters())]
+    opts = [
+        build_optimizer(
+            ours,
+            train_settings(
+                optimizer=name, lr=0.01, beta1=0.8, beta2=0.99, eps=1e-7, alpha=0.9, momentum=0.8, weight_decay=0.1
+            ),
+        ),
+        reference(ref.parameters()),
+    ]
     for _ in range(10):
         for model, opt in zip((ours, ref), opts):
             opt.zero_grad()
@@ -137,6 +150,7 @@ def test_weight_decay_skips_biases():
 def test_sgd_weight_decay_equals_half_l2_penalty():
     """SGD(weight_decay = lam) equals adding (lam/2) ||w||^2 to the loss."""
     from runner.components.regularizers import penalty
+
     lam = 0.2
     a, b = quadratic_model(), quadratic_model()
     oa = build_optimizer(a, train_settings(optimizer="sgd", lr=0.05, weight_decay=lam))

@@ -1,5 +1,6 @@
 """paired: the exact sign-flip test against scipy.stats.permutation_test, its floor, and the
 corrected t against the worked example of Nadeau & Bengio 2003 (REFERENCE_CHECKS.md)."""
+
 import itertools
 
 import numpy as np
@@ -11,8 +12,9 @@ from runner.evidence.protocols import FIXED, Resampling
 
 
 def _scipy_sign_flip(d, alternative="two-sided"):
-    return st.permutation_test((np.asarray(d, float),), np.mean, permutation_type="samples",
-                               n_resamples=np.inf, alternative=alternative).pvalue
+    return st.permutation_test(
+        (np.asarray(d, float),), np.mean, permutation_type="samples", n_resamples=np.inf, alternative=alternative
+    ).pvalue
 
 
 @pytest.mark.parametrize("seed", range(6))
@@ -52,7 +54,7 @@ def test_decimal_ties_count_as_ties():
 def test_min_attainable_p_is_reached():
     """The floor 2/2^n is the p of n equal positive differences (counted by scipy)."""
     for n in range(1, 9):
-        assert min_attainable_p(n) == pytest.approx(2.0 / 2 ** n if n > 1 else 1.0)
+        assert min_attainable_p(n) == pytest.approx(2.0 / 2**n if n > 1 else 1.0)
         if n >= 2:
             assert min_attainable_p(n) == pytest.approx(_scipy_sign_flip([1.0] * n))
     assert seeds_for_any_verdict(0.05) == 6
@@ -72,8 +74,7 @@ def test_monte_carlo_above_exact_limit_needs_a_generator():
     with pytest.raises(ValueError):
         sign_flip_test(d)
     ours = sign_flip_test(d, rng=np.random.default_rng(0), resamples=200_000)
-    ref = st.permutation_test((d,), np.mean, permutation_type="samples", n_resamples=200_000,
-                              random_state=1).pvalue
+    ref = st.permutation_test((d,), np.mean, permutation_type="samples", n_resamples=200_000, random_state=1).pvalue
     assert not ours.exact and abs(ours.p_value - ref) < 4 * np.sqrt(ref * (1 - ref) / 200_000) * 2
     assert sign_flip_test(np.full(24, 1.0), rng=np.random.default_rng(0), resamples=1000).p_value > 0
 

@@ -5,17 +5,17 @@ the bound is wide (a factor of 3 either way, common practice for a planning esti
 catches an estimate built on the wrong work: before the probes mirrored `recipe run`'s
 stacked groups and left one-off imports out, the estimate for a stacked grid like this was
 several times the real run."""
+
 import time
 
 import pytest
+from conftest import write_recipe
 
-from runner.recipe.grid import expand
-from runner.execution.planning import execute, make_executor
 from runner.execution.estimate import estimate_seconds
+from runner.execution.planning import execute, make_executor
+from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
 from runner.store.database import Store
-
-from conftest import write_recipe
 
 RECIPE = """
     name = "estimate"

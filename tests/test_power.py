@@ -1,5 +1,6 @@
 """power: seeds advice against statsmodels' TTestPower and, for TOST, statsmodels'
 ttost_paired by simulation and the normal-approximation formula."""
+
 import math
 
 import numpy as np
@@ -54,7 +55,7 @@ def test_tost_power_matches_simulated_statsmodels_ttost():
 def test_equivalence_seeds_approach_the_normal_formula():
     """For large n with true difference 0: n ~ (z_{1-alpha} + z_{1-beta/2})^2 sigma^2 / delta^2
     (Chow, Shao & Wang 2008, from memory); with delta = 0.1 sigma the t version is within 1%."""
-    approx = (norm_isf(0.05) + norm_isf(0.1)) ** 2 / 0.1 ** 2
+    approx = (norm_isf(0.05) + norm_isf(0.1)) ** 2 / 0.1**2
     assert seeds_for_equivalence(0.1, 1.0).n == pytest.approx(approx, rel=0.01)
 
 

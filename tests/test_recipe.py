@@ -1,13 +1,13 @@
 """recipe: bad input gives one clear message naming the key, exit status 2, and no store."""
+
 import subprocess
 
 import pytest
+from conftest import DATA, PYTHON, invoke, subprocess_env, write_recipe
 
 from runner.errors import UserError
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
-
-from conftest import DATA, PYTHON, invoke, subprocess_env, write_recipe
 
 # fixture file -> (key named in the message, phrases the message must contain)
 BAD = {
@@ -58,9 +58,12 @@ def test_bad_recipe_cli_exit_2_and_no_store(name, tmp_path):
 
 def test_real_process_exit_status_and_no_traceback(tmp_path):
     """The installed entry point exits 2 with a one-paragraph message."""
-    proc = subprocess.run([PYTHON, "-m", "runner", "run", str(DATA / "negative_lr.toml"),
-                           "--store", str(tmp_path / "s.sqlite")], capture_output=True, text=True,
-                          env=subprocess_env())
+    proc = subprocess.run(
+        [PYTHON, "-m", "runner", "run", str(DATA / "negative_lr.toml"), "--store", str(tmp_path / "s.sqlite")],
+        capture_output=True,
+        text=True,
+        env=subprocess_env(),
+    )
     assert proc.returncode == 2
     assert "Traceback" not in proc.stderr
     assert proc.stderr.strip().count("\n") == 0
@@ -79,20 +82,25 @@ def test_store_untouched_by_bad_edit(tmp_path, tiny_recipe):
 
 
 def test_linked_factor_needs_equal_lengths(tmp_path):
-    path = write_recipe(tmp_path, """
+    path = write_recipe(
+        tmp_path,
+        """
         name = "x"
         [data]
         source = "iris"
         [factors.opt]
         "train.optimizer" = ["sgd", "adam"]
         "train.lr" = [0.1]
-    """)
+    """,
+    )
     with pytest.raises(UserError, match="equal lengths"):
         load_recipe(path)
 
 
 def test_exclusion_value_must_be_a_level(tmp_path):
-    path = write_recipe(tmp_path, """
+    path = write_recipe(
+        tmp_path,
+        """
         name = "x"
         [data]
         source = "iris"
@@ -100,6 +108,7 @@ def test_exclusion_value_must_be_a_level(tmp_path):
         "train.optimizer" = ["sgd", "adam"]
         [[exclude]]
         "train.optimizer" = "adagrad"
-    """)
+    """,
+    )
     with pytest.raises(UserError, match="never applies"):
         load_recipe(path)

@@ -1,19 +1,19 @@
 """regularizers and dropout: soft-threshold, proximal L1 (ISTA), sparsity, inverted dropout."""
+
 import numpy as np
 import pytest
 import torch
+from conftest import write_recipe
 from sklearn.datasets import load_diabetes, make_circles
 from sklearn.linear_model import Lasso, LogisticRegression
 from sklearn.preprocessing import StandardScaler
 
-from runner.recipe.grid import expand
-from runner.training.models import Dropout, weight_tensors
-from runner.recipe.loader import load_recipe
 from runner.components.regularizers import soft_threshold_, sparsity
 from runner.execution.executors import prepare_process
+from runner.recipe.grid import expand
+from runner.recipe.loader import load_recipe
 from runner.training.loop import train_job
-
-from conftest import write_recipe
+from runner.training.models import Dropout, weight_tensors
 
 
 def test_soft_threshold_worked_example_and_softshrink():
@@ -46,14 +46,16 @@ def test_proximal_gradient_matches_sklearn_lasso_on_diabetes():
 
 def _circles_csv(tmp_path):
     X, y = make_circles(n_samples=600, noise=0.05, factor=0.5, random_state=0)
-    lines = ["x1,x2,x1_sq,x2_sq,ring"] + [f"{a},{b},{a*a},{b*b},{c}" for (a, b), c in zip(X, y)]
+    lines = ["x1,x2,x1_sq,x2_sq,ring"] + [f"{a},{b},{a * a},{b * b},{c}" for (a, b), c in zip(X, y)]
     (tmp_path / "circles.csv").write_text("\n".join(lines) + "\n")
     return X, y
 
 
 def _linear_l1(tmp_path, mode):
     _circles_csv(tmp_path)
-    path = write_recipe(tmp_path, f"""
+    path = write_recipe(
+        tmp_path,
+        f"""
         name = "l1"
         seeds = [0]
         [data]
@@ -68,7 +70,8 @@ def _linear_l1(tmp_path, mode):
         epochs = 400
         l1 = 0.05
         l1_mode = "{mode}"
-    """)
+    """,
+    )
     grid = expand(load_recipe(path))
     prepare_process(1, grid.datasets)
     job = grid[0]
@@ -87,7 +90,7 @@ def test_proximal_l1_zeroes_linear_terms_on_circles(tmp_path):
     assert result.diagnostics["zero_fraction"] == pytest.approx(0.5)
     assert result.metrics["val"]["accuracy"] > 0.95
     X, y = make_circles(n_samples=600, noise=0.05, factor=0.5, random_state=0)
-    feats = StandardScaler().fit_transform(np.column_stack([X, X ** 2]))
+    feats = StandardScaler().fit_transform(np.column_stack([X, X**2]))
     ref = LogisticRegression(l1_ratio=1.0, solver="liblinear", C=0.05).fit(feats, y).coef_[0]  # pure L1
     assert np.all(ref[:2] == 0) and np.all(np.abs(ref[2:]) > 0)
 

@@ -1,4 +1,5 @@
 """report: the HTML file renders in a real headless Chromium with its table and every figure."""
+
 import os
 import re
 import shutil
@@ -6,13 +7,19 @@ import subprocess
 
 import numpy as np
 import pytest
+from conftest import invoke, write_recipe
 from PIL import Image
 
-from conftest import invoke, write_recipe
-
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
-FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
-         "--disable-component-update", "--disable-sync", "--no-first-run"]
+FLAGS = [
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+    "--no-first-run",
+]
 
 RECIPE = """
     name = "report"
@@ -50,8 +57,12 @@ def test_report_renders_table_and_every_figure(tmp_path):
     page = out.read_text()
     assert "http://" not in page and "https://" not in page  # nothing to fetch
     profile = tmp_path / "profile"
-    dom = subprocess.run([browser, *FLAGS, f"--user-data-dir={profile}", "--virtual-time-budget=5000",
-                          "--dump-dom", out.as_uri()], capture_output=True, text=True, timeout=120).stdout
+    dom = subprocess.run(
+        [browser, *FLAGS, f"--user-data-dir={profile}", "--virtual-time-budget=5000", "--dump-dom", out.as_uri()],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    ).stdout
     figures = int(re.search(r'data-figures="(\d+)"', dom).group(1))
     drawn = int(re.search(r'data-figures-drawn="(\d+)"', dom).group(1))
     # curves, main effects, gradient norms, sparsity (proximal L1), dead units (ReLU)
@@ -60,8 +71,18 @@ def test_report_renders_table_and_every_figure(tmp_path):
         assert f'id="fig-{name}"' in dom
     assert len(re.findall(r"<tr class=", dom)) == 4  # one leaderboard row per configuration
     shot = tmp_path / "shot.png"
-    subprocess.run([browser, *FLAGS, f"--user-data-dir={profile}", "--window-size=1200,2400",
-                    f"--screenshot={shot}", out.as_uri()], capture_output=True, timeout=120)
+    subprocess.run(
+        [
+            browser,
+            *FLAGS,
+            f"--user-data-dir={profile}",
+            "--window-size=1200,2400",
+            f"--screenshot={shot}",
+            out.as_uri(),
+        ],
+        capture_output=True,
+        timeout=120,
+    )
     pixels = np.asarray(Image.open(shot).convert("L"), dtype=float)
     assert pixels.std() > 10  # not a blank page
     assert (pixels < 100).mean() > 0.005  # dark text and plot lines are present

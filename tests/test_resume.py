@@ -1,5 +1,6 @@
 """jobs/store: a runner killed with SIGKILL part-way resumes; no job runs twice; the numbers
 equal an uninterrupted run bit for bit."""
+
 import os
 import signal
 import sqlite3
@@ -44,9 +45,13 @@ def _count_done(store):
 def test_sigkill_then_resume_equals_uninterrupted(tmp_path):
     recipe = write_recipe(tmp_path, RECIPE)
     killed = tmp_path / "killed.sqlite"
-    proc = subprocess.Popen([PYTHON, "-m", "runner", "run", str(recipe), "--store", str(killed),
-                             "--workers", "2", "-q"], env=subprocess_env(), start_new_session=True,
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    proc = subprocess.Popen(
+        [PYTHON, "-m", "runner", "run", str(recipe), "--store", str(killed), "--workers", "2", "-q"],
+        env=subprocess_env(),
+        start_new_session=True,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
     deadline = time.monotonic() + 120
     while _count_done(killed) < 2 and time.monotonic() < deadline and proc.poll() is None:
         time.sleep(0.05)

@@ -1,9 +1,10 @@
 """schedules: per-step learning rates against torch.optim.lr_scheduler."""
+
 import pytest
 import torch
 
-from runner.recipe.loader import resolve
 from runner.components.lr_schedules import lr_at
+from runner.recipe.loader import resolve
 
 
 def train(**kw):

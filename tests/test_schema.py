@@ -1,23 +1,29 @@
 """schema: the JSON Schema and the validator agree on every example and invalid fixture."""
+
 import json
 
 import jsonschema
 import pytest
 import tomli
+from conftest import DATA, ROOT, invoke
 
 from runner.errors import UserError
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
 from runner.recipe.schema import recipe_schema
 
-from conftest import DATA, ROOT, invoke
-
 VALIDATOR = jsonschema.Draft202012Validator(recipe_schema())
 
 # Fixtures whose problem needs the data or spans several settings: the schema cannot see it
 # (documented in runner/schema.py), so only the validator rejects them.
-VALIDATOR_ONLY = {"missing_target", "text_feature", "missing_file", "exclude_all", "nesterov_no_momentum",
-                  "wrong_metric_task"}
+VALIDATOR_ONLY = {
+    "missing_target",
+    "text_feature",
+    "missing_file",
+    "exclude_all",
+    "nesterov_no_momentum",
+    "wrong_metric_task",
+}
 
 
 def schema_accepts(path) -> bool:

@@ -1,5 +1,6 @@
 """selection: Hsu's MCB against the worked example of REFERENCE_CHECKS.md, statsmodels'
 residual mean square and, for two configurations, the one-sided paired t bound."""
+
 import math
 
 import numpy as np
@@ -13,17 +14,19 @@ from runner.evidence.protocols import Resampling
 from runner.evidence.selection import possibly_best
 
 # REFERENCE_CHECKS.md, Hsu 1996 MCB worked example (numbers made up for the formula check)
-EXAMPLE = [[0.912, 0.905, 0.921, 0.899, 0.915],
-           [0.908, 0.903, 0.915, 0.902, 0.910],
-           [0.890, 0.884, 0.899, 0.880, 0.893],
-           [0.911, 0.899, 0.918, 0.894, 0.912]]
+EXAMPLE = [
+    [0.912, 0.905, 0.921, 0.899, 0.915],
+    [0.908, 0.903, 0.915, 0.902, 0.910],
+    [0.890, 0.884, 0.899, 0.880, 0.893],
+    [0.911, 0.899, 0.918, 0.894, 0.912],
+]
 
 
 def test_worked_example():
     """Hsu 1996, MCB: residual MS 4.75e-6, df 12, d 2.287, w 0.00315; intervals
     A [-0.00035, 0.00595], B [-0.00595, 0.00035], C [-0.02435, 0], D [-0.00675, 0]."""
     out = possibly_best(EXAMPLE, "max", constant="dunnett")
-    assert out.residual_sd ** 2 == pytest.approx(4.75e-6, rel=1e-9)
+    assert out.residual_sd**2 == pytest.approx(4.75e-6, rel=1e-9)
     assert out.df == 12 and out.critical == pytest.approx(2.287, abs=5e-4)
     assert out.half_width == pytest.approx(0.00315, abs=5e-6)
     for got, want in zip(out.lower, [-0.00035, -0.00595, -0.02435, -0.00675]):
@@ -42,7 +45,7 @@ def test_residual_mean_square_matches_statsmodels():
     frame = pd.DataFrame([{"y": y[i, s], "config": i, "seed": s} for i in range(6) for s in range(4)])
     table = anova_lm(smf.ols("y ~ C(config) + C(seed)", frame).fit())
     out = possibly_best(y)
-    assert out.residual_sd ** 2 == pytest.approx(table.loc["Residual", "mean_sq"], rel=1e-10)
+    assert out.residual_sd**2 == pytest.approx(table.loc["Residual", "mean_sq"], rel=1e-10)
     assert out.df == table.loc["Residual", "df"]
 
 

@@ -1,6 +1,7 @@
 """simultaneous: Dunnett's one-sided constant and the studentized range quantile against
 scipy.stats (multivariate_t, multivariate_normal, dunnett, studentized_range), the t
 quantile and the orthant identity."""
+
 import math
 
 import numpy as np
@@ -42,9 +43,11 @@ def test_scipy_dunnett_p_value_at_the_constant():
     pooled = np.sqrt(np.mean([g.var(ddof=1) for g in groups]))
     d = dunnett_one_sided(3, 16)
     se = pooled * np.sqrt(2 / 5)
-    shifted = [groups[1] - groups[1].mean() + control.mean() + d * se,
-               groups[2] - groups[2].mean() + control.mean() - 50 * se,
-               groups[3] - groups[3].mean() + control.mean() - 50 * se]
+    shifted = [
+        groups[1] - groups[1].mean() + control.mean() + d * se,
+        groups[2] - groups[2].mean() + control.mean() - 50 * se,
+        groups[3] - groups[3].mean() + control.mean() - 50 * se,
+    ]
     res = st.dunnett(*shifted, control=control, alternative="greater", random_state=1)
     assert res.statistic[0] == pytest.approx(d, rel=1e-9)
     assert res.pvalue[0] == pytest.approx(0.05, abs=2e-4)
@@ -53,7 +56,9 @@ def test_scipy_dunnett_p_value_at_the_constant():
 @pytest.mark.parametrize("df", [1, 2, 5, 40, math.inf])
 def test_one_comparison_is_the_t_quantile(df):
     """m = 1: Dunnett's constant is the one-sided t quantile (scipy.stats.t.isf)."""
-    assert dunnett_one_sided(1, df) == pytest.approx(st.t.isf(0.05, df) if df != math.inf else st.norm.isf(0.05), rel=1e-12)
+    assert dunnett_one_sided(1, df) == pytest.approx(
+        st.t.isf(0.05, df) if df != math.inf else st.norm.isf(0.05), rel=1e-12
+    )
 
 
 @pytest.mark.parametrize("m", [1, 2, 5, 20, 63])

@@ -1,20 +1,20 @@
 """stack: stacked training against torch.optim and against the single-job path."""
+
 import dataclasses
 import json
 
 import numpy as np
 import pytest
 import torch
+from conftest import invoke, write_recipe
 
+from runner.components.stacked_optim import STACKED_OPTIMIZERS, StackedOptimizer
+from runner.execution.executors import prepare_process
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
-from runner.execution.executors import prepare_process
 from runner.training.grouping import Stacked, group_specs, stack_key
 from runner.training.loop import train_group as run_group
-from runner.components.stacked_optim import STACKED_OPTIMIZERS, StackedOptimizer
 from runner.training.loop import train_job as run_job
-
-from conftest import invoke, write_recipe
 
 # Tolerance between the stacked and single-job paths after one epoch. The kernels sum in a
 # different order, so float32 results differ in the last bits, and training can amplify that:
@@ -39,12 +39,14 @@ def test_stacked_steps_match_torch_optim_member_by_member(kind, fused):
     (Adam both through torch's fused kernel and through the written-out fallback)."""
     g = torch.Generator().manual_seed(0)
     K = 3
-    hyper = {"lr": torch.tensor([0.05, 0.01, 0.002], dtype=torch.float64),
-             "momentum": torch.tensor([0.9, 0.5, 0.0], dtype=torch.float64),
-             "beta1": torch.tensor([0.9, 0.8, 0.95], dtype=torch.float64),
-             "beta2": torch.tensor([0.999, 0.99, 0.9], dtype=torch.float64),
-             "eps": torch.tensor([1e-8, 1e-6, 1e-7], dtype=torch.float64),
-             "weight_decay": torch.tensor([0.0, 0.1, 0.01], dtype=torch.float64)}
+    hyper = {
+        "lr": torch.tensor([0.05, 0.01, 0.002], dtype=torch.float64),
+        "momentum": torch.tensor([0.9, 0.5, 0.0], dtype=torch.float64),
+        "beta1": torch.tensor([0.9, 0.8, 0.95], dtype=torch.float64),
+        "beta2": torch.tensor([0.999, 0.99, 0.9], dtype=torch.float64),
+        "eps": torch.tensor([1e-8, 1e-6, 1e-7], dtype=torch.float64),
+        "weight_decay": torch.tensor([0.0, 0.1, 0.01], dtype=torch.float64),
+    }
     if kind == "nesterov":
         hyper["momentum"][2] = 0.3  # nesterov needs momentum > 0
     W = torch.randn(K, 4, 3, dtype=torch.float64, generator=g).requires_grad_()
@@ -59,11 +61,13 @@ def test_stacked_steps_match_torch_optim_member_by_member(kind, fused):
         lr, mu, wd = (float(hyper[n][k]) for n in ("lr", "momentum", "weight_decay"))
         betas, eps = (float(hyper["beta1"][k]), float(hyper["beta2"][k])), float(hyper["eps"][k])
         groups = [{"params": [w_k], "weight_decay": wd}, {"params": [b_k], "weight_decay": 0.0}]
-        opt = {"sgd": lambda: torch.optim.SGD(groups, lr=lr),
-               "momentum": lambda: torch.optim.SGD(groups, lr=lr, momentum=mu),
-               "nesterov": lambda: torch.optim.SGD(groups, lr=lr, momentum=mu, nesterov=True),
-               "adam": lambda: torch.optim.Adam(groups, lr=lr, betas=betas, eps=eps),
-               "adamw": lambda: torch.optim.AdamW(groups, lr=lr, betas=betas, eps=eps)}[kind]()
+        opt = {
+            "sgd": lambda: torch.optim.SGD(groups, lr=lr),
+            "momentum": lambda: torch.optim.SGD(groups, lr=lr, momentum=mu),
+            "nesterov": lambda: torch.optim.SGD(groups, lr=lr, momentum=mu, nesterov=True),
+            "adam": lambda: torch.optim.Adam(groups, lr=lr, betas=betas, eps=eps),
+            "adamw": lambda: torch.optim.AdamW(groups, lr=lr, betas=betas, eps=eps),
+        }[kind]()
         refs.append((w_k, b_k, opt))
     x = torch.randn(8, 4, dtype=torch.float64, generator=g)
     active = torch.ones(K, dtype=torch.bool)
@@ -82,10 +86,19 @@ def test_stacked_steps_match_torch_optim_member_by_member(kind, fused):
 @pytest.mark.parametrize("kind", STACKED_OPTIMIZERS)
 def test_inactive_members_do_not_move(kind):
     W = torch.ones(3, 2, 2)
-    opt = StackedOptimizer(kind, [W], [torch.ones_like(W)], [True],
-                           {"weight_decay": torch.full((3,), 0.1), "momentum": torch.full((3,), 0.9),
-                            "beta1": torch.full((3,), 0.9), "beta2": torch.full((3,), 0.999),
-                            "eps": torch.full((3,), 1e-8)})
+    opt = StackedOptimizer(
+        kind,
+        [W],
+        [torch.ones_like(W)],
+        [True],
+        {
+            "weight_decay": torch.full((3,), 0.1),
+            "momentum": torch.full((3,), 0.9),
+            "beta1": torch.full((3,), 0.9),
+            "beta2": torch.full((3,), 0.999),
+            "eps": torch.full((3,), 1e-8),
+        },
+    )
     opt.step(torch.tensor([0.1, 0.1, 0.1]), torch.tensor([True, False, True]))
     assert torch.all(W[1] == 1) and torch.all(W[0] < 1) and torch.equal(W[0], W[2])
 
@@ -96,24 +109,30 @@ def test_members_of_mixed_kinds_step_as_each_kind_alone():
     g = torch.Generator().manual_seed(3)
     kinds = ["sgd", "adam", "nesterov", "adam", "sgd"]
     K = len(kinds)
-    hyper = {"momentum": torch.full((K,), 0.9), "beta1": torch.full((K,), 0.9),
-             "beta2": torch.full((K,), 0.999), "eps": torch.full((K,), 1e-8),
-             "weight_decay": torch.tensor([0.0, 0.01, 0.1, 0.0, 0.2])}
+    hyper = {
+        "momentum": torch.full((K,), 0.9),
+        "beta1": torch.full((K,), 0.9),
+        "beta2": torch.full((K,), 0.999),
+        "eps": torch.full((K,), 1e-8),
+        "weight_decay": torch.tensor([0.0, 0.01, 0.1, 0.0, 0.2]),
+    }
     lr = torch.tensor([0.1, 1e-3, 0.05, 3e-3, 0.1])
     W0 = torch.randn(K, 4, 3, generator=g, dtype=torch.float64)
     grads = [torch.randn(K, 4, 3, generator=g, dtype=torch.float64) for _ in range(4)]
     W = W0.clone()
     gW = torch.zeros_like(W)
     mixed = StackedOptimizer(kinds, [W], [gW], [True], hyper)
-    alone = [(W0[k:k + 1].clone(), torch.zeros(1, 4, 3, dtype=torch.float64)) for k in range(K)]
-    opts = [StackedOptimizer(kinds[k], [w], [gw], [True], {n: v[k:k + 1] for n, v in hyper.items()})
-            for k, (w, gw) in enumerate(alone)]
+    alone = [(W0[k : k + 1].clone(), torch.zeros(1, 4, 3, dtype=torch.float64)) for k in range(K)]
+    opts = [
+        StackedOptimizer(kinds[k], [w], [gw], [True], {n: v[k : k + 1] for n, v in hyper.items()})
+        for k, (w, gw) in enumerate(alone)
+    ]
     for grad in grads:
         gW.copy_(grad)
         mixed.step(lr, torch.ones(K, dtype=torch.bool))
         for k, (opt, (w, gw)) in enumerate(zip(opts, alone)):
-            gw.copy_(grad[k:k + 1])
-            opt.step(lr[k:k + 1], torch.ones(1, dtype=torch.bool))
+            gw.copy_(grad[k : k + 1])
+            opt.step(lr[k : k + 1], torch.ones(1, dtype=torch.bool))
     for k, (w, _) in enumerate(alone):
         assert torch.allclose(W[k], w[0], rtol=1e-14, atol=1e-15), kinds[k]
 
@@ -148,8 +167,9 @@ MIXED = """
 
 def _loss_rel(a, b) -> float:
     """Largest relative difference of two runs' train and val loss curves."""
-    return max(abs(x - y) / abs(y) for name in ("train_loss", "val_loss")
-               for x, y in zip(a.curves[name], b.curves[name]))
+    return max(
+        abs(x - y) / abs(y) for name in ("train_loss", "val_loss") for x, y in zip(a.curves[name], b.curves[name])
+    )
 
 
 def test_one_epoch_agrees_with_the_single_job_path(tmp_path):
@@ -180,7 +200,9 @@ def test_one_epoch_agrees_with_the_single_job_path(tmp_path):
 
 def test_same_final_ranking_as_single_jobs(tmp_path):
     """On a small grid, stacked and single-job runs rank the configurations alike."""
-    path = write_recipe(tmp_path, """
+    path = write_recipe(
+        tmp_path,
+        """
         name = "rank"
         seeds = [1, 2, 3]
         [data]
@@ -192,11 +214,13 @@ def test_same_final_ranking_as_single_jobs(tmp_path):
         batch_size = 16
         [factors]
         "train.lr" = [1e-4, 1e-3, 1e-2]
-    """)
+    """,
+    )
     docs = {}
     for flag in ([], ["--no-stack"]):
-        out = invoke("run", path, "--store", tmp_path / f"s{len(flag)}.sqlite", "-q", "--workers", 1,
-                     "--format", "json", *flag)
+        out = invoke(
+            "run", path, "--store", tmp_path / f"s{len(flag)}.sqlite", "-q", "--workers", 1, "--format", "json", *flag
+        )
         assert out.exit_code == 0, out.stderr
         docs[bool(flag)] = json.loads(out.stdout)
     import sqlite3
@@ -219,7 +243,9 @@ def test_stacked_path_is_bitwise_reproducible(tmp_path):
 
 
 def test_diverging_member_is_masked_out_without_disturbing_others(tmp_path):
-    _, specs, ds = grid_of(tmp_path, """
+    _, specs, ds = grid_of(
+        tmp_path,
+        """
         name = "div"
         seeds = [1]
         [data]
@@ -231,7 +257,8 @@ def test_diverging_member_is_masked_out_without_disturbing_others(tmp_path):
         epochs = 5
         [factors]
         "train.lr" = [0.01, 1e5, 0.02]
-    """)
+    """,
+    )
     together = run_group(specs, ds)
     assert [r.status for r in together] == ["done", "diverged", "done"]
     assert together[0].diagnostics["stacked"] == 3  # not the one-at-a-time fallback
@@ -241,7 +268,9 @@ def test_diverging_member_is_masked_out_without_disturbing_others(tmp_path):
 
 
 def test_early_stopping_per_member(tmp_path):
-    _, specs, ds = grid_of(tmp_path, """
+    _, specs, ds = grid_of(
+        tmp_path,
+        """
         name = "es"
         seeds = [1, 2]
         [data]
@@ -254,7 +283,8 @@ def test_early_stopping_per_member(tmp_path):
         epochs = 150
         [factors]
         "train.patience" = [3, 0]
-    """)
+    """,
+    )
     results = run_group(specs, ds)
     assert all(r.diagnostics["stacked"] == 4 for r in results)
     stopped, full = results[:2], results[2:]
@@ -267,7 +297,9 @@ def test_early_stopping_per_member(tmp_path):
 
 
 def test_what_is_not_stacked(tmp_path):
-    _, specs, ds = grid_of(tmp_path, """
+    _, specs, ds = grid_of(
+        tmp_path,
+        """
         name = "mix"
         seeds = [1]
         [data]
@@ -275,7 +307,8 @@ def test_what_is_not_stacked(tmp_path):
         [factors]
         "train.optimizer" = ["adam", "rmsprop"]
         "model.batch_norm" = [false, true]
-    """)
+    """,
+    )
     keyed = {(s.settings.train.optimizer, s.settings.model.batch_norm): stack_key(s) for s in specs}
     assert keyed[("adam", False)] is not None
     assert keyed[("rmsprop", False)] is None and keyed[("adam", True)] is None
@@ -295,12 +328,15 @@ def test_scores_of_all_members_equal_the_single_path_score(tmp_path, source):
     from runner.training.scoring import score_outputs as score
     from runner.training.stacked import _splits
 
-    _, specs, ds = grid_of(tmp_path, f"""
+    _, specs, ds = grid_of(
+        tmp_path,
+        f"""
         name = "sc"
         seeds = [1, 2, 3]
         [data]
         source = "{source}"
-    """)
+    """,
+    )
     splits = _splits(specs, ds)
     n_out = len(ds.classes) if ds.task == "classification" else 1
     g = torch.Generator().manual_seed(0)
@@ -328,9 +364,13 @@ def test_a_decay_mask_over_one_buffer_steps_as_separate_tensors(kind):
     the same tensors kept apart with decay True/False (which the torch.optim test checks)."""
     g = torch.Generator().manual_seed(5)
     K = 3
-    hyper = {"momentum": torch.tensor([0.9, 0.5, 0.7]), "beta1": torch.full((K,), 0.9),
-             "beta2": torch.full((K,), 0.99), "eps": torch.full((K,), 1e-8),
-             "weight_decay": torch.tensor([0.1, 0.0, 0.05])}
+    hyper = {
+        "momentum": torch.tensor([0.9, 0.5, 0.7]),
+        "beta1": torch.full((K,), 0.9),
+        "beta2": torch.full((K,), 0.99),
+        "eps": torch.full((K,), 1e-8),
+        "weight_decay": torch.tensor([0.1, 0.0, 0.05]),
+    }
     W = torch.randn(K, 4, 3, generator=g, dtype=torch.float64)
     b = torch.randn(K, 3, generator=g, dtype=torch.float64)
     flat = torch.cat([W.reshape(K, -1), b], dim=1)

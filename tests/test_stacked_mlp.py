@@ -1,5 +1,6 @@
 """stacked_mlp: the hand-written forward and backward against torch autograd on the
 single-job path's network (nn.Linear layers built by runner.training.models), member by member."""
+
 import pytest
 import torch
 import torch.nn.functional as F

@@ -1,4 +1,5 @@
 """stats: checked against scipy.stats, statsmodels, standard t tables and worked examples."""
+
 import numpy as np
 import pytest
 from scipy import stats as st

@@ -1,19 +1,21 @@
 """train: seeded, bitwise-reproducible jobs; a sanity band on the bundled digits data."""
+
 import json
 import sqlite3
 
 import pytest
+from conftest import invoke, write_recipe
 
+from runner.execution.executors import prepare_process
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
-from runner.execution.executors import prepare_process
 from runner.training.loop import train_job as run_job
-
-from conftest import invoke, write_recipe
 
 
 def _jobs(tmp_path, seeds="[1, 2]", extra=""):
-    path = write_recipe(tmp_path, f"""
+    path = write_recipe(
+        tmp_path,
+        f"""
         name = "t"
         seeds = {seeds}
         [data]
@@ -25,7 +27,8 @@ def _jobs(tmp_path, seeds="[1, 2]", extra=""):
         epochs = 4
         batch_size = 16
         {extra}
-    """)
+    """,
+    )
     grid = expand(load_recipe(path))
     prepare_process(1, grid.datasets)
     return grid, list(grid)
@@ -48,7 +51,7 @@ def test_different_seeds_give_different_numbers(tmp_path):
 
 def test_first_recorded_loss_near_log_k_with_small_init(tmp_path):
     """Near-uniform initial predictions give cross-entropy ln K (ln 3 = 1.098612 for wine)."""
-    grid, jobs = _jobs(tmp_path, extra='lr = 1e-6')
+    grid, jobs = _jobs(tmp_path, extra="lr = 1e-6")
     path = tmp_path / "r.toml"
     path.write_text(path.read_text().replace("dropout = 0.2", 'dropout = 0.0\ninit = "normal"\ninit_scale = 1e-4'))
     grid = expand(load_recipe(path))
@@ -67,7 +70,9 @@ def test_digits_mlp_sanity_band(tmp_path):
     """digits, MLP 64-128-128-10, Adam lr 1e-3, batch 64, 30 epochs, stratified 80/20 split:
     accuracy >= 0.96 on the held-out 20% (REFERENCE_CHECKS sanity band; sklearn's
     MLPClassifier reaches 0.975-0.978 with the same settings)."""
-    path = write_recipe(tmp_path, """
+    path = write_recipe(
+        tmp_path,
+        """
         name = "digits-band"
         seeds = [0, 1, 2]
         [data]
@@ -80,7 +85,8 @@ def test_digits_mlp_sanity_band(tmp_path):
         lr = 1e-3
         batch_size = 64
         epochs = 30
-    """)
+    """,
+    )
     store = tmp_path / "s.sqlite"
     result = invoke("run", path, "--store", store, "--format", "json", "-q", "--workers", 2)
     assert result.exit_code == 0, result.stderr
@@ -95,7 +101,9 @@ def test_digits_mlp_sanity_band(tmp_path):
 
 def test_failed_job_is_recorded_and_grid_goes_on(tmp_path):
     """A job that raises is stored as failed with its message; the others still finish."""
-    path = write_recipe(tmp_path, """
+    path = write_recipe(
+        tmp_path,
+        """
         name = "f"
         seeds = [1]
         [data]
@@ -105,7 +113,8 @@ def test_failed_job_is_recorded_and_grid_goes_on(tmp_path):
         epochs = 2
         [factors]
         "data.split.stratify" = [true, false]
-    """)
+    """,
+    )
     # A 2-row validation set cannot hold all three classes: the stratified job fails.
     store = tmp_path / "s.sqlite"
     result = invoke("run", path, "--store", store, "-q", "--workers", 1)

@@ -1,18 +1,18 @@
 """train: early stopping, full batch, clipping, CNN on images, NPZ input, batch norm,
 and the diagnostics flags on a deep network."""
+
 import json
 
 import numpy as np
 import pytest
 import torch
+from conftest import invoke, write_recipe
 from sklearn.datasets import load_digits
 
+from runner.execution.executors import prepare_process
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
-from runner.execution.executors import prepare_process
 from runner.training.loop import train_job
-
-from conftest import invoke, write_recipe
 
 
 def fit(tmp_path, body, index=0):
@@ -56,7 +56,9 @@ def test_clipping_changes_the_trajectory(tmp_path):
 
 
 def test_cnn_on_digits_images(tmp_path):
-    net, r = fit(tmp_path, """
+    net, r = fit(
+        tmp_path,
+        """
 [data]
 source = "digits"
 [model]
@@ -68,7 +70,8 @@ batch_norm = true
 epochs = 8
 batch_size = 32
 lr = 3e-3
-""")
+""",
+    )
     assert r.status == "done", r.error
     assert any(isinstance(m, torch.nn.Conv2d) for m in net.modules())
     assert any(isinstance(m, torch.nn.BatchNorm2d) for m in net.modules())
@@ -79,7 +82,9 @@ def test_cnn_on_npz_images(tmp_path):
     """A user NPZ with X of shape (N, H, W) and y: made here from the bundled digits."""
     d = load_digits()
     np.savez(tmp_path / "digits.npz", X=d.images[:600], y=d.target[:600])
-    _, r = fit(tmp_path, """
+    _, r = fit(
+        tmp_path,
+        """
 [data]
 source = "digits.npz"
 [model]
@@ -89,18 +94,21 @@ hidden = []
 [train]
 epochs = 5
 lr = 3e-3
-""")
+""",
+    )
     assert r.status == "done", r.error
     assert r.metrics["val"]["accuracy"] > 0.8
 
 
 def test_cnn_on_tabular_data_is_refused(tmp_path):
     result = invoke("run", write_recipe(tmp_path, 'name = "c"\n[data]\nsource = "iris"\n[model]\nkind = "cnn"\n'))
-    assert result.exit_code == 2 and 'needs image data' in result.stderr
+    assert result.exit_code == 2 and "needs image data" in result.stderr
 
 
 def test_regression_on_diabetes(tmp_path):
-    _, r = fit(tmp_path, """
+    _, r = fit(
+        tmp_path,
+        """
 [data]
 source = "diabetes"
 [model]
@@ -108,7 +116,8 @@ hidden = [32]
 [train]
 epochs = 60
 lr = 3e-3
-""")
+""",
+    )
     assert r.status == "done"
     # Predicting the training mean gives r2 near 0; a fitted model does much better.
     assert r.metrics["val"]["r2"] > 0.3 and r.metrics["val"]["rmse"] < 70
@@ -134,8 +143,9 @@ def test_vanishing_gradient_flag_on_deep_sigmoid_not_on_relu(tmp_path):
     sigmoid's derivative (at most 0.25) per layer, so the first layer's gradient norm falls
     below 1e-3 of the last's; Glorot or orthogonal init with ReLU keeps it near 1."""
     path = write_recipe(tmp_path, SHRUNK_DEPTH)
-    doc = json.loads(invoke("run", path, "--store", tmp_path / "s.sqlite", "-q", "--format", "json",
-                            "--workers", 2).stdout)
+    doc = json.loads(
+        invoke("run", path, "--store", tmp_path / "s.sqlite", "-q", "--format", "json", "--workers", 2).stdout
+    )
     flags = {(r["levels"]["model.init"], r["levels"]["model.activation"]): r["flags"] for r in doc["rows"]}
     for init in ("zeros", "glorot_uniform", "orthogonal"):
         assert "vanishing gradients" in flags[(init, "sigmoid")]

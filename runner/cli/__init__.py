@@ -1,6 +1,7 @@
 """The `recipe` console script: the command line's own imports (click, the CLI module) run
 inside a Ctrl-C guard, so an interrupt in the first moments prints one line and exits 130
 instead of a traceback. Only the standard library is imported before the guard."""
+
 from __future__ import annotations
 
 import sys

@@ -1,4 +1,5 @@
 """The `recipe` command line: parses options and calls the pipeline stages, nothing more."""
+
 from __future__ import annotations
 
 import sys
@@ -8,7 +9,7 @@ import click
 
 from runner.errors import UserError
 
-__all__ = ["main", "cli"]
+__all__ = ["cli", "main"]
 
 
 def _fail(err: UserError) -> None:
@@ -31,10 +32,19 @@ def _load(recipe_path: str):
     return recipe, expand(recipe)
 
 
-store_option = click.option("--store", "store", type=click.Path(dir_okay=False),
-                            help="Results database (default: runs/<name>.sqlite beside the recipe).")
-format_option = click.option("--format", "fmt", type=click.Choice(["table", "markdown", "csv", "json"]),
-                             default=None, help="Leaderboard format (default: table).")
+store_option = click.option(
+    "--store",
+    "store",
+    type=click.Path(dir_okay=False),
+    help="Results database (default: runs/<name>.sqlite beside the recipe).",
+)
+format_option = click.option(
+    "--format",
+    "fmt",
+    type=click.Choice(["table", "markdown", "csv", "json"]),
+    default=None,
+    help="Leaderboard format (default: table).",
+)
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
@@ -46,40 +56,115 @@ def cli():
 @cli.command()
 @click.argument("recipe_path", metavar="RECIPE", type=click.Path())
 @store_option
-@click.option("--workers", type=click.IntRange(1), default=None,
-              help="Worker processes (default: the number of cores; 1 runs in this process).")
-@click.option("--threads", type=click.IntRange(1), default=1, show_default=True,
-              help="Torch threads per worker; results are bitwise-reproducible for a fixed value.")
-@click.option("--on", "on", default=None, metavar="WHERE",
-              help='Where jobs run: "local" (default), "dask-local", or "dask://HOST:PORT".')
+@click.option(
+    "--workers",
+    type=click.IntRange(1),
+    default=None,
+    help="Worker processes (default: the number of cores; 1 runs in this process).",
+)
+@click.option(
+    "--threads",
+    type=click.IntRange(1),
+    default=1,
+    show_default=True,
+    help="Torch threads per worker; results are bitwise-reproducible for a fixed value.",
+)
+@click.option(
+    "--on",
+    "on",
+    default=None,
+    metavar="WHERE",
+    help='Where jobs run: "local" (default), "dask-local", or "dask://HOST:PORT".',
+)
 @click.option("--retry-failed", is_flag=True, help="Run failed and timed-out jobs again.")
-@click.option("--max-attempts", type=click.IntRange(1), default=2, show_default=True,
-              help="Tries per job when its worker process dies.")
-@click.option("--time-limit", type=click.FloatRange(0, min_open=True), default=None,
-              help="Seconds one job may train before it is stopped as timed out.")
-@click.option("--no-stack", is_flag=True,
-              help="Train every job on its own instead of stacking same-shaped jobs into one computation.")
+@click.option(
+    "--max-attempts",
+    type=click.IntRange(1),
+    default=2,
+    show_default=True,
+    help="Tries per job when its worker process dies.",
+)
+@click.option(
+    "--time-limit",
+    type=click.FloatRange(0, min_open=True),
+    default=None,
+    help="Seconds one job may train before it is stopped as timed out.",
+)
+@click.option(
+    "--no-stack",
+    is_flag=True,
+    help="Train every job on its own instead of stacking same-shaped jobs into one computation.",
+)
 @click.option("--fresh", is_flag=True, help="Delete this grid's stored results first (asks to confirm).")
 @click.option("--yes", "-y", is_flag=True, help="Confirm --fresh without asking.")
-@click.option("--mlflow", "mlflow_uri", default=None, metavar="URI",
-              help="Also log every finished job to this MLflow tracking URI (e.g. sqlite:///mlflow.db).")
+@click.option(
+    "--mlflow",
+    "mlflow_uri",
+    default=None,
+    metavar="URI",
+    help="Also log every finished job to this MLflow tracking URI (e.g. sqlite:///mlflow.db).",
+)
 @click.option("--quiet", "-q", is_flag=True, help="No progress lines; print only the leaderboard.")
 @click.option("--verbose", "-v", is_flag=True, help="A line per job even on a terminal, with failure reasons.")
 @format_option
-def run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, time_limit, no_stack, fresh, yes,
-        mlflow_uri, quiet, verbose, fmt):
+def run(
+    recipe_path,
+    store,
+    workers,
+    threads,
+    on,
+    retry_failed,
+    max_attempts,
+    time_limit,
+    no_stack,
+    fresh,
+    yes,
+    mlflow_uri,
+    quiet,
+    verbose,
+    fmt,
+):
     """Train every job of RECIPE that has no stored result, then print the leaderboard."""
     try:
-        _run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, time_limit, no_stack, fresh,
-             yes, mlflow_uri, quiet, verbose, fmt)
+        _run(
+            recipe_path,
+            store,
+            workers,
+            threads,
+            on,
+            retry_failed,
+            max_attempts,
+            time_limit,
+            no_stack,
+            fresh,
+            yes,
+            mlflow_uri,
+            quiet,
+            verbose,
+            fmt,
+        )
     except KeyboardInterrupt:  # before training started, or after every result was stored
-        click.echo("\nInterrupted; every finished job is in the store. Run the same command again to go on.",
-                   err=True)
+        click.echo("\nInterrupted; every finished job is in the store. Run the same command again to go on.", err=True)
         sys.exit(130)
 
 
-def _run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, time_limit, no_stack, fresh, yes,
-         mlflow_uri, quiet, verbose, fmt):
+def _run(
+    recipe_path,
+    store,
+    workers,
+    threads,
+    on,
+    retry_failed,
+    max_attempts,
+    time_limit,
+    no_stack,
+    fresh,
+    yes,
+    mlflow_uri,
+    quiet,
+    verbose,
+    fmt,
+):
     from runner.execution.forkserver import start_early, wants_workers
     from runner.recipe.loader import load_recipe
 
@@ -89,14 +174,14 @@ def _run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, t
         _fail(err)
     if wants_workers(workers, on, recipe.run):
         start_early()  # its imports overlap with this process's from here on (see forkserver.py)
-    from runner.recipe.grid import expand
-    from runner.execution.planning import execute, make_executor, plan
-    from runner.outputs.mlflow_export import RunLogger
-    from runner.execution.progress import Progress
-    from runner.outputs.text import render
-    from runner.execution.executors import default_workers
-    from runner.store.database import Store
     from runner.evidence.leaderboard import leaderboard
+    from runner.execution.executors import default_workers
+    from runner.execution.planning import execute, make_executor, plan
+    from runner.execution.progress import Progress
+    from runner.outputs.mlflow_export import RunLogger
+    from runner.outputs.text import render
+    from runner.recipe.grid import expand
+    from runner.store.database import Store
 
     try:
         grid = expand(recipe)
@@ -108,18 +193,23 @@ def _run(recipe_path, store, workers, threads, on, retry_failed, max_attempts, t
             todo = plan(grid, db, retry_failed)
             if not quiet:
                 click.echo(todo.describe(), err=True)
-            progress = Progress(len(todo.to_run), grid.rank_by, grid.goal, quiet=quiet,
-                                live=False if verbose else None, verbose=verbose)
+            progress = Progress(
+                len(todo.to_run), grid.rank_by, grid.goal, quiet=quiet, live=False if verbose else None, verbose=verbose
+            )
             executor = make_executor(where, workers, threads, max_attempts, time_limit)
             tracker = RunLogger(mlflow_uri or recipe.tracking.mlflow, grid, db)
             try:
-                execute(grid, db, todo.to_run, executor, progress, time_limit, on_stored=tracker.stored,
-                        stack=not no_stack)
+                execute(
+                    grid, db, todo.to_run, executor, progress, time_limit, on_stored=tracker.stored, stack=not no_stack
+                )
                 _report_tracking(tracker.finish(), tracker.uri, recipe_path, quiet)
             except KeyboardInterrupt:
                 done = len(db.finished_keys() & {j.key for j in grid})
-                click.echo(f"\nInterrupted: {done} of {todo.total} jobs are stored. Run the same "
-                           f"command again to resume; finished jobs are not repeated.", err=True)
+                click.echo(
+                    f"\nInterrupted: {done} of {todo.total} jobs are stored. Run the same "
+                    f"command again to resume; finished jobs are not repeated.",
+                    err=True,
+                )
                 sys.exit(130)
             click.echo(render(leaderboard(grid, db), fmt or "table"), nl=False)
     except UserError as err:
@@ -130,9 +220,12 @@ def _report_tracking(errors, uri, recipe_path, quiet: bool) -> None:
     if errors is None:
         return
     if errors:
-        click.echo(f"MLflow export to {uri} failed for {len(errors)} job(s) (first: {errors[0][:300]}). "
-                   f"The results are safe in the store; retry with: recipe export-mlflow {recipe_path} "
-                   f"--uri {uri}", err=True)
+        click.echo(
+            f"MLflow export to {uri} failed for {len(errors)} job(s) (first: {errors[0][:300]}). "
+            f"The results are safe in the store; retry with: recipe export-mlflow {recipe_path} "
+            f"--uri {uri}",
+            err=True,
+        )
     elif not quiet:
         click.echo(f"MLflow: all stored jobs are logged at {uri}", err=True)
 
@@ -143,8 +236,11 @@ def _confirm_fresh(db, grid, yes: bool) -> None:
     stored = len(db.finished_keys() & {j.key for j in grid})
     if not yes:
         if not sys.stdin.isatty():
-            raise UserError("--fresh would delete stored results and needs confirmation",
-                            value=f"{stored} stored jobs", hint="Add --yes to confirm without a terminal")
+            raise UserError(
+                "--fresh would delete stored results and needs confirmation",
+                value=f"{stored} stored jobs",
+                hint="Add --yes to confirm without a terminal",
+            )
         click.confirm(f"Delete the {stored} stored results of this grid and start over?", abort=True, err=True)
     forget(grid, db)
 
@@ -154,15 +250,18 @@ def _confirm_fresh(db, grid, yes: bool) -> None:
 @store_option
 @format_option
 @click.option("--out", type=click.Path(dir_okay=False), help="Write to this file instead of stdout.")
-@click.option("--ablation", is_flag=True,
-              help="Add the ablation tables (main effects, interactions, regularization and optimizer views).")
+@click.option(
+    "--ablation",
+    is_flag=True,
+    help="Add the ablation tables (main effects, interactions, regularization and optimizer views).",
+)
 def board(recipe_path, store, fmt, out, ablation):
     """Print the leaderboard of RECIPE from its store, without training."""
     try:
         recipe, grid = _load(recipe_path)
+        from runner.evidence.leaderboard import leaderboard
         from runner.outputs.text import render, render_ablation
         from runner.store.database import Store
-        from runner.evidence.leaderboard import leaderboard
 
         with Store(_store_path(recipe, store), create=False) as db:
             doc = leaderboard(grid, db)
@@ -200,20 +299,22 @@ def status(recipe_path, store):
     except UserError as err:
         _fail(err)
     pending = len(keys) - sum(counts.values()) - len(running)
-    click.echo(f"{len(keys)} jobs: {counts[Status.DONE]} done, {len(running)} running, {pending} pending, "
-               f"{counts[Status.FAILED]} failed, {counts[Status.DIVERGED]} diverged, "
-               f"{counts[Status.TIMEOUT]} timed out")
+    click.echo(
+        f"{len(keys)} jobs: {counts[Status.DONE]} done, {len(running)} running, {pending} pending, "
+        f"{counts[Status.FAILED]} failed, {counts[Status.DIVERGED]} diverged, "
+        f"{counts[Status.TIMEOUT]} timed out"
+    )
 
 
 @cli.command()
 @click.argument("old", type=click.Path())
 @click.argument("new", type=click.Path())
-@click.option("--format", "fmt", type=click.Choice(["table", "markdown", "json"]), default="table",
-              show_default=True)
+@click.option("--format", "fmt", type=click.Choice(["table", "markdown", "json"]), default="table", show_default=True)
 @click.option("--fail-on-worse", is_flag=True, help="Exit 1 when any configuration got clearly worse.")
 def diff(old, new, fmt, fail_on_worse):
     """Compare two leaderboards: OLD and NEW are JSON exports, stores, or recipes."""
-    from runner.evidence.diff import diff as compare, load_board, render_diff
+    from runner.evidence.diff import diff as compare
+    from runner.evidence.diff import load_board, render_diff
 
     try:
         result = compare(load_board(old), load_board(new))
@@ -227,8 +328,12 @@ def diff(old, new, fmt, fail_on_worse):
 @cli.command()
 @click.argument("recipe_path", metavar="RECIPE", type=click.Path())
 @store_option
-@click.option("--out", type=click.Path(dir_okay=False), default=None,
-              help="HTML file to write (default: <name>-report.html beside the store).")
+@click.option(
+    "--out",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="HTML file to write (default: <name>-report.html beside the store).",
+)
 def report(recipe_path, store, out):
     """Write a self-contained HTML report of RECIPE's stored results."""
     try:
@@ -263,8 +368,9 @@ def export_mlflow(recipe_path, store, uri):
         _fail(err)
     click.echo(f"{sent} jobs logged to {uri}; {before} were already there.")
     if errors:
-        click.echo(f"{len(errors)} failed (first: {errors[0][:300]}); nothing was lost: run this again to retry.",
-                   err=True)
+        click.echo(
+            f"{len(errors)} failed (first: {errors[0][:300]}); nothing was lost: run this again to retry.", err=True
+        )
         sys.exit(1)
 
 
@@ -307,8 +413,12 @@ def schema():
 
 @cli.command()
 @click.argument("source")
-@click.option("--out", type=click.Path(dir_okay=False), default=None,
-              help="Recipe file to write (default: <data name>.toml here).")
+@click.option(
+    "--out",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Recipe file to write (default: <data name>.toml here).",
+)
 @click.option("--target", default=None, help="The target column (default: guessed from the data).")
 @click.option("--force", is_flag=True, help="Overwrite an existing file.")
 def new(source, out, target, force):

@@ -1,4 +1,5 @@
 """Activation functions selectable as ``model.activation``."""
+
 from __future__ import annotations
 
 import math
@@ -7,7 +8,7 @@ from typing import TYPE_CHECKING
 if TYPE_CHECKING:  # annotations only; torch is imported where it is used
     from torch import nn
 
-__all__ = ["ACTIVATIONS", "make_activation", "gain"]
+__all__ = ["ACTIVATIONS", "gain", "make_activation"]
 
 
 def _nn():
@@ -45,7 +46,7 @@ def gain(name: str, leaky_slope: float = 0.01) -> float:
     if name in ("relu", "elu", "gelu"):
         return math.sqrt(2.0)
     if name == "leaky_relu":
-        return math.sqrt(2.0 / (1.0 + leaky_slope ** 2))
+        return math.sqrt(2.0 / (1.0 + leaky_slope**2))
     if name == "tanh":
         return 5.0 / 3.0
     return 1.0

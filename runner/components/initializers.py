@@ -5,6 +5,7 @@ Each takes the weight tensor, the gain of the layer's activation, the recipe's
 Fans follow torch's convention: fan_in = weight.size(1) * receptive field,
 fan_out = weight.size(0) * receptive field.
 """
+
 from __future__ import annotations
 
 import math
@@ -88,8 +89,7 @@ INITIALIZERS = {
 USES_GAIN = frozenset({"he_normal", "he_uniform", "orthogonal"})
 
 
-def initialize(name: str, weight: torch.Tensor, gain: float, scale: float,
-               generator: torch.Generator) -> torch.Tensor:
+def initialize(name: str, weight: torch.Tensor, gain: float, scale: float, generator: torch.Generator) -> torch.Tensor:
     """Fill ``weight`` in place. ``scale`` is the std (normal) or bound (uniform)."""
     import torch
 

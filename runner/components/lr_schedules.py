@@ -2,6 +2,7 @@
 
 Being stateless, a schedule needs no saved state to resume: lr(step) is recomputed.
 """
+
 from __future__ import annotations
 
 import math
@@ -9,7 +10,7 @@ import math
 from runner.errors import RecipeError
 from runner.recipe.constraints import Choice, Integer, Param, Real
 
-__all__ = ["PARAMS", "SCHEDULES", "lr_at", "check_schedule"]
+__all__ = ["PARAMS", "SCHEDULES", "check_schedule", "lr_at"]
 
 SCHEDULES = ("constant", "cosine", "step", "warmup_cosine")
 
@@ -40,6 +41,9 @@ def lr_at(step: int, steps_per_epoch: int, train: dict) -> float:
 
 def check_schedule(train: dict) -> None:
     if train.schedule == "warmup_cosine" and train.warmup_epochs >= train.epochs:
-        raise RecipeError("warm-up must end before training does", key="train.warmup_epochs",
-                          value=train.warmup_epochs,
-                          allowed=f"a whole number below train.epochs ({train['epochs']})")
+        raise RecipeError(
+            "warm-up must end before training does",
+            key="train.warmup_epochs",
+            value=train.warmup_epochs,
+            allowed=f"a whole number below train.epochs ({train['epochs']})",
+        )

@@ -5,6 +5,7 @@ written out here; tests hold every metric equal to sklearn.metrics (accuracy_sco
 f1_score(average="macro", zero_division=0), log_loss, mean_squared_error,
 mean_absolute_error, r2_score) on the same predictions.
 """
+
 from __future__ import annotations
 
 from enum import Enum
@@ -12,7 +13,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-__all__ = ["METRICS", "Goal", "Task", "MetricInfo", "goal", "for_task", "evaluate", "quick"]
+__all__ = ["METRICS", "Goal", "MetricInfo", "Task", "evaluate", "for_task", "goal", "quick"]
 
 
 class Task(str, Enum):
@@ -25,6 +26,7 @@ class Task(str, Enum):
 
 class Goal(str, Enum):
     """Which way a metric improves."""
+
     MAX = "max"
     MIN = "min"
 
@@ -85,12 +87,12 @@ def quick(metric: str, y_true: np.ndarray, output: np.ndarray, n_classes: int = 
         return float(-np.mean(np.log(probs[np.arange(len(y_true)), y_true])))
     err = y_true - output
     if metric == "rmse":
-        return float(np.sqrt(np.mean(err ** 2)))
+        return float(np.sqrt(np.mean(err**2)))
     if metric == "mae":
         return float(np.mean(np.abs(err)))
     if metric == "r2":  # constant targets: 1 for a perfect fit, else 0 (sklearn's force_finite)
         total = np.sum((y_true - y_true.mean()) ** 2)
-        residual = np.sum(err ** 2)
+        residual = np.sum(err**2)
         if total == 0:
             return 1.0 if residual == 0 else 0.0
         return float(1 - residual / total)

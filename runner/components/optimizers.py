@@ -15,10 +15,12 @@ All are torch.optim classes configured as published:
 where it shrinks the weights directly (decoupled). It applies to weight matrices only, never to
 biases or batch-norm parameters.
 """
+
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Callable
+from typing import TYPE_CHECKING
 
 from runner.errors import RecipeError
 from runner.recipe.constraints import Param, Real
@@ -93,16 +95,19 @@ OPTIMIZERS = {
 def check_optimizer(train: dict) -> None:
     """Rules that span two settings."""
     if train.optimizer in ("momentum", "nesterov") and train.momentum <= 0:
-        raise RecipeError(f'{train.optimizer} needs momentum > 0', key="train.momentum",
-                          value=train.momentum, allowed="a number in (0, 1)",
-                          hint='Use optimizer = "sgd" for plain gradient descent')
+        raise RecipeError(
+            f"{train.optimizer} needs momentum > 0",
+            key="train.momentum",
+            value=train.momentum,
+            allowed="a number in (0, 1)",
+            hint='Use optimizer = "sgd" for plain gradient descent',
+        )
 
 
 def build_optimizer(model: torch.nn.Module, train: dict) -> torch.optim.Optimizer:
     """Weight matrices get ``weight_decay``; biases and normalization parameters get none."""
     decay, no_decay = split_parameters(model)
-    groups = [{"params": decay, "weight_decay": train.weight_decay},
-              {"params": no_decay, "weight_decay": 0.0}]
+    groups = [{"params": decay, "weight_decay": train.weight_decay}, {"params": no_decay, "weight_decay": 0.0}]
     groups = [g for g in groups if g["params"]]
     return OPTIMIZERS[train.optimizer].build(groups, train)
 

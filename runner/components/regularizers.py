@@ -9,6 +9,7 @@ Conventions (stated because libraries differ):
   lr_t * lam (proximal gradient / ISTA, Beck & Teboulle 2009), which yields exact zeros.
 Penalties cover weight matrices only, never biases or normalization parameters.
 """
+
 from __future__ import annotations
 
 from typing import TYPE_CHECKING
@@ -18,13 +19,16 @@ from runner.recipe.constraints import Choice, Param, Real
 if TYPE_CHECKING:  # annotations only; torch is imported where it is used
     import torch
 
-__all__ = ["PARAMS", "penalty", "soft_threshold_", "proximal_l1_", "sparsity"]
+__all__ = ["PARAMS", "penalty", "proximal_l1_", "soft_threshold_", "sparsity"]
 
 PARAMS = {
     "l2": Param(Real(0, None), 0.0, "L2 penalty lam * sum(w^2) added to the loss"),
     "l1": Param(Real(0, None), 0.0, "L1 strength lam * sum(|w|)"),
-    "l1_mode": Param(Choice(("penalty", "proximal")), "penalty",
-                     "penalty: subgradient in the loss; proximal: soft-threshold after each step"),
+    "l1_mode": Param(
+        Choice(("penalty", "proximal")),
+        "penalty",
+        "penalty: subgradient in the loss; proximal: soft-threshold after each step",
+    ),
     "sparsity_tol": Param(Real(0, None), 1e-3, "|w| below this counts as near zero in the sparsity report"),
 }
 

@@ -16,10 +16,11 @@ Members of one kind with the same settings step together, on contiguous runs of 
 through torch's fused Adam kernel (the one torch.optim.Adam(fused=True) runs), one call per
 distinct (lr, betas, eps). Inactive members are left out, so they do not move at all.
 """
+
 from __future__ import annotations
 
+from collections.abc import Sequence
 from itertools import groupby
-from typing import Sequence
 
 import torch
 
@@ -45,20 +46,29 @@ def member_runs(rows: list[int]) -> list[slice]:
 
 class StackedOptimizer:
     fused = hasattr(torch, "_fused_adam_")  # torch's fused Adam kernel; else the written-out rule
-    def __init__(self, kinds: str | Sequence[str], params: list[torch.Tensor], grads: list[torch.Tensor],
-                 decays: list[bool], hyper: dict[str, torch.Tensor]):
+
+    def __init__(
+        self,
+        kinds: str | Sequence[str],
+        params: list[torch.Tensor],
+        grads: list[torch.Tensor],
+        decays: list[bool],
+        hyper: dict[str, torch.Tensor],
+    ):
         K = params[0].shape[0]
         self.kinds = [kinds] * K if isinstance(kinds, str) else list(kinds)
         unknown = set(self.kinds) - set(STACKED_OPTIMIZERS)
         if unknown:
             raise ValueError(f"no stacked step for {sorted(unknown)}")
         self.params, self.grads, self.decays = params, grads, decays
-        h = {name: hyper[name].tolist() if name in hyper else [0.0] * K
-             for name in ("momentum", "beta1", "beta2", "eps", "weight_decay")}
+        h = {
+            name: hyper[name].tolist() if name in hyper else [0.0] * K
+            for name in ("momentum", "beta1", "beta2", "eps", "weight_decay")
+        }
         self.h = h
         wd = h["weight_decay"]
         adamw = [kind == "adamw" for kind in self.kinds]
-        self.coupled = [0.0 if a else w for a, w in zip(adamw, wd)]    # added to the gradient
+        self.coupled = [0.0 if a else w for a, w in zip(adamw, wd)]  # added to the gradient
         self.decoupled = [w if a else 0.0 for a, w in zip(adamw, wd)]  # shrinks the weights
         self.t = 0
         self.step_count = torch.zeros((), dtype=torch.float32)
@@ -68,8 +78,9 @@ class StackedOptimizer:
             self.moments = ([torch.zeros_like(p) for p in params], [torch.zeros_like(p) for p in params])
         if any(k in ("momentum", "nesterov") for k in self.kinds):
             self.buffers = [torch.zeros_like(p) for p in params]
-        self._coupled = [self._decay_coef(self.coupled, p, d) for p, d in zip(params, decays)] \
-            if any(self.coupled) else None
+        self._coupled = (
+            [self._decay_coef(self.coupled, p, d) for p, d in zip(params, decays)] if any(self.coupled) else None
+        )
         self._mu_cols = [_column(h["momentum"], p) for p in params]
 
     @staticmethod
@@ -110,14 +121,14 @@ class StackedOptimizer:
         for k, kind in enumerate(self.kinds):
             if not active[k]:
                 continue
-            ckey = ((kind, lr[k], self.h["beta1"][k], self.h["beta2"][k], self.h["eps"][k])
-                    if kind in _ADAM else (kind,))
+            ckey = (kind, lr[k], self.h["beta1"][k], self.h["beta2"][k], self.h["eps"][k]) if kind in _ADAM else (kind,)
             classes.setdefault(ckey, []).append(k)
         actions = []
         for ckey, rows in classes.items():
             for run in member_runs(rows):
-                actions.append(self._adam_action(run, *ckey[1:]) if ckey[0] in _ADAM
-                               else self._sgd_action(ckey[0], run, neg_lr))
+                actions.append(
+                    self._adam_action(run, *ckey[1:]) if ckey[0] in _ADAM else self._sgd_action(ckey[0], run, neg_lr)
+                )
         self._plan_key, self._plan_actions = key, actions
         return actions
 
@@ -137,6 +148,7 @@ class StackedOptimizer:
                     continue
                 buf.mul_(mu).add_(g)  # zeros on the first step, so b = g' as torch.optim
                 p.addcmul_(g.add_(buf * mu) if kind == "nesterov" else buf, neg_lr)
+
         return step
 
     def _adam_action(self, run: slice, lr: float, beta1: float, beta2: float, eps: float):
@@ -146,13 +158,27 @@ class StackedOptimizer:
         vs = [v[run] for v in self.moments[1]]
         steps = [self.step_count] * len(ps)
         if self.fused and ps[0].dtype in (torch.float32, torch.float64):
-            return lambda: torch._fused_adam_(ps, gs, ms, vs, [], steps, lr=lr, beta1=beta1, beta2=beta2,
-                                              weight_decay=0.0, eps=eps, amsgrad=False, maximize=False)
+            return lambda: torch._fused_adam_(
+                ps,
+                gs,
+                ms,
+                vs,
+                [],
+                steps,
+                lr=lr,
+                beta1=beta1,
+                beta2=beta2,
+                weight_decay=0.0,
+                eps=eps,
+                amsgrad=False,
+                maximize=False,
+            )
 
         def step():  # Kingma & Ba 2015, Algorithm 1
-            c1, c2 = 1 - beta1 ** self.t, 1 - beta2 ** self.t
+            c1, c2 = 1 - beta1**self.t, 1 - beta2**self.t
             for p, g, m, v in zip(ps, gs, ms, vs):
                 m.lerp_(g, 1 - beta1)
                 v.mul_(beta2).addcmul_(g, g, value=1 - beta2)
                 p.addcdiv_(m, (v / c2).sqrt_().add_(eps), value=-lr / c1)
+
         return step

@@ -3,6 +3,7 @@
 ``load_dataset`` reads a source once (in the main process) into a ``Dataset`` with a
 fingerprint of its bytes; splits.py cuts it per seed.
 """
+
 from __future__ import annotations
 
 import csv
@@ -14,27 +15,27 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from runner.errors import DataError
 from runner.components.metrics import Task
+from runner.errors import DataError
 from runner.recipe.settings import BUNDLED
 
 if TYPE_CHECKING:
     from runner.recipe.settings import DataSettings
 
-__all__ = ["Dataset", "load_dataset", "source_key", "MAX_CLASSES_AUTO"]
+__all__ = ["MAX_CLASSES_AUTO", "Dataset", "load_dataset", "source_key"]
 
 MAX_CLASSES_AUTO = 20  # whole-number targets with at most this many values count as classes
 
 
 @dataclass(frozen=True)
 class Dataset:
-    X: np.ndarray                   # float32, (N, F) or (N, C, H, W) for images
-    y: np.ndarray                   # int64 class indices, or float64 targets
+    X: np.ndarray  # float32, (N, F) or (N, C, H, W) for images
+    y: np.ndarray  # int64 class indices, or float64 targets
     task: Task
-    classes: tuple[str, ...]        # class labels (classification)
+    classes: tuple[str, ...]  # class labels (classification)
     feature_names: tuple[str, ...]
-    fingerprint: str                # sha256 of the bytes (files) or of the generator's settings
-    label: str                      # where it came from, for messages
+    fingerprint: str  # sha256 of the bytes (files) or of the generator's settings
+    label: str  # where it came from, for messages
 
     @property
     def image_shape(self) -> tuple[int, ...] | None:
@@ -57,9 +58,12 @@ def load_dataset(data: DataSettings, base_dir: Path) -> Dataset:
         try:
             raw = path.read_bytes()
         except FileNotFoundError:
-            raise DataError("data file not found", key="data.source", value=source,
-                            allowed="a CSV or NPZ path relative to the recipe, or " +
-                            ", ".join(BUNDLED)) from None
+            raise DataError(
+                "data file not found",
+                key="data.source",
+                value=source,
+                allowed="a CSV or NPZ path relative to the recipe, or " + ", ".join(BUNDLED),
+            ) from None
         except OSError as exc:
             raise DataError(f"cannot read data file ({exc.strerror})", key="data.source", value=source) from None
         fp = hashlib.sha256(raw).hexdigest()
@@ -71,10 +75,13 @@ def load_dataset(data: DataSettings, base_dir: Path) -> Dataset:
             X, y_raw, names, is_text = _csv(raw, label, data.target)
             task, y, classes = _target(y_raw, data.task, label, is_text)
     if task is Task.CLASSIFICATION and len(classes) < 2:
-        raise DataError("the target has only one class", key="data.target", value=data.target,
-                        hint="A classifier needs at least two classes")
-    return Dataset(X=X, y=y, task=task, classes=classes, feature_names=names, fingerprint=fp,
-                   label=label)
+        raise DataError(
+            "the target has only one class",
+            key="data.target",
+            value=data.target,
+            hint="A classifier needs at least two classes",
+        )
+    return Dataset(X=X, y=y, task=task, classes=classes, feature_names=names, fingerprint=fp, label=label)
 
 
 def _bundled(name: str, data: DataSettings):
@@ -88,8 +95,14 @@ def _bundled(name: str, data: DataSettings):
         # A fixed generator seed: the dataset is the same for every job; seeds vary the split.
         X, y = make(n_samples=data.n_samples, noise=data.noise, random_state=0, **kwargs)
         fp_text += f"|n={data.n_samples}|noise={data.noise}"
-        return (X.astype(np.float32), y.astype(np.int64), ("x1", "x2"), ("0", "1"),
-                Task.CLASSIFICATION, hashlib.sha256(fp_text.encode()).hexdigest())
+        return (
+            X.astype(np.float32),
+            y.astype(np.int64),
+            ("x1", "x2"),
+            ("0", "1"),
+            Task.CLASSIFICATION,
+            hashlib.sha256(fp_text.encode()).hexdigest(),
+        )
     bunch = getattr(datasets, f"load_{name}")()
     X = bunch.data.astype(np.float32)
     fp = hashlib.sha256(fp_text.encode()).hexdigest()
@@ -110,21 +123,30 @@ def _csv(raw: bytes, label: str, target: str | None):
         text = raw.decode("utf-8-sig")
     except UnicodeDecodeError:
         raise DataError("data file is not UTF-8 text", where=label) from None
-    numbered = [(n, line) for n, line in enumerate(text.splitlines(), 1)
-                if line.strip() and not line.lstrip().startswith("#")]
+    numbered = [
+        (n, line) for n, line in enumerate(text.splitlines(), 1) if line.strip() and not line.lstrip().startswith("#")
+    ]
     if len(numbered) < 2:
         raise DataError("CSV needs a header row and at least one data row", where=label)
     rows = list(csv.reader(io.StringIO("\n".join(line for _, line in numbered))))
     header = [h.strip() for h in rows[0]]
     if target is None:
-        raise DataError("a CSV source needs the target column named", key="data.target",
-                        allowed=", ".join(f'"{h}"' for h in header))
+        raise DataError(
+            "a CSV source needs the target column named", key="data.target", allowed=", ".join(f'"{h}"' for h in header)
+        )
     if target not in header:
         from runner.recipe.constraints import suggest
+
         near = suggest(target, header)
-        raise DataError("target column not in the CSV header", where=label, line=numbered[0][0],
-                        key="data.target", value=target, allowed=", ".join(f'"{h}"' for h in header),
-                        hint=f'Did you mean "{near}"?' if near else None)
+        raise DataError(
+            "target column not in the CSV header",
+            where=label,
+            line=numbered[0][0],
+            key="data.target",
+            value=target,
+            allowed=", ".join(f'"{h}"' for h in header),
+            hint=f'Did you mean "{near}"?' if near else None,
+        )
     t = header.index(target)
     names = tuple(h for i, h in enumerate(header) if i != t)
     if not names:
@@ -141,18 +163,28 @@ def _csv(raw: bytes, label: str, target: str | None):
             if i == t:
                 continue
             if not cell.strip():
-                raise DataError(f'column "{header[i]}" has a missing value', where=label, line=line,
-                                allowed="numbers (missing values are not accepted)",
-                                hint="Fill or drop rows with missing values")
+                raise DataError(
+                    f'column "{header[i]}" has a missing value',
+                    where=label,
+                    line=line,
+                    allowed="numbers (missing values are not accepted)",
+                    hint="Fill or drop rows with missing values",
+                )
             try:
                 X[r, c] = float(cell)
             except ValueError:
-                raise DataError(f'column "{header[i]}" is not numeric', where=label, line=line,
-                                value=cell.strip(), allowed="numbers (missing values are not accepted)",
-                                hint="Encode categories as numbers or drop the column") from None
+                raise DataError(
+                    f'column "{header[i]}" is not numeric',
+                    where=label,
+                    line=line,
+                    value=cell.strip(),
+                    allowed="numbers (missing values are not accepted)",
+                    hint="Encode categories as numbers or drop the column",
+                ) from None
             if not np.isfinite(X[r, c]):
-                raise DataError(f'column "{header[i]}" has an infinite or NaN value', where=label,
-                                line=line, value=cell.strip())
+                raise DataError(
+                    f'column "{header[i]}" has an infinite or NaN value', where=label, line=line, value=cell.strip()
+                )
             c += 1
     if any(v == "" for v in y_raw):
         line = numbered[1 + y_raw.index("")][0]
@@ -170,8 +202,7 @@ def _npz(raw: bytes, label: str):
     try:
         with np.load(io.BytesIO(raw), allow_pickle=False) as z:
             if "X" not in z or "y" not in z:
-                raise DataError("an NPZ source needs arrays named X and y", where=label,
-                                value=sorted(z.keys()))
+                raise DataError("an NPZ source needs arrays named X and y", where=label, value=sorted(z.keys()))
             X, y = z["X"], z["y"]
     except DataError:
         raise
@@ -180,8 +211,11 @@ def _npz(raw: bytes, label: str):
     if X.ndim == 3:
         X = X[:, None]
     if X.ndim != 4 or len(X) != len(y) or y.ndim != 1:
-        raise DataError("NPZ needs X of shape (N, H, W) or (N, C, H, W) and y of shape (N,)",
-                        where=label, value=f"X{tuple(X.shape)}, y{tuple(y.shape)}")
+        raise DataError(
+            "NPZ needs X of shape (N, H, W) or (N, C, H, W) and y of shape (N,)",
+            where=label,
+            value=f"X{tuple(X.shape)}, y{tuple(y.shape)}",
+        )
     return X.astype(np.float32), y
 
 
@@ -191,8 +225,13 @@ def _target(y: np.ndarray, task: str, label: str, is_text: bool):
         task = "classification" if is_text or (whole and len(np.unique(y)) <= MAX_CLASSES_AUTO) else "regression"
     if task == Task.REGRESSION:
         if is_text:
-            raise DataError("a text target cannot be a regression target", where=label,
-                            key="data.task", value="regression", allowed='"classification"')
+            raise DataError(
+                "a text target cannot be a regression target",
+                where=label,
+                key="data.task",
+                value="regression",
+                allowed='"classification"',
+            )
         return Task.REGRESSION, y.astype(np.float64), ()
     values = sorted(set(y.tolist()), key=lambda v: (isinstance(v, str), v))
     index = {v: i for i, v in enumerate(values)}

@@ -1,4 +1,5 @@
 """One seed's train/val/test split of a dataset, with scaling fitted on the training rows."""
+
 from __future__ import annotations
 
 from dataclasses import dataclass
@@ -24,10 +25,9 @@ class Splits:
     y_val: np.ndarray
     X_test: np.ndarray | None
     y_test: np.ndarray | None
-    y_mean: float = 0.0           # regression: targets are standardized for training
+    y_mean: float = 0.0  # regression: targets are standardized for training
     y_std: float = 1.0
     scaler_mean: np.ndarray | None = None
-
 
 
 def _split_off(idx: np.ndarray, share: float, seed: int, strat: np.ndarray | None):
@@ -37,7 +37,8 @@ def _split_off(idx: np.ndarray, share: float, seed: int, strat: np.ndarray | Non
     from sklearn.model_selection import ShuffleSplit, StratifiedShuffleSplit
 
     splitter = (ShuffleSplit if strat is None else StratifiedShuffleSplit)(
-        n_splits=1, test_size=share, random_state=seed)
+        n_splits=1, test_size=share, random_state=seed
+    )
     kept, off = next(splitter.split(idx, strat))
     return idx[kept], idx[off]
 
@@ -55,8 +56,11 @@ def split_and_scale(ds: Dataset, data: DataSettings, seed: int) -> Splits:
         val_share = split.val / (1.0 - split.test)
         train_idx, val_idx = _split_off(idx, val_share, seed, strat)
     except ValueError as exc:
-        raise DataError(f"cannot split the data as asked ({exc})", key="data.split",
-                        hint="Use larger val/test fractions or stratify = false") from None
+        raise DataError(
+            f"cannot split the data as asked ({exc})",
+            key="data.split",
+            hint="Use larger val/test fractions or stratify = false",
+        ) from None
     X = ds.X.reshape(len(ds.X), -1)
     mean = np.zeros(X.shape[1], np.float32)
     scale = np.ones(X.shape[1], np.float32)

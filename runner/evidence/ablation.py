@@ -10,6 +10,7 @@
   level of the first depends on the level of the second.
 - Regularization and optimization views for factors that touch those settings.
 """
+
 from __future__ import annotations
 
 import itertools
@@ -18,18 +19,45 @@ from collections import defaultdict
 
 from runner.components.metrics import Goal
 from runner.evidence import stats
-from runner.evidence.document import (Ablation, Interaction, LevelEffect, MainEffect, MatchedDifference,
-                                      OneAtATime, OneAtATimeRow, OptimizationRow, RegularizationRow)
+from runner.evidence.document import (
+    Ablation,
+    Interaction,
+    LevelEffect,
+    MainEffect,
+    MatchedDifference,
+    OneAtATime,
+    OneAtATimeRow,
+    OptimizationRow,
+    RegularizationRow,
+)
 from runner.recipe.grid import Grid
 from runner.store.database import Store
 from runner.training.job import Status
 
-__all__ = ["ablation", "REGULARIZATION_PATHS", "OPTIMIZATION_PATHS"]
+__all__ = ["OPTIMIZATION_PATHS", "REGULARIZATION_PATHS", "ablation"]
 
-REGULARIZATION_PATHS = {"train.l1", "train.l2", "train.l1_mode", "train.weight_decay", "train.patience",
-                        "model.dropout", "model.input_dropout", "model.batch_norm"}
-OPTIMIZATION_PATHS = {"train.optimizer", "train.lr", "train.momentum", "train.beta1", "train.beta2",
-                      "train.alpha", "train.eps", "train.schedule", "train.batch_size", "train.clip_norm"}
+REGULARIZATION_PATHS = {
+    "train.l1",
+    "train.l2",
+    "train.l1_mode",
+    "train.weight_decay",
+    "train.patience",
+    "model.dropout",
+    "model.input_dropout",
+    "model.batch_norm",
+}
+OPTIMIZATION_PATHS = {
+    "train.optimizer",
+    "train.lr",
+    "train.momentum",
+    "train.beta1",
+    "train.beta2",
+    "train.alpha",
+    "train.eps",
+    "train.schedule",
+    "train.batch_size",
+    "train.clip_norm",
+}
 REACH = 0.95  # "epochs to reach 95% of the configuration's best val metric"
 
 
@@ -72,7 +100,7 @@ def _matched_difference(table: _Table, f: int, level: int, base: int) -> Matched
     for (levels, seed), v in table.value.items():
         if levels[f] != level:
             continue
-        twin = levels[:f] + (base,) + levels[f + 1:]
+        twin = levels[:f] + (base,) + levels[f + 1 :]
         if (twin, seed) in table.value:
             per_seed[seed].append(v - table.value[(twin, seed)])
     if not per_seed:
@@ -83,8 +111,9 @@ def _matched_difference(table: _Table, f: int, level: int, base: int) -> Matched
     pairs = sum(len(v) for v in per_seed.values())
     if out is None:
         return MatchedDifference(diff_mean=means[0], ci95=None, p_value=None, n_pairs=pairs, n_seeds=len(seeds))
-    return MatchedDifference(diff_mean=out["diff_mean"], ci95=out["ci95"], p_value=out["p_value"],
-                             n_pairs=pairs, n_seeds=len(seeds))
+    return MatchedDifference(
+        diff_mean=out["diff_mean"], ci95=out["ci95"], p_value=out["p_value"], n_pairs=pairs, n_seeds=len(seeds)
+    )
 
 
 def _main_effects(grid: Grid, table: _Table) -> list[MainEffect]:
@@ -95,9 +124,15 @@ def _main_effects(grid: Grid, table: _Table) -> list[MainEffect]:
         for i in range(len(factor.levels)):
             per_seed = _per_seed_mean(table, lambda lv, i=i, f=f: lv[f] == i)
             summary = stats.summarize(list(per_seed.values()))
-            levels.append(LevelEffect(label=factor.label(i), mean=summary["mean"], ci95=summary["ci95"],
-                                      n_seeds=summary["n"],
-                                      diff_vs_baseline=None if i == base else _matched_difference(table, f, i, base)))
+            levels.append(
+                LevelEffect(
+                    label=factor.label(i),
+                    mean=summary["mean"],
+                    ci95=summary["ci95"],
+                    n_seeds=summary["n"],
+                    diff_vs_baseline=None if i == base else _matched_difference(table, f, i, base),
+                )
+            )
         out.append(MainEffect(factor=factor.name, baseline=factor.label(base), levels=levels))
     return out
 
@@ -113,17 +148,25 @@ def _one_at_a_time(grid: Grid, table: _Table) -> OneAtATime | None:
         for i in range(len(factor.levels)):
             if i == base[f]:
                 continue
-            cell = base[:f] + (i,) + base[f + 1:]
+            cell = base[:f] + (i,) + base[f + 1 :]
             vals = {s: table.value[(cell, s)] for s in table.seeds if (cell, s) in table.value}
             seeds = sorted(set(vals) & set(base_vals))
             cmp = stats.paired([vals[s] for s in seeds], [base_vals[s] for s in seeds])
-            rows.append(OneAtATimeRow(factor=factor.name, label=factor.label(i), n_pairs=len(seeds),
-                                      mean=statistics.fmean(vals.values()) if vals else None,
-                                      diff_mean=cmp["diff_mean"] if cmp else None,
-                                      ci95=cmp["ci95"] if cmp else None, p_value=cmp["p_value"] if cmp else None))
+            rows.append(
+                OneAtATimeRow(
+                    factor=factor.name,
+                    label=factor.label(i),
+                    n_pairs=len(seeds),
+                    mean=statistics.fmean(vals.values()) if vals else None,
+                    diff_mean=cmp["diff_mean"] if cmp else None,
+                    ci95=cmp["ci95"] if cmp else None,
+                    p_value=cmp["p_value"] if cmp else None,
+                )
+            )
     labels = {f.name: f.label(b) for f, b in zip(factors, base)}
-    return OneAtATime(baseline=labels, baseline_mean=statistics.fmean(base_vals.values()) if base_vals else None,
-                      rows=rows)
+    return OneAtATime(
+        baseline=labels, baseline_mean=statistics.fmean(base_vals.values()) if base_vals else None, rows=rows
+    )
 
 
 def _interactions(grid: Grid, table: _Table) -> list[Interaction]:
@@ -145,8 +188,9 @@ def _interactions(grid: Grid, table: _Table) -> list[Interaction]:
             known = {k: v for k, v in row.items() if v is not None}
             best[bl] = pick(known, key=known.get) if known else None
         distinct = {v for v in best.values() if v is not None}
-        out.append(Interaction(a=factors[a].name, b=factors[b].name, means=means, best_a_by_b=best,
-                               depends=len(distinct) > 1))
+        out.append(
+            Interaction(a=factors[a].name, b=factors[b].name, means=means, best_a_by_b=best, depends=len(distinct) > 1)
+        )
     return out
 
 
@@ -166,11 +210,17 @@ def _regularization(grid: Grid, table: _Table) -> list[RegularizationRow]:
             continue
         for i in range(len(factor.levels)):
             done = [c for c in _level_cells(table, f, i) if c in table.value]
-            out.append(RegularizationRow(
-                factor=factor.name, label=factor.label(i), n=len(done), mean=_mean_of(table.value[c] for c in done),
-                gap=_mean_of(table.diag[c].get("gap") for c in done),
-                zero_fraction=_mean_of(table.diag[c].get("zero_fraction") for c in done),
-                near_zero_fraction=_mean_of(table.diag[c].get("near_zero_fraction") for c in done)))
+            out.append(
+                RegularizationRow(
+                    factor=factor.name,
+                    label=factor.label(i),
+                    n=len(done),
+                    mean=_mean_of(table.value[c] for c in done),
+                    gap=_mean_of(table.diag[c].get("gap") for c in done),
+                    zero_fraction=_mean_of(table.diag[c].get("zero_fraction") for c in done),
+                    near_zero_fraction=_mean_of(table.diag[c].get("near_zero_fraction") for c in done),
+                )
+            )
     return out
 
 
@@ -202,15 +252,27 @@ def _optimization(grid: Grid, table: _Table) -> list[OptimizationRow]:
                 reach.append(_epochs_to_reach(curves.get(name, []), table.goal))
                 losses = curves.get("train_loss", [])
                 final.append(losses[-1] if losses else None)
-            out.append(OptimizationRow(
-                factor=factor.name, label=factor.label(i), n=len(done), mean=_mean_of(table.value[c] for c in done),
-                epochs_to_95pct=_mean_of(reach), final_train_loss=_mean_of(final),
-                diverged=sum(1 for c in cells if table.status[c] is Status.DIVERGED)))
+            out.append(
+                OptimizationRow(
+                    factor=factor.name,
+                    label=factor.label(i),
+                    n=len(done),
+                    mean=_mean_of(table.value[c] for c in done),
+                    epochs_to_95pct=_mean_of(reach),
+                    final_train_loss=_mean_of(final),
+                    diverged=sum(1 for c in cells if table.status[c] is Status.DIVERGED),
+                )
+            )
     return out
 
 
 def ablation(grid: Grid, store: Store) -> Ablation:
     table = _Table(grid, store, with_curves=any(set(f.paths) & OPTIMIZATION_PATHS for f in grid.recipe.factors))
-    return Ablation(metric=grid.rank_by, main_effects=_main_effects(grid, table),
-                    one_at_a_time=_one_at_a_time(grid, table), interactions=_interactions(grid, table),
-                    regularization=_regularization(grid, table), optimization=_optimization(grid, table))
+    return Ablation(
+        metric=grid.rank_by,
+        main_effects=_main_effects(grid, table),
+        one_at_a_time=_one_at_a_time(grid, table),
+        interactions=_interactions(grid, table),
+        regularization=_regularization(grid, table),
+        optimization=_optimization(grid, table),
+    )

@@ -7,6 +7,7 @@ is claimed only when an interval for an interaction contrast excludes 0; the int
 Scheffe's (1953), simultaneous over every contrast of the interaction, which for a 2 x 2
 table is the ordinary t interval and agrees with the F test for the interaction.
 """
+
 from __future__ import annotations
 
 import itertools
@@ -85,7 +86,7 @@ def two_way_blocks(y, protocol: Resampling = FIXED) -> TwoWay:
     ss_ab = n * float(((cell - ma[:, None] - mb[None, :] + grand) ** 2).sum())
     ss_seed = a * b * float(((ms_ - grand) ** 2).sum())
     resid = data - cell[:, :, None] - ms_[None, None, :] + grand
-    ss_e = float((resid ** 2).sum())
+    ss_e = float((resid**2).sum())
     df_e = (a * b - 1) * (n - 1)
     ms_e = ss_e / df_e
     factor = n * protocol.variance_factor(n)
@@ -98,8 +99,16 @@ def two_way_blocks(y, protocol: Resampling = FIXED) -> TwoWay:
         f = ms / ms_e / factor
         return Effect(name, ss, df, ms, f, f_sf(f, df, df_e))
 
-    return TwoWay(effect("A", ss_a, a - 1), effect("B", ss_b, b - 1), effect("A x B", ss_ab, (a - 1) * (b - 1)),
-                  effect("seeds", ss_seed, n - 1), ms_e, df_e, factor, protocol.kind)
+    return TwoWay(
+        effect("A", ss_a, a - 1),
+        effect("B", ss_b, b - 1),
+        effect("A x B", ss_ab, (a - 1) * (b - 1)),
+        effect("seeds", ss_seed, n - 1),
+        ms_e,
+        df_e,
+        factor,
+        protocol.kind,
+    )
 
 
 @dataclass(frozen=True, slots=True)
@@ -135,17 +144,18 @@ def interaction_contrasts(y, level: float = 0.95, protocol: Resampling = FIXED) 
     else:
         half = math.sqrt(q * f_isf(1.0 - level, q, table.residual_df)) * math.sqrt(table.residual_ms * 4.0 * v)
     out = []
-    for (i, i2), (j, j2) in itertools.product(itertools.combinations(range(a), 2),
-                                              itertools.combinations(range(b), 2)):
+    for (i, i2), (j, j2) in itertools.product(itertools.combinations(range(a), 2), itertools.combinations(range(b), 2)):
         est = float(cell[i2, j2] - cell[i2, j] - cell[i, j2] + cell[i, j])
         low, high = (None, None) if half is None else (est - half, est + half)
-        out.append(InteractionContrast((i, i2), (j, j2), est, low, high,
-                                       bool(low is not None and (low > 0 or high < 0))))
+        out.append(
+            InteractionContrast((i, i2), (j, j2), est, low, high, bool(low is not None and (low > 0 or high < 0)))
+        )
     return tuple(out)
 
 
-def matched_difference(y, axis: int, level: int, base: int, protocol: Resampling = FIXED,
-                       confidence: float = 0.95) -> PairedDifference:
+def matched_difference(
+    y, axis: int, level: int, base: int, protocol: Resampling = FIXED, confidence: float = 0.95
+) -> PairedDifference:
     """Main effect of one factor: level minus base, averaged over matched cells (same levels
     of the other factors, same seed) within each seed, then a paired interval over seeds.
 

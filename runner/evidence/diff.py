@@ -4,6 +4,7 @@ judged with Welch's unpaired interval (the runs are separate, so seeds do not pa
 Inputs may be leaderboard JSON files (``recipe board --format json``), result stores, or
 recipes (read through their default store).
 """
+
 from __future__ import annotations
 
 import json
@@ -20,7 +21,7 @@ from runner.evidence.document import Leaderboard, Row
 from runner.outputs.text import grid_lines, interval, number, p_text
 from runner.recipe.grid import canonical
 
-__all__ = ["load_board", "diff", "render_diff", "Diff", "ConfigChange", "FORMAT", "VERDICTS"]
+__all__ = ["FORMAT", "VERDICTS", "ConfigChange", "Diff", "diff", "load_board", "render_diff"]
 
 FORMAT = "recipe-diff"
 VERSION = 1
@@ -38,6 +39,7 @@ class Side:
 @dataclass(frozen=True)
 class ConfigChange:
     """One configuration present in both leaderboards."""
+
     labels: dict[str, str]
     levels: dict[str, Any]
     old: Side
@@ -54,9 +56,9 @@ class ConfigChange:
 class Diff:
     metric: str
     goal: Goal
-    old: dict[str, str | None]       # recipe, source
+    old: dict[str, str | None]  # recipe, source
     new: dict[str, str | None]
-    changes: list[dict[str, Any]]    # what, old, new
+    changes: list[dict[str, Any]]  # what, old, new
     configs: list[ConfigChange]
     only_old: list[dict[str, str]]
     only_new: list[dict[str, str]]
@@ -79,8 +81,9 @@ def load_board(path: str | Path, store: str | Path | None = None) -> Leaderboard
 
     path = Path(path)
     if not path.exists():
-        raise UserError("file not found", where=str(path),
-                        allowed="a leaderboard JSON file, a results store, or a recipe")
+        raise UserError(
+            "file not found", where=str(path), allowed="a leaderboard JSON file, a results store, or a recipe"
+        )
     head = path.read_bytes()[:16]
     if head.startswith(b"SQLite format 3"):
         with Store(path, create=False) as db:
@@ -90,8 +93,11 @@ def load_board(path: str | Path, store: str | Path | None = None) -> Leaderboard
             try:
                 grid = expand(parse_recipe(row[0], Path(row[1])))
             except UserError as err:
-                raise StoreError(f"cannot rebuild this store's grid ({err.message()})", where=str(path),
-                                 hint="Pass the recipe or a JSON export of its leaderboard instead") from None
+                raise StoreError(
+                    f"cannot rebuild this store's grid ({err.message()})",
+                    where=str(path),
+                    hint="Pass the recipe or a JSON export of its leaderboard instead",
+                ) from None
             return replace(leaderboard(grid, db), source=str(path))
     if path.suffix == ".toml":
         recipe = load_recipe(path)
@@ -102,13 +108,19 @@ def load_board(path: str | Path, store: str | Path | None = None) -> Leaderboard
     try:
         doc = json.loads(path.read_text())
     except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise UserError(f"not a leaderboard JSON file ({exc})", where=str(path),
-                        hint="Export one with: recipe board RECIPE --format json --out FILE") from None
+        raise UserError(
+            f"not a leaderboard JSON file ({exc})",
+            where=str(path),
+            hint="Export one with: recipe board RECIPE --format json --out FILE",
+        ) from None
     if not isinstance(doc, dict) or doc.get("format") != BOARD:
-        raise UserError(f'not a "{BOARD}" document', where=str(path), value=doc.get("format") if isinstance(doc, dict) else None)
+        raise UserError(
+            f'not a "{BOARD}" document', where=str(path), value=doc.get("format") if isinstance(doc, dict) else None
+        )
     if doc.get("version") != BOARD_VERSION:
-        raise UserError("unsupported leaderboard version", where=str(path), value=doc.get("version"),
-                        allowed=str(BOARD_VERSION))
+        raise UserError(
+            "unsupported leaderboard version", where=str(path), value=doc.get("version"), allowed=str(BOARD_VERSION)
+        )
     return Leaderboard.from_json(doc, source=str(path))
 
 
@@ -138,8 +150,13 @@ def _changes(old: Leaderboard, new: Leaderboard) -> list[dict[str, Any]]:
         if ob.get(key) != nb.get(key):
             out.append({"what": key, "old": ob.get(key), "new": nb.get(key)})
     if old.data != new.data:
-        out.append({"what": "data fingerprint", "old": ",".join(d[:12] for d in old.data),
-                    "new": ",".join(d[:12] for d in new.data)})
+        out.append(
+            {
+                "what": "data fingerprint",
+                "old": ",".join(d[:12] for d in old.data),
+                "new": ",".join(d[:12] for d in new.data),
+            }
+        )
     oe = old.environment.first or {}
     ne = new.environment.first or {}
     for key in ENV_KEYS:
@@ -152,8 +169,11 @@ def _changes(old: Leaderboard, new: Leaderboard) -> list[dict[str, Any]]:
 
 def diff(old: Leaderboard, new: Leaderboard) -> Diff:
     if old.goal != new.goal or old.metric != new.metric:
-        raise UserError("the two leaderboards rank different metrics, so they cannot be compared",
-                        value=f"{old.metric} vs {new.metric}", hint="Export both with the same rank_by")
+        raise UserError(
+            "the two leaderboards rank different metrics, so they cannot be compared",
+            value=f"{old.metric} vs {new.metric}",
+            hint="Export both with the same rank_by",
+        )
     goal = new.goal
     old_rows = {canonical(r.labels): r for r in old.rows}
     new_rows = {canonical(r.labels): r for r in new.rows}
@@ -164,25 +184,44 @@ def diff(old: Leaderboard, new: Leaderboard) -> Diff:
         orow = old_rows[key]
         verdict, test, reason = _verdict(orow, nrow, goal)
         move = (orow.rank - nrow.rank) if orow.rank and nrow.rank else None
-        configs.append(ConfigChange(
-            labels=nrow.labels, levels=nrow.levels, old=Side(orow.mean, orow.n, orow.rank),
-            new=Side(nrow.mean, nrow.n, nrow.rank), diff_mean=test["diff_mean"] if test else None,
-            ci95=test["ci95"] if test else None, p_value=test["p_value"] if test else None, rank_move=move,
-            verdict=verdict, reason=reason))
+        configs.append(
+            ConfigChange(
+                labels=nrow.labels,
+                levels=nrow.levels,
+                old=Side(orow.mean, orow.n, orow.rank),
+                new=Side(nrow.mean, nrow.n, nrow.rank),
+                diff_mean=test["diff_mean"] if test else None,
+                ci95=test["ci95"] if test else None,
+                p_value=test["p_value"] if test else None,
+                rank_move=move,
+                verdict=verdict,
+                reason=reason,
+            )
+        )
     configs.sort(key=lambda c: (c.new.rank is None, c.new.rank or 0))
-    return Diff(metric=new.metric, goal=goal, old={"recipe": old.recipe, "source": old.source},
-                new={"recipe": new.recipe, "source": new.source}, changes=_changes(old, new), configs=configs,
-                only_old=[old_rows[k].labels for k in old_rows if k not in new_rows],
-                only_new=[new_rows[k].labels for k in new_rows if k not in old_rows],
-                summary={v: sum(1 for c in configs if c.verdict == v) for v in VERDICTS})
+    return Diff(
+        metric=new.metric,
+        goal=goal,
+        old={"recipe": old.recipe, "source": old.source},
+        new={"recipe": new.recipe, "source": new.source},
+        changes=_changes(old, new),
+        configs=configs,
+        only_old=[old_rows[k].labels for k in old_rows if k not in new_rows],
+        only_new=[new_rows[k].labels for k in new_rows if k not in old_rows],
+        summary={v: sum(1 for c in configs if c.verdict == v) for v in VERDICTS},
+    )
 
 
 def render_diff(d: Diff, fmt: str) -> str:
     if fmt == "json":
         return json.dumps(d.to_json(), indent=2) + "\n"
     md = fmt == "markdown"
-    lines = [("### " if md else "") + f"{d.old['source']} -> {d.new['source']}",
-             "", f"Metric {d.metric} ({d.goal.words}); changes judged by Welch's t interval at the 5% level.", ""]
+    lines = [
+        ("### " if md else "") + f"{d.old['source']} -> {d.new['source']}",
+        "",
+        f"Metric {d.metric} ({d.goal.words}); changes judged by Welch's t interval at the 5% level.",
+        "",
+    ]
     if d.changes:
         lines.append("What else changed:")
         lines += [f"- {c['what']}: {c['old']} -> {c['new']}" for c in d.changes]
@@ -192,15 +231,25 @@ def render_diff(d: Diff, fmt: str) -> str:
     body = []
     for c in d.configs:
         move = "-" if c.rank_move is None else (f"{c.rank_move:+d}" if c.rank_move else "0")
-        body.append([*[str(c.labels[n]) for n in names], number(c.old.mean), number(c.new.mean),
-                     "-" if c.diff_mean is None else f"{c.diff_mean:+.4f}", interval(c.ci95),
-                     p_text(c.p_value), f"{c.old.rank or '-'}->{c.new.rank or '-'} ({move})",
-                     c.verdict + (f" ({c.reason})" if c.reason else "")])
+        body.append(
+            [
+                *[str(c.labels[n]) for n in names],
+                number(c.old.mean),
+                number(c.new.mean),
+                "-" if c.diff_mean is None else f"{c.diff_mean:+.4f}",
+                interval(c.ci95),
+                p_text(c.p_value),
+                f"{c.old.rank or '-'}->{c.new.rank or '-'} ({move})",
+                c.verdict + (f" ({c.reason})" if c.reason else ""),
+            ]
+        )
     lines += [""] + grid_lines([*names, "old", "new", "change", "95% CI", "p", "rank", "verdict"], body, md)
     for name, side in (("old", d.only_old), ("new", d.only_new)):
         if side:
-            lines += ["", f"Only in {name}: " + "; ".join(", ".join(f"{k} = {v}" for k, v in labels.items())
-                                                        for labels in side)]
+            lines += [
+                "",
+                f"Only in {name}: " + "; ".join(", ".join(f"{k} = {v}" for k, v in labels.items()) for labels in side),
+            ]
     s = d.summary
     lines += ["", f"{s['better']} better, {s['worse']} worse, {s['no clear change']} no clear change."]
     return "\n".join(lines) + "\n"

@@ -8,6 +8,7 @@ freedom; quantiles are found by safeguarded Newton steps on the log of a tail. T
 them to scipy.stats to ~1e-12 relative. ``scaled_chi_nodes`` gives a quadrature rule over
 the distribution of s / sigma, shared by the Dunnett constant and the power calculations.
 """
+
 from __future__ import annotations
 
 import math
@@ -37,6 +38,7 @@ _LN_SQRT_2PI = 0.5 * math.log(2 * math.pi)
 
 
 # --- normal ------------------------------------------------------------------------------
+
 
 def norm_cdf(x: float) -> float:
     """P(Z <= x) for a standard normal Z."""
@@ -70,8 +72,12 @@ def norm_cdf_array(x) -> np.ndarray:
     i = np.minimum(pos.astype(np.int64), values.size - 2)
     t = pos - i
     t2, t3 = t * t, t * t * t
-    return ((2 * t3 - 3 * t2 + 1) * values[i] + (t3 - 2 * t2 + t) * slopes[i]
-            + (3 * t2 - 2 * t3) * values[i + 1] + (t3 - t2) * slopes[i + 1])
+    return (
+        (2 * t3 - 3 * t2 + 1) * values[i]
+        + (t3 - 2 * t2 + t) * slopes[i]
+        + (3 * t2 - 2 * t3) * values[i + 1]
+        + (t3 - t2) * slopes[i + 1]
+    )
 
 
 def _norm_pdf(x: float) -> float:
@@ -103,11 +109,15 @@ def norm_ppf(p: float) -> float:
 
 # --- incomplete beta ---------------------------------------------------------------------
 
+
 def _lgamma_correction(x: float) -> float:
     """ln Gamma(x) - Stirling's main terms for x >= 10 (Bernoulli-number series)."""
     inv, inv2 = 1.0 / x, 1.0 / (x * x)
-    return inv * (1 / 12 - inv2 * (1 / 360 - inv2 * (1 / 1260 - inv2 * (1 / 1680 - inv2 * (
-        1 / 1188 - inv2 * (691 / 360360 - inv2 / 156))))))
+    return inv * (
+        1 / 12
+        - inv2
+        * (1 / 360 - inv2 * (1 / 1260 - inv2 * (1 / 1680 - inv2 * (1 / 1188 - inv2 * (691 / 360360 - inv2 / 156)))))
+    )
 
 
 def _lbeta(a: float, b: float) -> float:
@@ -119,8 +129,14 @@ def _lbeta(a: float, b: float) -> float:
     corr = _lgamma_correction(b) - _lgamma_correction(a + b)
     if a < 10:
         return math.lgamma(a) + corr - (b - 0.5) * math.log1p(a / b) - a * math.log(a + b) + a
-    return (_LN_SQRT_2PI - 0.5 * math.log(b) + (a - 0.5) * math.log(a / (a + b))
-            + b * math.log1p(-a / (a + b)) + corr + _lgamma_correction(a))
+    return (
+        _LN_SQRT_2PI
+        - 0.5 * math.log(b)
+        + (a - 0.5) * math.log(a / (a + b))
+        + b * math.log1p(-a / (a + b))
+        + corr
+        + _lgamma_correction(a)
+    )
 
 
 def _beta_fraction(a: float, b: float, x: float) -> float:
@@ -131,8 +147,7 @@ def _beta_fraction(a: float, b: float, x: float) -> float:
     h = d
     for m in range(1, 20000):
         m2 = 2 * m
-        for aa in (m * (b - m) * x / ((qam + m2) * (a + m2)),
-                   -(a + m) * (qab + m) * x / ((a + m2) * (qap + m2))):
+        for aa in (m * (b - m) * x / ((qam + m2) * (a + m2)), -(a + m) * (qab + m) * x / ((a + m2) * (qap + m2))):
             d = 1.0 + aa * d
             d = 1.0 / (d if abs(d) > _TINY else _TINY)
             c = 1.0 + aa / c
@@ -169,6 +184,7 @@ def _beta_pair(a: float, b: float, x: float, y: float) -> tuple[float, float]:
 
 # --- Student t ---------------------------------------------------------------------------
 
+
 def _t_split(t: float, df: float) -> tuple[float, float]:
     """(P(T > |t|), P(0 < T < |t|)): the outer and central parts of a half."""
     t2 = t * t
@@ -204,8 +220,7 @@ def t_pdf(t: float, df: float) -> float:
     return math.exp(-_lbeta(0.5, df / 2.0) - 0.5 * math.log(df) - (df + 1) / 2.0 * math.log1p(t * t / df))
 
 
-def _newton_log_tail(tail, dens, target: float, x: float, lo: float,
-                     sign: float = 1.0) -> float:
+def _newton_log_tail(tail, dens, target: float, x: float, lo: float, sign: float = 1.0) -> float:
     """Solve tail(x) = target for x > lo, tail decreasing (sign 1) or increasing (sign -1),
     by Newton steps on log tail, kept inside a bracket that bisection falls back to."""
     hi = math.inf
@@ -251,9 +266,9 @@ def t_isf(q: float, df: float) -> float:
         return math.inf
     if df == 1.0:  # Cauchy: exact
         return 1.0 / math.tan(math.pi * q)
-    dens = lambda x: t_pdf(x, df)  # noqa: E731
+    dens = lambda x: t_pdf(x, df)
     z = norm_isf(q)
-    guess = z + (z ** 3 + z) / (4 * df) + (5 * z ** 5 + 16 * z ** 3 + 3 * z) / (96 * df * df)
+    guess = z + (z**3 + z) / (4 * df) + (5 * z**5 + 16 * z**3 + 3 * z) / (96 * df * df)
     if q < 0.25:
         return _newton_log_tail(lambda x: t_sf(x, df), dens, q, guess, 0.0)
     # near the centre solve P(0 < T < t) = 0.5 - q, which keeps relative precision at small t
@@ -268,6 +283,7 @@ def t_ppf(p: float, df: float) -> float:
 
 
 # --- F -----------------------------------------------------------------------------------
+
 
 def f_sf(f: float, dfn: float, dfd: float) -> float:
     """P(F > f) for Snedecor's F with (dfn, dfd) degrees of freedom."""
@@ -284,8 +300,9 @@ def f_sf(f: float, dfn: float, dfd: float) -> float:
 
 def _f_pdf(f: float, dfn: float, dfd: float) -> float:
     a, b = dfn / 2.0, dfd / 2.0
-    return math.exp(a * math.log(dfn / dfd) + (a - 1) * math.log(f) - (a + b) * math.log1p(dfn * f / dfd)
-                    - _lbeta(a, b))
+    return math.exp(
+        a * math.log(dfn / dfd) + (a - 1) * math.log(f) - (a + b) * math.log1p(dfn * f / dfd) - _lbeta(a, b)
+    )
 
 
 def f_isf(q: float, dfn: float, dfd: float) -> float:
@@ -296,6 +313,7 @@ def f_isf(q: float, dfn: float, dfd: float) -> float:
 
 
 # --- quadrature over s / sigma -------------------------------------------------------------
+
 
 def _log_density_edge(df: float, depth: float, side: float) -> float:
     """u = ln(s/sigma) where the log density has fallen by depth below its mode at u = 0;
@@ -330,8 +348,7 @@ def scaled_chi_nodes(df: float, panels: int = 24, per_panel: int = 8) -> tuple[n
     split = max(lo, 0.5)
     s_parts, w_parts = [], []
     log_panels = max(2, math.ceil((math.log(split) - math.log(lo)) / min(0.75, 6.0 / df)))
-    for a, b, count, log_scale in ((math.log(lo), math.log(split), log_panels, True),
-                                   (split, hi, panels, False)):
+    for a, b, count, log_scale in ((math.log(lo), math.log(split), log_panels, True), (split, hi, panels, False)):
         if b <= a:
             continue
         edges = np.linspace(a, b, count + 1)
@@ -346,7 +363,12 @@ def scaled_chi_nodes(df: float, panels: int = 24, per_panel: int = 8) -> tuple[n
         w_parts.append(weights)
     s, weight = np.concatenate(s_parts), np.concatenate(w_parts)
     # density of S: 2 (df/2)^(df/2) s^(df-1) exp(-df s^2 / 2) / Gamma(df/2)
-    log_dens = (math.log(2.0) + (df / 2.0) * math.log(df / 2.0) - math.lgamma(df / 2.0)
-                + (df - 1.0) * np.log(s) - df / 2.0 * s * s)
+    log_dens = (
+        math.log(2.0)
+        + (df / 2.0) * math.log(df / 2.0)
+        - math.lgamma(df / 2.0)
+        + (df - 1.0) * np.log(s)
+        - df / 2.0 * s * s
+    )
     weight = weight * np.exp(log_dens)
     return s, weight / weight.sum()

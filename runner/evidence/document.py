@@ -4,6 +4,7 @@ exported board back (``recipe diff``).
 
 Every renderer, the diff and the report read these objects, never raw dicts.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -13,9 +14,24 @@ from typing import Any
 from runner.components.metrics import Goal
 from runner.errors import UserError
 
-__all__ = ["FORMAT", "FORMAT_VERSION", "Counts", "Comparison", "Row", "Environment", "Leaderboard",
-           "LevelEffect", "MatchedDifference", "MainEffect", "OneAtATime", "OneAtATimeRow",
-           "Interaction", "RegularizationRow", "OptimizationRow", "Ablation"]
+__all__ = [
+    "FORMAT",
+    "FORMAT_VERSION",
+    "Ablation",
+    "Comparison",
+    "Counts",
+    "Environment",
+    "Interaction",
+    "Leaderboard",
+    "LevelEffect",
+    "MainEffect",
+    "MatchedDifference",
+    "OneAtATime",
+    "OneAtATimeRow",
+    "OptimizationRow",
+    "RegularizationRow",
+    "Row",
+]
 
 FORMAT = "recipe-leaderboard"
 FORMAT_VERSION = 1
@@ -24,6 +40,7 @@ FORMAT_VERSION = 1
 @dataclass(frozen=True)
 class Counts:
     """Jobs of a configuration (or of the grid) by state."""
+
     done: int = 0
     diverged: int = 0
     failed: int = 0
@@ -45,6 +62,7 @@ class Counts:
 @dataclass(frozen=True)
 class Comparison:
     """A row against the best row: paired over the seeds both finished."""
+
     diff_mean: float
     ci95: list[float] | None
     t: float
@@ -58,14 +76,15 @@ class Comparison:
 @dataclass(frozen=True)
 class Row:
     """One configuration: its levels, its rank metric over seeds and what went wrong."""
+
     config_id: str
-    levels: dict[str, Any]          # path -> value set by the factors
-    labels: dict[str, str]          # factor -> level label
+    levels: dict[str, Any]  # path -> value set by the factors
+    labels: dict[str, str]  # factor -> level label
     n: int
     mean: float | None
     std: float | None
     ci95: list[float] | None
-    per_seed: dict[str, float]      # seed (as text) -> value
+    per_seed: dict[str, float]  # seed (as text) -> value
     test_mean: float | None
     test_per_seed: dict[str, float]
     counts: Counts
@@ -84,6 +103,7 @@ class Row:
 @dataclass(frozen=True)
 class Environment:
     """The environments the stored jobs ran in; more than one means results may not compare."""
+
     distinct: int
     differs_in: list[str]
     first: dict[str, Any] | None
@@ -93,6 +113,7 @@ class Environment:
 @dataclass(frozen=True)
 class MatchedDifference:
     """A level against its factor's baseline, over matched configurations and seeds."""
+
     diff_mean: float
     ci95: list[float] | None
     p_value: float | None
@@ -138,7 +159,7 @@ class OneAtATime:
 class Interaction:
     a: str
     b: str
-    means: dict[str, dict[str, float | None]]   # level of b -> level of a -> mean
+    means: dict[str, dict[str, float | None]]  # level of b -> level of a -> mean
     best_a_by_b: dict[str, str | None]
     depends: bool
 
@@ -168,6 +189,7 @@ class OptimizationRow:
 @dataclass(frozen=True)
 class Ablation:
     """The ablation tables of a leaderboard (``recipe board --ablation``)."""
+
     metric: str
     main_effects: list[MainEffect]
     one_at_a_time: OneAtATime | None
@@ -182,17 +204,18 @@ class Ablation:
 @dataclass(frozen=True)
 class Leaderboard:
     """The whole board: what was ranked, on what, and every configuration's row."""
+
     recipe: str
     recipe_hash: str
     description: str
-    metric: str                      # e.g. "val.accuracy"
+    metric: str  # e.g. "val.accuracy"
     goal: Goal
     test_metric: str
     task: str
     seeds: list[int]
-    factors: list[dict[str, Any]]    # name, paths, levels (labels)
+    factors: list[dict[str, Any]]  # name, paths, levels (labels)
     base_settings: dict[str, Any]
-    data: list[str]                  # data fingerprints
+    data: list[str]  # data fingerprints
     jobs: Counts
     rows: list[Row]
     ablation: Ablation | None
@@ -219,15 +242,30 @@ class Leaderboard:
         """Read an exported document back; a malformed one is a UserError naming ``source``."""
         try:
             return cls(
-                recipe=doc["recipe"], recipe_hash=doc["recipe_hash"], description=doc.get("description", ""),
-                metric=doc["metric"], goal=Goal(doc["goal"]), test_metric=doc["test_metric"], task=doc["task"],
-                seeds=list(doc["seeds"]), factors=list(doc["factors"]), base_settings=dict(doc["base_settings"]),
-                data=list(doc["data"]), jobs=_counts(doc["jobs"]), rows=[_row(r) for r in doc["rows"]],
-                ablation=None, environment=Environment(**doc["environment"]),
-                cautions=list(doc["cautions"]), source=source)
+                recipe=doc["recipe"],
+                recipe_hash=doc["recipe_hash"],
+                description=doc.get("description", ""),
+                metric=doc["metric"],
+                goal=Goal(doc["goal"]),
+                test_metric=doc["test_metric"],
+                task=doc["task"],
+                seeds=list(doc["seeds"]),
+                factors=list(doc["factors"]),
+                base_settings=dict(doc["base_settings"]),
+                data=list(doc["data"]),
+                jobs=_counts(doc["jobs"]),
+                rows=[_row(r) for r in doc["rows"]],
+                ablation=None,
+                environment=Environment(**doc["environment"]),
+                cautions=list(doc["cautions"]),
+                source=source,
+            )
         except (KeyError, TypeError, ValueError) as exc:
-            raise UserError(f"not a complete leaderboard document ({type(exc).__name__}: {exc})", where=source,
-                            hint="Export one with: recipe board RECIPE --format json --out FILE") from None
+            raise UserError(
+                f"not a complete leaderboard document ({type(exc).__name__}: {exc})",
+                where=source,
+                hint="Export one with: recipe board RECIPE --format json --out FILE",
+            ) from None
 
 
 def _plain(value: Any) -> Any:
@@ -248,8 +286,21 @@ def _counts(raw: dict[str, int]) -> Counts:
 
 def _row(raw: dict[str, Any]) -> Row:
     vs = raw.get("vs_best")
-    return Row(config_id=raw["config_id"], levels=raw["levels"], labels=raw["labels"], n=raw["n"],
-               mean=raw["mean"], std=raw["std"], ci95=raw["ci95"], per_seed=raw["per_seed"],
-               test_mean=raw["test_mean"], test_per_seed=raw["test_per_seed"], counts=_counts(raw["counts"]),
-               diagnostics=raw["diagnostics"], flags=raw["flags"], rank=raw.get("rank"),
-               vs_best=Comparison(**vs) if vs else None, top_group=raw.get("top_group"))
+    return Row(
+        config_id=raw["config_id"],
+        levels=raw["levels"],
+        labels=raw["labels"],
+        n=raw["n"],
+        mean=raw["mean"],
+        std=raw["std"],
+        ci95=raw["ci95"],
+        per_seed=raw["per_seed"],
+        test_mean=raw["test_mean"],
+        test_per_seed=raw["test_per_seed"],
+        counts=_counts(raw["counts"]),
+        diagnostics=raw["diagnostics"],
+        flags=raw["flags"],
+        rank=raw.get("rank"),
+        vs_best=Comparison(**vs) if vs else None,
+        top_group=raw.get("top_group"),
+    )

@@ -3,6 +3,7 @@
 Thresholds come from the recipe's [diagnostics] table; they act on stored numbers, so
 changing them needs no rerun.
 """
+
 from __future__ import annotations
 
 import statistics
@@ -12,7 +13,7 @@ if TYPE_CHECKING:
     from runner.evidence.document import Counts
     from runner.recipe.loader import DiagnosticThresholds
 
-__all__ = ["flags", "mean_diagnostics", "AVERAGED"]
+__all__ = ["AVERAGED", "flags", "mean_diagnostics"]
 
 AVERAGED = ("grad_ratio", "dead_fraction", "saturated_fraction", "zero_fraction", "near_zero_fraction", "gap")
 

@@ -8,6 +8,7 @@ and Welch's unequal-variance t is used, and the result says so. Holm's step-down
 dependence between them; a max-statistic would gain only when changes are correlated across
 configurations, which pairing by seed largely removes. Identical runs give p = 1.
 """
+
 from __future__ import annotations
 
 import math
@@ -115,14 +116,21 @@ def _welch(old: np.ndarray, new: np.ndarray, m: float):
             return 1.0, None, None, "unpaired: identical constant values", floor
         p = 1.0 if abs(diff) <= m else floor
         return p, None, None, "unpaired, no spread on either side: exact permutation bound", floor
-    df = (v1 + v2) ** 2 / (v1 ** 2 / (n1 - 1) + v2 ** 2 / (n2 - 1))
+    df = (v1 + v2) ** 2 / (v1**2 / (n1 - 1) + v2**2 / (n2 - 1))
     half = t_isf(0.025, df) * se
     p = _two_tails(t_sf((diff - m) / se, df), t_cdf((diff + m) / se, df))
     return p, diff - half, diff + half, "unpaired Welch t (Welch 1947)", 0.0
 
 
-def compare_runs(old: Sequence, new: Sequence, goal: str = "max", paired: bool = True, alpha: float = 0.05,
-                 min_change: float = 0.0, protocol: Resampling = FIXED) -> GateResult:
+def compare_runs(
+    old: Sequence,
+    new: Sequence,
+    goal: str = "max",
+    paired: bool = True,
+    alpha: float = 0.05,
+    min_change: float = 0.0,
+    protocol: Resampling = FIXED,
+) -> GateResult:
     """Judge every configuration's change between two runs; Holm across configurations.
 
     old[i], new[i]: the i-th configuration's per-seed values; when ``paired`` they must be
@@ -153,7 +161,22 @@ def compare_runs(old: Sequence, new: Sequence, goal: str = "max", paired: bool =
             verdict = "too few seeds"
         else:
             verdict = "no shift shown"
-        changes.append(ConfigChange(i, o.size, n.size, float(o.mean()), float(n.mean()), change, low, high,
-                                    float(p), float(p_adj), method, verdict))
-    return GateResult(tuple(changes), paired, goal, alpha, min_change, "Holm",
-                      any(c.verdict == "regressed" for c in changes))
+        changes.append(
+            ConfigChange(
+                i,
+                o.size,
+                n.size,
+                float(o.mean()),
+                float(n.mean()),
+                change,
+                low,
+                high,
+                float(p),
+                float(p_adj),
+                method,
+                verdict,
+            )
+        )
+    return GateResult(
+        tuple(changes), paired, goal, alpha, min_change, "Holm", any(c.verdict == "regressed" for c in changes)
+    )

@@ -5,6 +5,7 @@ best row (paired t-test over shared seeds, Holm-adjusted across rows), the test 
 (never ranked on), failure counts and diagnostic flags. ``leaderboard`` returns the typed
 ``Leaderboard`` (document.py) that every renderer, the diff and the report read.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -20,11 +21,13 @@ from runner.recipe.grid import Config, Grid
 from runner.store.database import Store, StoredJob
 from runner.training.job import Status
 
-__all__ = ["leaderboard", "CAUTION_TEST", "ALPHA"]
+__all__ = ["ALPHA", "CAUTION_TEST", "leaderboard"]
 
 ALPHA = 0.05
-CAUTION_TEST = ("Ranked on val; test is shown beside it. Choosing a configuration by its test "
-                "score makes that test score optimistic.")
+CAUTION_TEST = (
+    "Ranked on val; test is shown beside it. Choosing a configuration by its test "
+    "score makes that test score optimistic."
+)
 
 
 def leaderboard(grid: Grid, store: Store) -> Leaderboard:
@@ -38,23 +41,34 @@ def leaderboard(grid: Grid, store: Store) -> Leaderboard:
     sign = -1.0 if grid.goal is Goal.MAX else 1.0
     rows.sort(key=lambda r: (r.mean is None, sign * r.mean if r.mean is not None else 0.0))
     rows = _compare_with_best(rows)
-    rows = [dataclasses.replace(row, rank=rank if row.mean is not None else None)
-            for rank, row in enumerate(rows, 1)]
+    rows = [dataclasses.replace(row, rank=rank if row.mean is not None else None) for rank, row in enumerate(rows, 1)]
     return Leaderboard(
-        recipe=grid.recipe.name, recipe_hash=grid.recipe.hash, description=grid.recipe.description,
-        metric=grid.rank_by, goal=grid.goal, test_metric=f"test.{grid.metric}", task=str(grid.task),
+        recipe=grid.recipe.name,
+        recipe_hash=grid.recipe.hash,
+        description=grid.recipe.description,
+        metric=grid.rank_by,
+        goal=grid.goal,
+        test_metric=f"test.{grid.metric}",
+        task=str(grid.task),
         seeds=list(grid.recipe.seeds),
-        factors=[{"name": f.name, "paths": list(f.paths), "levels": [f.label(i) for i in range(len(f.levels))]}
-                 for f in grid.recipe.factors],
-        base_settings=_base_settings(grid), data=sorted({c.data_id for c in grid.configs}),
-        jobs=sum((r.counts for r in rows), Counts()), rows=rows, ablation=ablation(grid, store),
-        environment=_environment(stored.values()), cautions=_cautions(rows, grid))
+        factors=[
+            {"name": f.name, "paths": list(f.paths), "levels": [f.label(i) for i in range(len(f.levels))]}
+            for f in grid.recipe.factors
+        ],
+        base_settings=_base_settings(grid),
+        data=sorted({c.data_id for c in grid.configs}),
+        jobs=sum((r.counts for r in rows), Counts()),
+        rows=rows,
+        ablation=ablation(grid, store),
+        environment=_environment(stored.values()),
+        cautions=_cautions(rows, grid),
+    )
 
 
 def _row(grid: Grid, config: Config, cjobs: list, stored: dict[str, StoredJob], metrics: dict) -> Row:
     split, metric = grid.rank_by.split(".", 1)
     per_seed, test_seed = {}, {}
-    counts = {s: 0 for s in Status} | {"pending": 0}
+    counts = dict.fromkeys(Status, 0) | {"pending": 0}
     diags = []
     for job in cjobs:
         row = stored.get(job.key)
@@ -73,19 +87,31 @@ def _row(grid: Grid, config: Config, cjobs: list, stored: dict[str, StoredJob], 
         diags.append(row.diagnostics)
     summary = stats.summarize(list(per_seed.values()))  # n, mean, std, ci95
     tally = Counts(**{str(k): v for k, v in counts.items()})
-    return Row(config_id=config.id, levels=dict(config.assignments), labels=grid.labels(config),
-               n=summary["n"], mean=summary["mean"], std=summary["std"], ci95=summary["ci95"],
-               per_seed={str(s): v for s, v in sorted(per_seed.items())},
-               test_mean=statistics.fmean(test_seed.values()) if test_seed else None,
-               test_per_seed={str(s): v for s, v in sorted(test_seed.items())}, counts=tally,
-               diagnostics=mean_diagnostics(diags), flags=flags(diags, tally, grid.recipe.diagnostics))
+    return Row(
+        config_id=config.id,
+        levels=dict(config.assignments),
+        labels=grid.labels(config),
+        n=summary["n"],
+        mean=summary["mean"],
+        std=summary["std"],
+        ci95=summary["ci95"],
+        per_seed={str(s): v for s, v in sorted(per_seed.items())},
+        test_mean=statistics.fmean(test_seed.values()) if test_seed else None,
+        test_per_seed={str(s): v for s, v in sorted(test_seed.items())},
+        counts=tally,
+        diagnostics=mean_diagnostics(diags),
+        flags=flags(diags, tally, grid.recipe.diagnostics),
+    )
 
 
 def _base_settings(grid: Grid) -> dict[str, Any]:
     """The resolved settings every configuration shares: those no factor varies."""
     varied = {p for f in grid.recipe.factors for p in f.paths}
-    return {path: list(value) if isinstance(value, tuple) else value
-            for path, value in grid.configs[0].settings.flat().items() if path not in varied}
+    return {
+        path: list(value) if isinstance(value, tuple) else value
+        for path, value in grid.configs[0].settings.flat().items()
+        if path not in varied
+    }
 
 
 def _compare_with_best(rows: list[Row]) -> list[Row]:
@@ -99,8 +125,9 @@ def _compare_with_best(rows: list[Row]) -> list[Row]:
         seeds = sorted(set(row.per_seed) & set(best.per_seed), key=int)
         a, b = [row.per_seed[s] for s in seeds], [best.per_seed[s] for s in seeds]
         result = stats.paired(a, b)
-        compared[row.config_id] = None if result is None else Comparison(
-            **result, n_pairs=len(seeds), wilcoxon_p=stats.wilcoxon_p(a, b))
+        compared[row.config_id] = (
+            None if result is None else Comparison(**result, n_pairs=len(seeds), wilcoxon_p=stats.wilcoxon_p(a, b))
+        )
     tested = [cid for cid, c in compared.items() if c is not None]
     adjusted = dict(zip(tested, stats.holm([compared[cid].p_value for cid in tested])))
     out = []
@@ -125,8 +152,9 @@ def _environment(stored) -> Environment:
         recipes.add(job.recipe_hash)
     values = list(seen.values())
     differing = sorted({k for env in values for k in env if len({str(e.get(k)) for e in values}) > 1})
-    return Environment(distinct=len(values), differs_in=differing, first=values[0] if values else None,
-                       recipe_versions=len(recipes))
+    return Environment(
+        distinct=len(values), differs_in=differing, first=values[0] if values else None, recipe_versions=len(recipes)
+    )
 
 
 def _cautions(rows: list[Row], grid: Grid) -> list[str]:
@@ -135,6 +163,8 @@ def _cautions(rows: list[Row], grid: Grid) -> list[str]:
         notes.append("Only one seed: no interval or test can tell configurations apart; add seeds.")
     top = [r for r in rows if r.top_group]
     if len(top) > 1:
-        notes.append(f"{len(top)} configurations cannot be told apart from the best at the 5% level "
-                     "(paired t-test over seeds, Holm-adjusted): treat them as tied.")
+        notes.append(
+            f"{len(top)} configurations cannot be told apart from the best at the 5% level "
+            "(paired t-test over seeds, Holm-adjusted): treat them as tied."
+        )
     return notes

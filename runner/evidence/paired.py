@@ -8,6 +8,7 @@ alone. The corrected t (Nadeau & Bengio 2003) is kept for intervals and for prot
 redraw the split per seed, where the seed-level differences are correlated and sign flips
 are not exchangeable.
 """
+
 from __future__ import annotations
 
 import math
@@ -54,7 +55,7 @@ def _flip_sums(d: np.ndarray) -> np.ndarray:
 
 def _random_flip_sums(d: np.ndarray, resamples: int, rng: np.random.Generator) -> np.ndarray:
     out = np.empty(resamples)
-    chunk = max(1, 2 ** 22 // max(len(d), 1))
+    chunk = max(1, 2**22 // max(len(d), 1))
     for start in range(0, resamples, chunk):
         stop = min(resamples, start + chunk)
         signs = rng.integers(0, 2, size=(stop - start, len(d))) * 2 - 1
@@ -62,8 +63,13 @@ def _random_flip_sums(d: np.ndarray, resamples: int, rng: np.random.Generator) -
     return out
 
 
-def sign_flip_test(d, alternative: str = "two-sided", shift: float = 0.0,
-                   rng: np.random.Generator | None = None, resamples: int = 100_000) -> SignFlip:
+def sign_flip_test(
+    d,
+    alternative: str = "two-sided",
+    shift: float = 0.0,
+    rng: np.random.Generator | None = None,
+    resamples: int = 100_000,
+) -> SignFlip:
     """Exact sign-flip (paired permutation) test of a zero centre for the differences d - shift.
 
     Two-sided p = min(1, 2 min(P(S >= s), P(S <= s))) over the 2^n sign patterns, as
@@ -86,8 +92,10 @@ def sign_flip_test(d, alternative: str = "two-sided", shift: float = 0.0,
         exact, count = True, sums.size
     else:
         if rng is None:
-            raise ValueError(f"sign-flip test: more than {EXACT_MAX_N} differences need a "
-                             "numpy Generator (rng=) for the Monte Carlo patterns")
+            raise ValueError(
+                f"sign-flip test: more than {EXACT_MAX_N} differences need a "
+                "numpy Generator (rng=) for the Monte Carlo patterns"
+            )
         sums = _random_flip_sums(x, resamples, rng)
         greater = (1 + np.count_nonzero(sums >= observed - tol)) / (1 + resamples)
         less = (1 + np.count_nonzero(sums <= observed + tol)) / (1 + resamples)
@@ -101,7 +109,7 @@ def min_attainable_p(n: int, alternative: str = "two-sided") -> float:
     1/2^n one-sided (every difference of one sign). 1.0 for n < 1."""
     if n < 1:
         return 1.0
-    return min(1.0, (2.0 if alternative == "two-sided" else 1.0) / 2.0 ** n)
+    return min(1.0, (2.0 if alternative == "two-sided" else 1.0) / 2.0**n)
 
 
 def seeds_for_any_verdict(alpha: float = 0.05, comparisons: int = 1, alternative: str = "two-sided") -> int:

@@ -7,6 +7,7 @@ one-sided tests, P(-margin + c s sqrt(v) < mean < margin - c s sqrt(v)). With a 
 that redraws splits, Var(mean) = (1/n + n_val/n_train) sigma^2 never falls below
 (n_val/n_train) sigma^2, so some differences cannot be resolved by any number of seeds.
 """
+
 from __future__ import annotations
 
 import math
@@ -55,8 +56,9 @@ def paired_t_power(diff: float, sd: float, n: float, alpha: float = 0.05, protoc
     return float(np.sum(w * (norm_cdf_array(delta - c * s) + norm_cdf_array(-delta - c * s))))
 
 
-def tost_power(diff: float, sd: float, margin: float, n: float, alpha: float = 0.05,
-               protocol: Resampling = FIXED) -> float:
+def tost_power(
+    diff: float, sd: float, margin: float, n: float, alpha: float = 0.05, protocol: Resampling = FIXED
+) -> float:
     """Power of Schuirmann's (1987) two one-sided paired t-tests, each at level alpha, to
     show |true difference| < margin when the true difference is diff (sd as above)."""
     if n < 2 or sd <= 0 or margin <= 0:
@@ -74,8 +76,13 @@ def _solve_n(power_at, target: float, what: str) -> SeedAdvice:
     if power_at(2.0) >= target:
         return SeedAdvice(2.0, 2, True, f"2 seeds already give {what} power {power_at(2.0):.2f}")
     if power_at(_MAX_SEEDS) < target:
-        return SeedAdvice(math.inf, None, False, f"no number of seeds up to {_MAX_SEEDS} reaches {what} "
-                          f"power {target:.2f} (with redrawn splits the variance has a floor)")
+        return SeedAdvice(
+            math.inf,
+            None,
+            False,
+            f"no number of seeds up to {_MAX_SEEDS} reaches {what} "
+            f"power {target:.2f} (with redrawn splits the variance has a floor)",
+        )
     lo, hi = 2.0, 4.0
     while power_at(hi) < target:
         lo, hi = hi, hi * 2.0
@@ -88,8 +95,9 @@ def _solve_n(power_at, target: float, what: str) -> SeedAdvice:
     return SeedAdvice(n, math.ceil(n - 1e-9), True, f"{what} power {target:.2f} at {n:.2f} seeds")
 
 
-def seeds_to_detect(diff: float, sd: float, alpha: float = 0.05, power: float = 0.8,
-                    protocol: Resampling = FIXED) -> SeedAdvice:
+def seeds_to_detect(
+    diff: float, sd: float, alpha: float = 0.05, power: float = 0.8, protocol: Resampling = FIXED
+) -> SeedAdvice:
     """Seeds for the two-sided paired t-test to detect diff with the given power, from the
     observed sd of paired differences. sd = 0 (no observed spread) gives the fewest seeds at
     which the exact sign-flip test can reach alpha at all, as the t-test is then undefined."""
@@ -103,8 +111,9 @@ def seeds_to_detect(diff: float, sd: float, alpha: float = 0.05, power: float = 
     return _solve_n(lambda n: paired_t_power(diff, sd, n, alpha, protocol), power, "detection")
 
 
-def seeds_for_equivalence(margin: float, sd: float, diff: float = 0.0, alpha: float = 0.05,
-                          power: float = 0.8, protocol: Resampling = FIXED) -> SeedAdvice:
+def seeds_for_equivalence(
+    margin: float, sd: float, diff: float = 0.0, alpha: float = 0.05, power: float = 0.8, protocol: Resampling = FIXED
+) -> SeedAdvice:
     """Seeds for Schuirmann's two one-sided tests to show |difference| < margin with the given
     power when the true difference is diff, from the observed sd of paired differences."""
     if abs(diff) >= margin:

@@ -6,6 +6,7 @@ the seed-level values are correlated, so sigma^2 / n understates the variance. E
 interval and test in runner.evidence takes a ``Resampling`` and asks it for the factor v in
 Var(mean) = v * sigma^2.
 """
+
 from __future__ import annotations
 
 from dataclasses import dataclass
@@ -69,8 +70,7 @@ class Resampling:
         if self.kind == "resample":
             return 1.0 / n + self.n_val / self.n_train
         if n != self.folds * self.repeats:
-            raise ValueError(f"repeated k-fold: expected folds * repeats = {self.folds * self.repeats} "
-                             f"values, got {n}")
+            raise ValueError(f"repeated k-fold: expected folds * repeats = {self.folds * self.repeats} values, got {n}")
         return 1.0 / n + 1.0 / (self.folds - 1)
 
     def describe(self) -> str:
@@ -78,10 +78,14 @@ class Resampling:
         if self.kind == "fixed":
             return "one fixed split: Var(mean) = s^2/n"
         if self.kind == "resample":
-            return (f"split redrawn per seed ({self.n_val} val / {self.n_train} train rows): "
-                    f"Var(mean) = (1/n + {self.n_val}/{self.n_train}) s^2 (Nadeau & Bengio 2003)")
-        return (f"{self.repeats} x {self.folds}-fold cross-validation: Var(mean) = "
-                f"(1/n + 1/{self.folds - 1}) s^2 (Bouckaert & Frank 2004)")
+            return (
+                f"split redrawn per seed ({self.n_val} val / {self.n_train} train rows): "
+                f"Var(mean) = (1/n + {self.n_val}/{self.n_train}) s^2 (Nadeau & Bengio 2003)"
+            )
+        return (
+            f"{self.repeats} x {self.folds}-fold cross-validation: Var(mean) = "
+            f"(1/n + 1/{self.folds - 1}) s^2 (Bouckaert & Frank 2004)"
+        )
 
 
 FIXED = Resampling()

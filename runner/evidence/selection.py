@@ -15,6 +15,7 @@ possibly-best set. Two constants set the intervals' width:
 The same bounds decide equivalence within a practical margin (Schuirmann's two one-sided
 tests, made selection-aware by using the simultaneous bounds).
 """
+
 from __future__ import annotations
 
 import math
@@ -75,7 +76,7 @@ def _residual_ms(y: np.ndarray) -> tuple[float, int]:
     k, n = y.shape
     resid = y - y.mean(axis=1, keepdims=True) - y.mean(axis=0, keepdims=True) + y.mean()
     df = (k - 1) * (n - 1)
-    return float((resid ** 2).sum() / df), df
+    return float((resid**2).sum() / df), df
 
 
 def _advantage(means: np.ndarray) -> np.ndarray:
@@ -96,8 +97,14 @@ def _no_spread_half_width(k: int, n: int, alpha: float, constant: str) -> float:
     return 0.0 if min_attainable_p(n) <= alpha / (k * (k - 1) / 2) else math.inf
 
 
-def possibly_best(y, goal: str = "max", alpha: float = 0.05, protocol: Resampling = FIXED,
-                  margin: float | None = None, constant: str = "range") -> BestSet:
+def possibly_best(
+    y,
+    goal: str = "max",
+    alpha: float = 0.05,
+    protocol: Resampling = FIXED,
+    margin: float | None = None,
+    constant: str = "range",
+) -> BestSet:
     """Constrained MCB on a complete k x n matrix y (configurations x matched seeds).
 
     s^2 = residual mean square of configurations + seeds, df = (k-1)(n-1); v =
@@ -120,16 +127,52 @@ def possibly_best(y, goal: str = "max", alpha: float = 0.05, protocol: Resamplin
     k, n = data.shape
     means = data.mean(axis=1)
     if k == 1:
-        return BestSet(goal, alpha, 1, n, 0, (float(means[0]),), (0.0,), None, None, (True,), None,
-                       None, margin, None, None, None, "one configuration", protocol.kind, constant)
+        return BestSet(
+            goal,
+            alpha,
+            1,
+            n,
+            0,
+            (float(means[0]),),
+            (0.0,),
+            None,
+            None,
+            (True,),
+            None,
+            None,
+            margin,
+            None,
+            None,
+            None,
+            "one configuration",
+            protocol.kind,
+            constant,
+        )
     oriented = sign * data
     adv = _advantage(oriented.mean(axis=1))
     if n == 1:
         inf = (math.inf,) * k
-        return BestSet(goal, alpha, k, 1, 0, tuple(means.tolist()), tuple(adv.tolist()),
-                       tuple(-v for v in inf), inf, (True,) * k, inf,
-                       (False,) * k if margin is not None else None, margin, None, None, None,
-                       "one seed: no verdict", protocol.kind, constant)
+        return BestSet(
+            goal,
+            alpha,
+            k,
+            1,
+            0,
+            tuple(means.tolist()),
+            tuple(adv.tolist()),
+            tuple(-v for v in inf),
+            inf,
+            (True,) * k,
+            inf,
+            (False,) * k if margin is not None else None,
+            margin,
+            None,
+            None,
+            None,
+            "one seed: no verdict",
+            protocol.kind,
+            constant,
+        )
     ms, df = _residual_ms(oriented)
     scale = float(np.abs(oriented - oriented.mean()).max())
     v = protocol.variance_factor(n)
@@ -152,6 +195,24 @@ def possibly_best(y, goal: str = "max", alpha: float = 0.05, protocol: Resamplin
     within = None
     if margin is not None:
         within = tuple(bool(x) for x in (lower > -margin) & (upper < margin))
-    return BestSet(goal, alpha, k, n, df, tuple(means.tolist()), tuple(adv.tolist()),
-                   tuple(lower.tolist()), tuple(upper.tolist()), tuple(bool(b) for b in best),
-                   tuple((-lower).tolist()), within, margin, sd, d, w, basis, protocol.kind, constant)
+    return BestSet(
+        goal,
+        alpha,
+        k,
+        n,
+        df,
+        tuple(means.tolist()),
+        tuple(adv.tolist()),
+        tuple(lower.tolist()),
+        tuple(upper.tolist()),
+        tuple(bool(b) for b in best),
+        tuple((-lower).tolist()),
+        within,
+        margin,
+        sd,
+        d,
+        w,
+        basis,
+        protocol.kind,
+        constant,
+    )

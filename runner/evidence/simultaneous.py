@@ -10,6 +10,7 @@ k means has P(R <= q S) = E[k (Phi(U) - Phi(U - q S))^(k-1)] with U standard nor
 density of the largest mean times the chance the others lie within q of it). Results are
 cached: a board asks for the same (m, df, alpha) many times.
 """
+
 from __future__ import annotations
 
 import math

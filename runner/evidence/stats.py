@@ -4,16 +4,17 @@ The formulas are written out here; tests check them against scipy.stats and stat
 The t distribution comes from runner.evidence.distributions, so importing this module does
 not import scipy.stats (about 1 s); only the Wilcoxon helper imports it, when called.
 """
+
 from __future__ import annotations
 
 import math
-from typing import Sequence
+from collections.abc import Sequence
 
 import numpy as np
 
 from runner.evidence.distributions import t_ppf, t_sf
 
-__all__ = ["summarize", "t_interval", "paired", "welch", "holm", "wilcoxon_p"]
+__all__ = ["holm", "paired", "summarize", "t_interval", "welch", "wilcoxon_p"]
 
 
 def t_interval(values: Sequence[float], level: float = 0.95):
@@ -67,13 +68,23 @@ def welch(new: Sequence[float], old: Sequence[float]) -> dict | None:
     diff = float(x.mean() - y.mean())
     se = math.sqrt(vx + vy)
     if se == 0:
-        return {"diff_mean": diff, "ci95": [diff, diff], "t": 0.0 if diff == 0 else math.copysign(math.inf, diff),
-                "df": float(len(x) + len(y) - 2), "p_value": 1.0 if diff == 0 else 0.0}
-    df = (vx + vy) ** 2 / (vx ** 2 / (len(x) - 1) + vy ** 2 / (len(y) - 1))
+        return {
+            "diff_mean": diff,
+            "ci95": [diff, diff],
+            "t": 0.0 if diff == 0 else math.copysign(math.inf, diff),
+            "df": float(len(x) + len(y) - 2),
+            "p_value": 1.0 if diff == 0 else 0.0,
+        }
+    df = (vx + vy) ** 2 / (vx**2 / (len(x) - 1) + vy**2 / (len(y) - 1))
     t = diff / se
     half = t_ppf(0.975, df) * se
-    return {"diff_mean": diff, "ci95": [diff - half, diff + half], "t": t, "df": float(df),
-            "p_value": 2 * t_sf(abs(t), df)}
+    return {
+        "diff_mean": diff,
+        "ci95": [diff - half, diff + half],
+        "t": t,
+        "df": float(df),
+        "p_value": 2 * t_sf(abs(t), df),
+    }
 
 
 def holm(pvalues: Sequence[float]) -> list[float]:

@@ -7,6 +7,7 @@ result. The main process alone writes the store, so no shared filesystem is need
 whose worker dies is rescheduled by dask; after ``max_attempts`` deaths dask gives up on it
 (KilledWorker) and the job is recorded as failed.
 """
+
 from __future__ import annotations
 
 from runner.errors import UserError
@@ -29,8 +30,12 @@ class DaskExecutor:
         try:
             import distributed  # noqa: F401
         except ImportError:
-            raise UserError("running on Dask needs the dask.distributed package", key="--on", value=on,
-                            hint='Install it with: python -m pip install -c constraints.txt -e ".[dask]"') from None
+            raise UserError(
+                "running on Dask needs the dask.distributed package",
+                key="--on",
+                value=on,
+                hint='Install it with: python -m pip install -c constraints.txt -e ".[dask]"',
+            ) from None
         self.on = on
         self.workers = workers
         self.threads = threads
@@ -42,15 +47,25 @@ class DaskExecutor:
 
         dask.config.set({"distributed.scheduler.allowed-failures": max(0, self.max_attempts - 1)})
         if self.on == "dask-local":
-            cluster = LocalCluster(n_workers=self.workers, threads_per_worker=1, processes=True,
-                                   host="127.0.0.1", dashboard_address=None, silence_logs=40)
+            cluster = LocalCluster(
+                n_workers=self.workers,
+                threads_per_worker=1,
+                processes=True,
+                host="127.0.0.1",
+                dashboard_address=None,
+                silence_logs=40,
+            )
             return Client(cluster), cluster
-        address = "tcp://" + self.on[len("dask://"):]
+        address = "tcp://" + self.on[len("dask://") :]
         try:
             return Client(address, timeout=5), None
         except (OSError, TimeoutError) as exc:
-            raise UserError(f"cannot reach the Dask scheduler ({exc})", key="--on", value=self.on,
-                            hint="Start one with 'dask scheduler' and workers with 'dask worker ADDRESS'") from None
+            raise UserError(
+                f"cannot reach the Dask scheduler ({exc})",
+                key="--on",
+                value=self.on,
+                hint="Start one with 'dask scheduler' and workers with 'dask worker ADDRESS'",
+            ) from None
 
     def run(self, items, datasets, on_result, on_start=None) -> None:
         from distributed import as_completed
@@ -60,8 +75,14 @@ class DaskExecutor:
         try:
             futures = {}
             for item in items:
-                fut = client.submit(_task, item, datasets[item[0].data_id], self.threads,
-                                    key=f"job-{item[0].key}-{len(item)}", pure=False)
+                fut = client.submit(
+                    _task,
+                    item,
+                    datasets[item[0].data_id],
+                    self.threads,
+                    key=f"job-{item[0].key}-{len(item)}",
+                    pure=False,
+                )
                 futures[fut] = item
                 if on_start:
                     for spec in item:
@@ -73,8 +94,12 @@ class DaskExecutor:
                 except FutureCancelledError:
                     continue
                 except Exception as exc:  # KilledWorker and friends: the cluster gave up on it
-                    results = [JobResult(key=s.key, status=Status.FAILED,
-                                         error=f"{type(exc).__name__} on the Dask cluster: {exc}") for s in item]
+                    results = [
+                        JobResult(
+                            key=s.key, status=Status.FAILED, error=f"{type(exc).__name__} on the Dask cluster: {exc}"
+                        )
+                        for s in item
+                    ]
                 for spec, result in zip(item, results):
                     on_result(spec, result, 1)
         finally:

@@ -1,5 +1,6 @@
 """`recipe check`: the expanded plan, what the store already holds, and a run-time estimate
 from short timed probes of the work `recipe run` would do."""
+
 from __future__ import annotations
 
 import dataclasses
@@ -10,7 +11,7 @@ from runner.recipe.grid import Grid, canonical
 from runner.store.database import Store
 from runner.training.job import Status
 
-__all__ = ["describe_plan", "estimate_seconds", "PROBE_EPOCHS", "MAX_PROBES"]
+__all__ = ["MAX_PROBES", "PROBE_EPOCHS", "describe_plan", "estimate_seconds"]
 
 PROBE_EPOCHS = 2
 MAX_PROBES = 6  # distinct kinds of work item timed; others are costed from these
@@ -23,8 +24,9 @@ def _probe_item(item, epochs: int = PROBE_EPOCHS) -> tuple:
 
     specs = []
     for spec in item:
-        settings = spec.settings.with_train(epochs=min(epochs, spec.settings.train.epochs), patience=0,
-                                            checkpoint_every=0, time_limit=0.0)
+        settings = spec.settings.with_train(
+            epochs=min(epochs, spec.settings.train.epochs), patience=0, checkpoint_every=0, time_limit=0.0
+        )
         specs.append(dataclasses.replace(spec, settings=settings, checkpoint=None, time_limit=None))
     return Stacked(specs) if isinstance(item, Stacked) else tuple(specs)
 
@@ -37,8 +39,7 @@ def _kind(item) -> str:
     spec = item[0]
     if isinstance(item, Stacked):
         return "stacked " + stack_key(spec)
-    return canonical({"model": spec.settings.model, "bs": spec.settings.train.batch_size,
-                      "data": spec.data_id})
+    return canonical({"model": spec.settings.model, "bs": spec.settings.train.batch_size, "data": spec.data_id})
 
 
 def _seconds_per_member_epoch(item, grid: Grid) -> float:
@@ -79,16 +80,19 @@ def estimate_seconds(grid: Grid, todo: list, workers: int, stack: bool = True) -
         if kind not in rates and len(rates) < MAX_PROBES:
             rates[kind] = _seconds_per_member_epoch(item, grid)
     fallback = sum(rates.values()) / len(rates)
-    costs = sorted((rates.get(_kind(it), fallback) * len(it) * max(s.settings.train.epochs for s in it)
-                    for it in items), reverse=True)
+    costs = sorted(
+        (rates.get(_kind(it), fallback) * len(it) * max(s.settings.train.epochs for s in it) for it in items),
+        reverse=True,
+    )
     loads = [0.0] * max(1, min(workers, len(items)))
     for cost in costs:
         heapq.heapreplace(loads, loads[0] + cost)
     return max(loads)
 
 
-def describe_plan(grid: Grid, store: Store | None, workers: int, probe: bool = True,
-                  stack: bool = True) -> tuple[str, dict]:
+def describe_plan(
+    grid: Grid, store: Store | None, workers: int, probe: bool = True, stack: bool = True
+) -> tuple[str, dict]:
     recipe = grid.recipe
     jobs = list(grid)
     statuses = {}
@@ -98,31 +102,41 @@ def describe_plan(grid: Grid, store: Store | None, workers: int, probe: bool = T
     for status in statuses.values():
         counts[status] += 1
     todo = [j for j in jobs if j.key not in statuses]
-    lines = [f"{recipe.name}: {recipe.description}" if recipe.description else recipe.name,
-             f"ranked by {grid.rank_by} ({grid.goal.words}); "
-             f"task {grid.task}; seeds {', '.join(map(str, recipe.seeds))}"]
+    lines = [
+        f"{recipe.name}: {recipe.description}" if recipe.description else recipe.name,
+        f"ranked by {grid.rank_by} ({grid.goal.words}); task {grid.task}; seeds {', '.join(map(str, recipe.seeds))}",
+    ]
     if recipe.factors:
         lines.append("factors:")
         for f in recipe.factors:
-            levels = ", ".join(f.label(i) + (" (baseline)" if recipe.baseline[f.name] == i else "")
-                               for i in range(len(f.levels)))
+            levels = ", ".join(
+                f.label(i) + (" (baseline)" if recipe.baseline[f.name] == i else "") for i in range(len(f.levels))
+            )
             paths = "" if f.paths == (f.name,) else f" [{', '.join(f.paths)}]"
             lines.append(f"  {f.name}{paths}: {levels}")
     if recipe.exclude:
         lines.append(f"exclusions: {len(recipe.exclude)} rule(s)")
-    lines.append(f"{len(grid.configs)} configurations x {len(recipe.seeds)} seeds = {len(jobs)} jobs: "
-                 f"{counts[Status.DONE]} done, {counts[Status.DIVERGED]} diverged, {counts[Status.FAILED]} failed, "
-                 f"{counts[Status.TIMEOUT]} timed out, {len(todo)} to run")
-    info = {"configurations": len(grid.configs), "jobs": len(jobs), **{s.value: n for s, n in counts.items()},
-            "to_run": len(todo),
-            "estimate_seconds": None}
+    lines.append(
+        f"{len(grid.configs)} configurations x {len(recipe.seeds)} seeds = {len(jobs)} jobs: "
+        f"{counts[Status.DONE]} done, {counts[Status.DIVERGED]} diverged, {counts[Status.FAILED]} failed, "
+        f"{counts[Status.TIMEOUT]} timed out, {len(todo)} to run"
+    )
+    info = {
+        "configurations": len(grid.configs),
+        "jobs": len(jobs),
+        **{s.value: n for s, n in counts.items()},
+        "to_run": len(todo),
+        "estimate_seconds": None,
+    }
     if probe and todo:
         estimate = estimate_seconds(grid, todo, workers, stack)
         info["estimate_seconds"] = estimate
         how = "stacked as `recipe run` stacks them" if stack else "one job at a time (--no-stack)"
-        lines.append(f"estimated run time: {_about(estimate)} of training with {workers} worker(s), "
-                     f"{how}, plus a few seconds to start the workers (from {PROBE_EPOCHS}-epoch probes; "
-                     "early stopping or divergence can end jobs sooner)")
+        lines.append(
+            f"estimated run time: {_about(estimate)} of training with {workers} worker(s), "
+            f"{how}, plus a few seconds to start the workers (from {PROBE_EPOCHS}-epoch probes; "
+            "early stopping or divergence can end jobs sooner)"
+        )
     return "\n".join(lines) + "\n", info
 
 

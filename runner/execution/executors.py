@@ -7,14 +7,16 @@ of job specs trained together (one spec, or a stacked group; see stack.py):
 - ``DaskExecutor`` (dask_executor.py) sends jobs to a dask.distributed cluster.
 The caller's ``on_result`` writes the store, so only the main process ever writes results.
 """
+
 from __future__ import annotations
 
+import contextlib
 import signal
 import time
 import warnings
 from collections import deque
+from collections.abc import Callable
 from multiprocessing.connection import wait
-from typing import Callable
 
 import threadpoolctl
 import torch
@@ -23,7 +25,7 @@ from runner.datasets.sources import Dataset
 from runner.execution.forkserver import default_workers, start_early, worker_context
 from runner.training.job import JobResult, JobSpec, Status
 
-__all__ = ["SerialExecutor", "PoolExecutor", "prepare_process", "deterministic_kernels", "default_workers"]
+__all__ = ["PoolExecutor", "SerialExecutor", "default_workers", "deterministic_kernels", "prepare_process"]
 
 OnResult = Callable[[JobSpec, JobResult, int], None]  # spec, result, attempts used
 OnStart = Callable[[JobSpec], None]
@@ -58,6 +60,7 @@ def prepare_process(threads: int, datasets: dict[str, Dataset] | None = None, wo
         _DATASETS = datasets
     warnings.filterwarnings("ignore", module="sklearn")
     import sklearn.model_selection  # noqa: F401  (each job's split: imported here, not in a job's time)
+
     if worker:
         signal.signal(signal.SIGINT, signal.SIG_IGN)  # the main process decides what Ctrl-C does
 
@@ -167,8 +170,7 @@ class PoolExecutor:
     killed and is recorded as timed out (``grace``: a job's own check normally stops it first).
     """
 
-    def __init__(self, workers: int, threads: int = 1, max_attempts: int = 2,
-                 hard_limit: float | None = None):
+    def __init__(self, workers: int, threads: int = 1, max_attempts: int = 2, hard_limit: float | None = None):
         self.workers = workers
         self.threads = threads
         self.max_attempts = max_attempts
@@ -197,8 +199,12 @@ class PoolExecutor:
                         for spec, res in zip(item, result):
                             on_result(spec, res, attempts.get(item[0].key, 0) + 1)
                         continue
-                    overdue = (w.spec is not None and self.hard_limit and w.started is not None
-                               and time.monotonic() - w.started > self.hard_limit + grace(self.hard_limit))
+                    overdue = (
+                        w.spec is not None
+                        and self.hard_limit
+                        and w.started is not None
+                        and time.monotonic() - w.started > self.hard_limit + grace(self.hard_limit)
+                    )
                     if w.proc.sentinel in ready or broken or overdue:
                         item = w.spec
                         if not overdue:
@@ -210,21 +216,27 @@ class PoolExecutor:
                             continue
                         tries = attempts[item[0].key] = attempts.get(item[0].key, 0) + 1
                         if overdue:
-                            error = (f"worker killed {grace(self.hard_limit):g} s past the "
-                                     f"{self.hard_limit:g} s time limit")
+                            error = (
+                                f"worker killed {grace(self.hard_limit):g} s past the {self.hard_limit:g} s time limit"
+                            )
                             for spec in item:
                                 on_result(spec, JobResult(key=spec.key, status=Status.TIMEOUT, error=error), tries)
                         elif tries < self.max_attempts:
                             queue.appendleft(item)
                         else:
                             for spec in item:
-                                on_result(spec, JobResult(key=spec.key, status=Status.FAILED,
-                                                          error=f"{_death(code)} on each of {tries} attempts"), tries)
+                                on_result(
+                                    spec,
+                                    JobResult(
+                                        key=spec.key,
+                                        status=Status.FAILED,
+                                        error=f"{_death(code)} on each of {tries} attempts",
+                                    ),
+                                    tries,
+                                )
         finally:
             for w in pool:
                 if w.proc.is_alive() and w.spec is None:
-                    try:
+                    with contextlib.suppress(OSError):
                         w.conn.send(None)
-                    except OSError:
-                        pass
                 w.stop()

@@ -4,6 +4,7 @@ Set ``RECIPE_FAULT="MODE@EPOCH"`` (MODE: exit, segv, kill, hang) and optionally
 ``RECIPE_FAULT_ONCE=/path/marker``: then the fault fires only while the marker file does not
 exist, and creates it, so the retry succeeds. Unset in normal use; costs one lookup per job.
 """
+
 from __future__ import annotations
 
 import os

@@ -11,6 +11,7 @@ server's imports (about 2.5 s on a 2-core machine) then overlap with the main pr
 imports, data loading and planning instead of following them, and a recipe with an error
 starts no server at all.
 """
+
 from __future__ import annotations
 
 import multiprocessing
@@ -22,7 +23,7 @@ from typing import TYPE_CHECKING
 if TYPE_CHECKING:
     from runner.recipe.loader import RunSettings
 
-__all__ = ["worker_context", "start_early", "wants_workers", "default_workers"]
+__all__ = ["default_workers", "start_early", "wants_workers", "worker_context"]
 
 _PRELOAD = ["runner.execution.preload"]
 

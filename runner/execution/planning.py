@@ -4,17 +4,18 @@ Finished jobs (done, diverged, failed, timed out) are skipped, so running a reci
 resumes it; ``retry_failed`` reruns the failed and timed-out ones. Only one runner uses a
 store at a time (store.RunnerLock); a second one refuses with a clear message.
 """
+
 from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
 
-from runner.recipe.grid import Grid, Job
 from runner.execution.progress import Progress
+from runner.recipe.grid import Grid, Job
 from runner.store import RunnerLock, Store
 from runner.training.job import FINISHED, Status
 
-__all__ = ["Plan", "plan", "execute", "make_executor", "checkpoint_dir", "forget"]
+__all__ = ["Plan", "checkpoint_dir", "execute", "forget", "make_executor", "plan"]
 
 
 @dataclass(frozen=True)
@@ -49,8 +50,7 @@ def forget(grid: Grid, store: Store) -> int:
     return removed
 
 
-def make_executor(on: str, workers: int, threads: int = 1, max_attempts: int = 2,
-                  hard_limit: float | None = None):
+def make_executor(on: str, workers: int, threads: int = 1, max_attempts: int = 2, hard_limit: float | None = None):
     """``on``: "local" (worker processes, or in-process with one worker), "dask-local" (a
     LocalCluster on loopback) or "dask://HOST:PORT" (an existing scheduler)."""
     from runner.execution.executors import PoolExecutor, SerialExecutor
@@ -64,8 +64,16 @@ def make_executor(on: str, workers: int, threads: int = 1, max_attempts: int = 2
     return DaskExecutor(on, workers, threads, max_attempts)
 
 
-def execute(grid: Grid, store: Store, todo: list[Job], executor, progress: Progress | None = None,
-            time_limit: float | None = None, on_stored=None, stack: bool = True) -> None:
+def execute(
+    grid: Grid,
+    store: Store,
+    todo: list[Job],
+    executor,
+    progress: Progress | None = None,
+    time_limit: float | None = None,
+    on_stored=None,
+    stack: bool = True,
+) -> None:
     """Run ``todo``; each result is committed to the store as soon as it arrives. With
     ``stack``, same-shaped jobs train together as one stacked computation (stack.py)."""
     from runner.training import checkpoints as checkpoint
@@ -102,8 +110,9 @@ def execute(grid: Grid, store: Store, todo: list[Job], executor, progress: Progr
     # Groups are formed over the whole grid (see stack.group_specs); a group with any job to run
     # runs whole, and only its unfinished members' results are written.
     everything = [spec_of(j) for j in grid] if stack else [spec_of(j) for j in todo]
-    items = [item for item in group_specs(everything, grid.datasets, enabled=stack)
-             if any(s.key in by_key for s in item)]
+    items = [
+        item for item in group_specs(everything, grid.datasets, enabled=stack) if any(s.key in by_key for s in item)
+    ]
     if progress is not None:
         progress.note(training_note(items))
     with RunnerLock(store):

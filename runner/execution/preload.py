@@ -7,15 +7,17 @@ took about 0.8 s of that job's time, enough to trip a one-second time limit). Wh
 torch.optim imports on first use is left to the workers that run single jobs
 (schedule.ready_for): stacked groups never need it.
 """
+
 import signal
 
 # Ctrl-C reaches the whole process group; the main process decides what it means. The server
 # starts with it blocked (forkserver.start_early); from here on it is ignored as well.
 signal.signal(signal.SIGINT, signal.SIG_IGN)
 
-import runner.execution.executors  # noqa: E402
-import runner.training.loop  # noqa: E402,F401
-import runner.training.stacked  # noqa: E402,F401
 import sklearn.model_selection  # noqa: E402,F401  (runner.datasets.sources imports it lazily, for the CLI's start-up)
+
+import runner.execution.executors  # noqa: E402
+import runner.training.loop  # noqa: E402
+import runner.training.stacked  # noqa: E402
 
 runner.execution.executors.deterministic_kernels()

@@ -1,4 +1,5 @@
 """Progress while a grid runs: one live line on a terminal, one line per job elsewhere."""
+
 from __future__ import annotations
 
 import statistics
@@ -17,15 +18,23 @@ def _seconds(seconds: float) -> str:
 
 
 def _clock(seconds: float) -> str:
-    seconds = int(round(seconds))
+    seconds = round(seconds)
     h, rest = divmod(seconds, 3600)
     m, s = divmod(rest, 60)
     return f"{h}:{m:02d}:{s:02d}" if h else f"{m}:{s:02d}"
 
 
 class Progress:
-    def __init__(self, total: int, metric: str, goal: str, stream=None, live: bool | None = None,
-                 quiet: bool = False, verbose: bool = False):
+    def __init__(
+        self,
+        total: int,
+        metric: str,
+        goal: str,
+        stream=None,
+        live: bool | None = None,
+        quiet: bool = False,
+        verbose: bool = False,
+    ):
         self.verbose = verbose
         self.total = total
         self.metric = metric
@@ -44,8 +53,9 @@ class Progress:
             self.stream.write(text + "\n")
             self.stream.flush()
 
-    def update(self, label: str, seed: int, status: Status, value: float | None, seconds: float,
-               error: str | None = None) -> None:
+    def update(
+        self, label: str, seed: int, status: Status, value: float | None, seconds: float, error: str | None = None
+    ) -> None:
         status = Status(status)
         self.finished += 1
         self.counts[status] += 1
@@ -57,14 +67,18 @@ class Progress:
         left = elapsed / self.finished * (self.total - self.finished)
         if self.live:
             best = self._best()
-            line = (f"[{self.finished}/{self.total}] failed {self.counts[Status.FAILED]}, diverged "
-                    f"{self.counts[Status.DIVERGED]} | {_clock(elapsed)} elapsed, ~{_clock(left)} left"
-                    + (f" | best {best[0]}: {best[1]:.4f}" if best else ""))
+            line = (
+                f"[{self.finished}/{self.total}] failed {self.counts[Status.FAILED]}, diverged "
+                f"{self.counts[Status.DIVERGED]} | {_clock(elapsed)} elapsed, ~{_clock(left)} left"
+                + (f" | best {best[0]}: {best[1]:.4f}" if best else "")
+            )
             self.stream.write("\r\033[K" + line)
         else:
             shown = f"{self.metric}={value:.4f}" if value is not None else ""
-            self.stream.write(f"[{self.finished}/{self.total}] {status.value:<8} {label} seed {seed} "
-                              f"{shown} ({_seconds(seconds)}; ~{_clock(left)} left)\n")
+            self.stream.write(
+                f"[{self.finished}/{self.total}] {status.value:<8} {label} seed {seed} "
+                f"{shown} ({_seconds(seconds)}; ~{_clock(left)} left)\n"
+            )
             if self.verbose and error:
                 self.stream.write(f"    {error}\n")
         self.stream.flush()

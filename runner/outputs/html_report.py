@@ -5,6 +5,7 @@ the top configurations and the baseline; each factor's main effect with 95% whis
 per-layer gradient norms at initialization on a log scale; weight sparsity and dead-unit
 fractions where recorded. Nothing is fetched from the network to view the file.
 """
+
 from __future__ import annotations
 
 import base64
@@ -13,11 +14,11 @@ import io
 
 import numpy as np
 
-from runner.recipe.grid import Grid
-from runner.evidence.document import Leaderboard, Row
-from runner.outputs.text import interval, number, versus
-from runner.store.database import Store
+from runner.evidence.document import Leaderboard
 from runner.evidence.leaderboard import leaderboard
+from runner.outputs.text import interval, number, versus
+from runner.recipe.grid import Grid
+from runner.store.database import Store
 
 __all__ = ["build_report"]
 
@@ -54,23 +55,29 @@ def _png(fig) -> str:
 
 
 def _figure(fig, caption: str, name: str) -> str:
-    return (f'<figure id="fig-{name}"><img alt="{html.escape(caption)}" src="data:image/png;base64,{_png(fig)}">'
-            f"<figcaption>{html.escape(caption)}</figcaption></figure>")
+    return (
+        f'<figure id="fig-{name}"><img alt="{html.escape(caption)}" src="data:image/png;base64,{_png(fig)}">'
+        f"<figcaption>{html.escape(caption)}</figcaption></figure>"
+    )
 
 
 def _table(doc: Leaderboard) -> str:
     names = doc.factor_names
-    head = "".join(f"<th>{html.escape(h)}</th>" for h in
-                   ["rank", *names, "n", "mean", "sd", "95% CI", "test", "vs best (Holm)", "flags"])
+    head = "".join(
+        f"<th>{html.escape(h)}</th>"
+        for h in ["rank", *names, "n", "mean", "sd", "95% CI", "test", "vs best (Holm)", "flags"]
+    )
     body = []
     for row in doc.rows:
         cells = [str(row.rank or "-"), *[html.escape(row.labels[n]) for n in names], str(row.n)]
         nums = [number(row.mean), number(row.std), interval(row.ci95), number(row.test_mean)]
         flags = ", ".join(row.flags)
-        body.append(f'<tr class="{"top" if row.top_group else ""}">'
-                    + "".join(f"<td>{c}</td>" for c in cells)
-                    + "".join(f'<td class="num">{c}</td>' for c in nums)
-                    + f'<td class="vs">{html.escape(versus(row))}</td><td class="flag">{html.escape(flags)}</td></tr>')
+        body.append(
+            f'<tr class="{"top" if row.top_group else ""}">'
+            + "".join(f"<td>{c}</td>" for c in cells)
+            + "".join(f'<td class="num">{c}</td>' for c in nums)
+            + f'<td class="vs">{html.escape(versus(row))}</td><td class="flag">{html.escape(flags)}</td></tr>'
+        )
     return f'<table id="leaderboard"><thead><tr>{head}</tr></thead><tbody>{"".join(body)}</tbody></table>'
 
 
@@ -97,9 +104,8 @@ def _curves_figure(grid: Grid, store: Store, doc: dict, plt):
             length = min(len(s) for s in series)
             arr = np.array([[np.nan if v is None else v for v in s[:length]] for s in series], dtype=float)
             epochs = np.arange(1, length + 1)
-            line, = ax.plot(epochs, np.nanmean(arr, axis=0), label=tag)
-            ax.fill_between(epochs, np.nanmin(arr, axis=0), np.nanmax(arr, axis=0), alpha=0.18,
-                            color=line.get_color())
+            (line,) = ax.plot(epochs, np.nanmean(arr, axis=0), label=tag)
+            ax.fill_between(epochs, np.nanmin(arr, axis=0), np.nanmax(arr, axis=0), alpha=0.18, color=line.get_color())
     for ax, title in zip(axes, ("training loss", "validation loss")):
         ax.set_title(title)
         ax.set_xlabel("epoch")
@@ -116,8 +122,10 @@ def _effects_figure(doc: dict, plt):
     for ax, eff in zip(axes[0], effects):
         labels = [lvl.label for lvl in eff.levels]
         means = [lvl.mean if lvl.mean is not None else np.nan for lvl in eff.levels]
-        err = [[(m - lvl.ci95[0]) if lvl.ci95 else 0 for m, lvl in zip(means, eff.levels)],
-               [(lvl.ci95[1] - m) if lvl.ci95 else 0 for m, lvl in zip(means, eff.levels)]]
+        err = [
+            [(m - lvl.ci95[0]) if lvl.ci95 else 0 for m, lvl in zip(means, eff.levels)],
+            [(lvl.ci95[1] - m) if lvl.ci95 else 0 for m, lvl in zip(means, eff.levels)],
+        ]
         colors = ["#8c6d46" if label == eff.baseline else "#3f7f6b" for label in labels]
         ax.bar(range(len(labels)), means, yerr=err, capsize=4, color=colors)
         ax.set_xticks(range(len(labels)), labels, rotation=30, ha="right", fontsize=8)
@@ -137,8 +145,11 @@ def _gradients_figure(grid: Grid, store: Store, doc: dict, plt):
     fig, ax = plt.subplots(figsize=(8, 3.8))
     drawn = 0
     for row in doc.rows:
-        norms = [stored[j.key].diagnostics.get("init_grad_norms") for j in grid
-                 if j.config.id == row.config_id and j.key in stored]
+        norms = [
+            stored[j.key].diagnostics.get("init_grad_norms")
+            for j in grid
+            if j.config.id == row.config_id and j.key in stored
+        ]
         norms = [n for n in norms if n]
         if not norms:
             continue
@@ -177,8 +188,10 @@ def build_report(grid: Grid, store: Store) -> str:
     except ImportError:
         from runner.errors import UserError
 
-        raise UserError("the report needs matplotlib",
-                        hint='Install it with: python -m pip install -c constraints.txt -e ".[report]"') from None
+        raise UserError(
+            "the report needs matplotlib",
+            hint='Install it with: python -m pip install -c constraints.txt -e ".[report]"',
+        ) from None
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
@@ -186,18 +199,34 @@ def build_report(grid: Grid, store: Store) -> str:
     doc = leaderboard(grid, store)
     figures = []
     made = [
-        ("curves", _curves_figure(grid, store, doc, plt),
-         f"Loss per epoch, mean over seeds with the min-max band, for the top {TOP} configurations and the baseline."),
-        ("effects", _effects_figure(doc, plt),
-         f"Main effect of each factor on {doc.metric}: mean over the other factors, 95% interval over seeds "
-         "(brown: baseline level)."),
-        ("gradients", _gradients_figure(grid, store, doc, plt),
-         "Per-layer weight-gradient norm at initialization (log scale): a steep fall towards layer 1 is a "
-         "vanishing gradient."),
-        ("sparsity", _bars_figure(doc, "zero_fraction", "fraction of weights exactly zero", plt),
-         "Weight sparsity at the end of training (exact zeros, e.g. from proximal L1)."),
-        ("dead", _bars_figure(doc, "dead_fraction", "fraction of dead ReLU units", plt),
-         "ReLU units never active on a probe batch at the end of training."),
+        (
+            "curves",
+            _curves_figure(grid, store, doc, plt),
+            f"Loss per epoch, mean over seeds with the min-max band, for the top {TOP} configurations "
+            "and the baseline.",
+        ),
+        (
+            "effects",
+            _effects_figure(doc, plt),
+            f"Main effect of each factor on {doc.metric}: mean over the other factors, 95% interval over seeds "
+            "(brown: baseline level).",
+        ),
+        (
+            "gradients",
+            _gradients_figure(grid, store, doc, plt),
+            "Per-layer weight-gradient norm at initialization (log scale): a steep fall towards layer 1 is a "
+            "vanishing gradient.",
+        ),
+        (
+            "sparsity",
+            _bars_figure(doc, "zero_fraction", "fraction of weights exactly zero", plt),
+            "Weight sparsity at the end of training (exact zeros, e.g. from proximal L1).",
+        ),
+        (
+            "dead",
+            _bars_figure(doc, "dead_fraction", "fraction of dead ReLU units", plt),
+            "ReLU units never active on a probe batch at the end of training.",
+        ),
     ]
     for name, fig, caption in made:
         if fig is not None:
@@ -212,12 +241,12 @@ def build_report(grid: Grid, store: Store) -> str:
 <p class="sub">{html.escape(grid.recipe.description)}</p>
 <p class="sub">Ranked by {html.escape(doc.metric)} ({doc.goal.words}).
 {len(doc.rows)} configurations, {j.total} jobs: {j.done} done, {j.diverged} diverged, {j.failed} failed,
-{j.timeout} timed out, {j.pending} pending. Seeds: {', '.join(map(str, doc.seeds))}.</p>
+{j.timeout} timed out, {j.pending} pending. Seeds: {", ".join(map(str, doc.seeds))}.</p>
 <h2>Leaderboard</h2>
 {_table(doc)}
 <div class="caution"><ul>{cautions}</ul></div>
 <h2>Figures</h2>
-{''.join(figures) or '<p class="sub">No finished jobs yet: run the recipe first.</p>'}
+{"".join(figures) or '<p class="sub">No finished jobs yet: run the recipe first.</p>'}
 {_CHECK}
 </body></html>
 """

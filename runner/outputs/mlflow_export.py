@@ -6,6 +6,7 @@ URI, so a retry sends only what is missing. Per run: params = the resolved setti
 paths) and the seed; metrics = per-epoch curves (step = epoch) and the final metrics
 ("val.accuracy", ...); tags = job key, configuration id, seed, status.
 """
+
 from __future__ import annotations
 
 import json
@@ -19,9 +20,12 @@ from runner.training.job import Status
 
 __all__ = ["Exporter", "RunLogger", "export_all"]
 
+
 def _flat(settings: Settings) -> dict[str, str]:
-    return {path: json.dumps(list(value)) if isinstance(value, (list, tuple)) else str(value)
-            for path, value in settings.flat().items()}
+    return {
+        path: json.dumps(list(value)) if isinstance(value, (list, tuple)) else str(value)
+        for path, value in settings.flat().items()
+    }
 
 
 class Exporter:
@@ -29,9 +33,12 @@ class Exporter:
         try:
             from mlflow.tracking import MlflowClient
         except ImportError:
-            raise UserError("MLflow export needs mlflow-skinny (and SQLAlchemy, Alembic for sqlite:// URIs)",
-                            key="--mlflow", value=uri,
-                            hint='Install them with: python -m pip install -c constraints.txt -e ".[mlflow]"') from None
+            raise UserError(
+                "MLflow export needs mlflow-skinny (and SQLAlchemy, Alembic for sqlite:// URIs)",
+                key="--mlflow",
+                value=uri,
+                hint='Install them with: python -m pip install -c constraints.txt -e ".[mlflow]"',
+            ) from None
         import logging
 
         for name in ("mlflow", "alembic"):
@@ -41,9 +48,12 @@ class Exporter:
             self.client = MlflowClient(tracking_uri=uri)
             self.client.search_experiments(max_results=1)  # fail here, before any job runs
         except Exception as exc:
-            raise UserError(f"cannot use this MLflow tracking URI ({type(exc).__name__}: {exc})",
-                            key="--mlflow", value=uri,
-                            allowed="a reachable tracking URI, e.g. sqlite:///mlflow.db or http://host:5000") from None
+            raise UserError(
+                f"cannot use this MLflow tracking URI ({type(exc).__name__}: {exc})",
+                key="--mlflow",
+                value=uri,
+                allowed="a reachable tracking URI, e.g. sqlite:///mlflow.db or http://host:5000",
+            ) from None
         self._parent: str | None = None
         self._experiment: str | None = None
 
@@ -56,9 +66,15 @@ class Exporter:
         key = f"mlflow_parent:{self.uri}:{self.grid.recipe.name}"
         known = self.store.meta(key)
         if known is None:
-            parent = self.client.create_run(self._experiment, run_name=f"grid {self.grid.recipe.name}",
-                                            tags={"recipe.name": self.grid.recipe.name, "recipe.kind": "grid",
-                                                  "recipe.hash": self.grid.recipe.hash})
+            parent = self.client.create_run(
+                self._experiment,
+                run_name=f"grid {self.grid.recipe.name}",
+                tags={
+                    "recipe.name": self.grid.recipe.name,
+                    "recipe.kind": "grid",
+                    "recipe.hash": self.grid.recipe.hash,
+                },
+            )
             self.store.set_meta(key, parent.info.run_id)
             self._parent = parent.info.run_id
         else:
@@ -73,9 +89,18 @@ class Exporter:
 
         parent = self._parent_run()
         labels = ", ".join(f"{v}" for v in self.grid.labels(job.config).values()) or "base"
-        run = self.client.create_run(self._experiment, run_name=f"{labels} / seed {job.seed}", tags={
-            "mlflow.parentRunId": parent, "recipe.job_key": job.key, "recipe.config_id": job.config.id,
-            "recipe.seed": str(job.seed), "recipe.status": stored.status.value, "recipe.name": self.grid.recipe.name})
+        run = self.client.create_run(
+            self._experiment,
+            run_name=f"{labels} / seed {job.seed}",
+            tags={
+                "mlflow.parentRunId": parent,
+                "recipe.job_key": job.key,
+                "recipe.config_id": job.config.id,
+                "recipe.seed": str(job.seed),
+                "recipe.status": stored.status.value,
+                "recipe.name": self.grid.recipe.name,
+            },
+        )
         run_id = run.info.run_id
         now = int(time.time() * 1000)
         params = [Param(k, v) for k, v in sorted(_flat(job.config.settings).items())]
@@ -87,9 +112,9 @@ class Exporter:
             points += [Metric(f"{split}.{n}", float(v), now, 0) for n, v in vals.items() if v is not None]
         tags = [RunTag("recipe.error", stored.error)] if stored.error else []
         for i in range(0, max(len(params), 1), 100):
-            self.client.log_batch(run_id, params=params[i:i + 100])
+            self.client.log_batch(run_id, params=params[i : i + 100])
         for i in range(0, len(points), 1000):
-            self.client.log_batch(run_id, metrics=points[i:i + 1000])
+            self.client.log_batch(run_id, metrics=points[i : i + 1000])
         if tags:
             self.client.log_batch(run_id, tags=tags)
         self.client.set_terminated(run_id, status="FINISHED" if stored.status is Status.DONE else "FAILED")
@@ -131,8 +156,9 @@ class RunLogger:
             return
         try:
             row = self.store.jobs([job.key])[0]
-            self.exporter.export(job, row, self.store.metrics().get(job.key, {}),
-                                 self.store.curves([job.key]).get(job.key, {}))
+            self.exporter.export(
+                job, row, self.store.metrics().get(job.key, {}), self.store.curves([job.key]).get(job.key, {})
+            )
         except Exception:
             self.failed = True
 

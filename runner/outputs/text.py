@@ -1,5 +1,6 @@
 """Render a leaderboard as a text table, markdown, CSV or JSON; the number and table
 formatting the diff and the HTML report share."""
+
 from __future__ import annotations
 
 import csv
@@ -9,7 +10,7 @@ import json
 from runner.components.metrics import Goal
 from runner.evidence.document import Ablation, Leaderboard, Row
 
-__all__ = ["render", "render_ablation", "FORMATS", "number", "interval", "p_text", "versus", "grid_lines"]
+__all__ = ["FORMATS", "grid_lines", "interval", "number", "p_text", "render", "render_ablation", "versus"]
 
 FORMATS = ("csv", "json", "markdown", "table")
 
@@ -43,32 +44,47 @@ def _columns(doc: Leaderboard) -> tuple[list[str], list[list[str]]]:
     body = []
     for row in doc.rows:
         n = f"{row.n}/{row.counts.total}"
-        body.append([str(row.rank or "-"), *[row.labels[f] for f in factor_names], n,
-                     number(row.mean), number(row.std), interval(row.ci95), number(row.test_mean),
-                     versus(row), ", ".join(row.flags) or ""])
+        body.append(
+            [
+                str(row.rank or "-"),
+                *[row.labels[f] for f in factor_names],
+                n,
+                number(row.mean),
+                number(row.std),
+                interval(row.ci95),
+                number(row.test_mean),
+                versus(row),
+                ", ".join(row.flags) or "",
+            ]
+        )
     return header, body
 
 
 def _head(doc: Leaderboard) -> list[str]:
     j = doc.jobs
     higher = "higher" if doc.goal is Goal.MAX else "lower"
-    lines = [f"{doc.recipe}: ranked by {doc.metric} ({higher} is better); {len(doc.rows)} configurations, "
-             f"{j.total} jobs: {j.done} done, {j.diverged} diverged, {j.failed} failed, {j.timeout} timed out, "
-             f"{j.pending} pending"]
+    lines = [
+        f"{doc.recipe}: ranked by {doc.metric} ({higher} is better); {len(doc.rows)} configurations, "
+        f"{j.total} jobs: {j.done} done, {j.diverged} diverged, {j.failed} failed, {j.timeout} timed out, "
+        f"{j.pending} pending"
+    ]
     env = doc.environment
     if env.distinct > 1:
         lines.append("Note: stored jobs ran in differing environments (" + ", ".join(env.differs_in) + ").")
     if env.recipe_versions > 1:
-        lines.append(f"Note: results come from {env.recipe_versions} versions of the recipe file; "
-                     "each job's own settings are the ones shown.")
+        lines.append(
+            f"Note: results come from {env.recipe_versions} versions of the recipe file; "
+            "each job's own settings are the ones shown."
+        )
     return lines
 
 
 def _table(doc: Leaderboard) -> str:
     header, body = _columns(doc)
     widths = [max(len(r[i]) for r in [header, *body]) for i in range(len(header))]
-    fmt = lambda cells: "  ".join(c.rjust(w) if i == 0 else c.ljust(w)  # noqa: E731
-                                  for i, (c, w) in enumerate(zip(cells, widths))).rstrip()
+    fmt = lambda cells: "  ".join(
+        c.rjust(w) if i == 0 else c.ljust(w) for i, (c, w) in enumerate(zip(cells, widths))
+    ).rstrip()
     lines = _head(doc) + ["", fmt(header), fmt(["-" * w for w in widths])]
     lines += [fmt(r) for r in body]
     lines += [""] + [f"* {c}" for c in doc.cautions]
@@ -77,9 +93,15 @@ def _table(doc: Leaderboard) -> str:
 
 def _markdown(doc: Leaderboard) -> str:
     header, body = _columns(doc)
-    esc = lambda s: s.replace("|", "\\|")  # noqa: E731
-    lines = [f"### {doc.recipe}", "", *_head(doc), "",
-             "| " + " | ".join(header) + " |", "|" + "|".join("---" for _ in header) + "|"]
+    esc = lambda s: s.replace("|", "\\|")
+    lines = [
+        f"### {doc.recipe}",
+        "",
+        *_head(doc),
+        "",
+        "| " + " | ".join(header) + " |",
+        "|" + "|".join("---" for _ in header) + "|",
+    ]
     lines += ["| " + " | ".join(esc(c) for c in r) + " |" for r in body]
     lines += [""] + [f"- {c}" for c in doc.cautions]
     return "\n".join(lines) + "\n"
@@ -90,16 +112,49 @@ def _csv(doc: Leaderboard) -> str:
     seeds = [str(s) for s in doc.seeds]
     out = io.StringIO()
     w = csv.writer(out, lineterminator="\n")
-    w.writerow(["rank", "config_id", *factor_names, "n", "mean", "std", "ci95_low", "ci95_high",
-                "test_mean", "diff_vs_best", "p_holm", "top_group", "diverged", "failed", "flags",
-                *[f"seed_{s}" for s in seeds]])
+    w.writerow(
+        [
+            "rank",
+            "config_id",
+            *factor_names,
+            "n",
+            "mean",
+            "std",
+            "ci95_low",
+            "ci95_high",
+            "test_mean",
+            "diff_vs_best",
+            "p_holm",
+            "top_group",
+            "diverged",
+            "failed",
+            "flags",
+            *[f"seed_{s}" for s in seeds],
+        ]
+    )
     for row in doc.rows:
         vs = row.vs_best
         ci = row.ci95 or [None, None]
-        w.writerow([row.rank, row.config_id, *[row.labels[f] for f in factor_names], row.n,
-                    row.mean, row.std, ci[0], ci[1], row.test_mean, vs.diff_mean if vs else None,
-                    vs.p_holm if vs else None, row.top_group, row.counts.diverged,
-                    row.counts.failed, ";".join(row.flags), *[row.per_seed.get(s) for s in seeds]])
+        w.writerow(
+            [
+                row.rank,
+                row.config_id,
+                *[row.labels[f] for f in factor_names],
+                row.n,
+                row.mean,
+                row.std,
+                ci[0],
+                ci[1],
+                row.test_mean,
+                vs.diff_mean if vs else None,
+                vs.p_holm if vs else None,
+                row.top_group,
+                row.counts.diverged,
+                row.counts.failed,
+                ";".join(row.flags),
+                *[row.per_seed.get(s) for s in seeds],
+            ]
+        )
     return out.getvalue()
 
 
@@ -111,11 +166,12 @@ def render(doc: Leaderboard, fmt: str) -> str:
 
 def grid_lines(header: list[str], body: list[list[str]], markdown: bool) -> list[str]:
     if markdown:
-        esc = lambda s: s.replace("|", "\\|")  # noqa: E731
-        return (["| " + " | ".join(header) + " |", "|" + "|".join("---" for _ in header) + "|"]
-                + ["| " + " | ".join(esc(c) for c in r) + " |" for r in body])
+        esc = lambda s: s.replace("|", "\\|")
+        return ["| " + " | ".join(header) + " |", "|" + "|".join("---" for _ in header) + "|"] + [
+            "| " + " | ".join(esc(c) for c in r) + " |" for r in body
+        ]
     widths = [max(len(r[i]) for r in [header, *body]) for i in range(len(header))]
-    fmt = lambda cells: "  ".join(c.ljust(w) for c, w in zip(cells, widths)).rstrip()  # noqa: E731
+    fmt = lambda cells: "  ".join(c.ljust(w) for c, w in zip(cells, widths)).rstrip()
     return [fmt(header), fmt(["-" * w for w in widths])] + [fmt(r) for r in body]
 
 
@@ -125,48 +181,103 @@ def p_text(value) -> str:
 
 def render_ablation(ab: Ablation, markdown: bool = False) -> str:
     """The ablation tables of a leaderboard, as text or markdown."""
-    title = (lambda t: f"#### {t}") if markdown else (lambda t: t)  # noqa: E731
+    title = (lambda t: f"#### {t}") if markdown else (lambda t: t)
     out: list[str] = []
     body = []
     for eff in ab.main_effects:
         for lvl in eff.levels:
             d = lvl.diff_vs_baseline
             is_base = lvl.label == eff.baseline
-            body.append([eff.factor, lvl.label + (" (baseline)" if is_base else ""), number(lvl.mean),
-                         interval(lvl.ci95), "-" if d is None else f"{d.diff_mean:+.4f}",
-                         "-" if d is None else interval(d.ci95), "-" if d is None else p_text(d.p_value),
-                         "-" if d is None else f"{d.n_pairs}/{d.n_seeds}"])
+            body.append(
+                [
+                    eff.factor,
+                    lvl.label + (" (baseline)" if is_base else ""),
+                    number(lvl.mean),
+                    interval(lvl.ci95),
+                    "-" if d is None else f"{d.diff_mean:+.4f}",
+                    "-" if d is None else interval(d.ci95),
+                    "-" if d is None else p_text(d.p_value),
+                    "-" if d is None else f"{d.n_pairs}/{d.n_seeds}",
+                ]
+            )
     if body:
-        out += ["", title(f"Main effects on {ab.metric}: each level averaged over the other factors; "
-                          "difference to the baseline paired over matched configurations and seeds"), ""]
-        out += grid_lines(["factor", "level", "mean", "95% CI", "vs baseline", "95% CI", "p",
-                           "pairs/seeds"], body, markdown)
+        out += [
+            "",
+            title(
+                f"Main effects on {ab.metric}: each level averaged over the other factors; "
+                "difference to the baseline paired over matched configurations and seeds"
+            ),
+            "",
+        ]
+        out += grid_lines(
+            ["factor", "level", "mean", "95% CI", "vs baseline", "95% CI", "p", "pairs/seeds"], body, markdown
+        )
     ofat = ab.one_at_a_time
     if ofat and ofat.rows:
         base = ", ".join(f"{k} = {v}" for k, v in ofat.baseline.items())
         out += ["", title(f"One factor at a time from the baseline ({base}; mean {number(ofat.baseline_mean)})"), ""]
-        out += grid_lines(["factor", "changed to", "mean", "vs baseline", "95% CI", "p", "seeds"],
-                          [[r.factor, r.label, number(r.mean),
-                            "-" if r.diff_mean is None else f"{r.diff_mean:+.4f}", interval(r.ci95),
-                            p_text(r.p_value), str(r.n_pairs)] for r in ofat.rows], markdown)
+        out += grid_lines(
+            ["factor", "changed to", "mean", "vs baseline", "95% CI", "p", "seeds"],
+            [
+                [
+                    r.factor,
+                    r.label,
+                    number(r.mean),
+                    "-" if r.diff_mean is None else f"{r.diff_mean:+.4f}",
+                    interval(r.ci95),
+                    p_text(r.p_value),
+                    str(r.n_pairs),
+                ]
+                for r in ofat.rows
+            ],
+            markdown,
+        )
     for inter in ab.interactions:
         a_levels = list(next(iter(inter.means.values())).keys()) if inter.means else []
-        rows = [[bl, *[number(row[a]) for a in a_levels], inter.best_a_by_b[bl] or "-"]
-                for bl, row in inter.means.items()]
+        rows = [
+            [bl, *[number(row[a]) for a in a_levels], inter.best_a_by_b[bl] or "-"] for bl, row in inter.means.items()
+        ]
         verdict = "depends on" if inter.depends else "does not depend on"
         out += ["", title(f"Interaction: the best {inter.a} {verdict} {inter.b} (means)"), ""]
         out += grid_lines([f"{inter.b} \\ {inter.a}", *a_levels, "best"], rows, markdown)
     if ab.regularization:
         out += ["", title("Regularization: val metric, train-val gap and weight sparsity"), ""]
-        out += grid_lines(["factor", "level", "n", "mean", "gap", "zero w", "near-zero w"],
-                          [[r.factor, r.label, str(r.n), number(r.mean), number(r.gap),
-                            number(r.zero_fraction, 3), number(r.near_zero_fraction, 3)]
-                           for r in ab.regularization], markdown)
+        out += grid_lines(
+            ["factor", "level", "n", "mean", "gap", "zero w", "near-zero w"],
+            [
+                [
+                    r.factor,
+                    r.label,
+                    str(r.n),
+                    number(r.mean),
+                    number(r.gap),
+                    number(r.zero_fraction, 3),
+                    number(r.near_zero_fraction, 3),
+                ]
+                for r in ab.regularization
+            ],
+            markdown,
+        )
     if ab.optimization:
-        out += ["", title("Optimization: epochs to reach 95% of each job's best val metric, final train loss, "
-                          "divergences"), ""]
-        out += grid_lines(["factor", "level", "n", "mean", "epochs to 95%", "final loss", "diverged"],
-                          [[r.factor, r.label, str(r.n), number(r.mean), number(r.epochs_to_95pct, 1),
-                            number(r.final_train_loss), str(r.diverged)] for r in ab.optimization],
-                          markdown)
+        out += [
+            "",
+            title("Optimization: epochs to reach 95% of each job's best val metric, final train loss, divergences"),
+            "",
+        ]
+        out += grid_lines(
+            ["factor", "level", "n", "mean", "epochs to 95%", "final loss", "diverged"],
+            [
+                [
+                    r.factor,
+                    r.label,
+                    str(r.n),
+                    number(r.mean),
+                    number(r.epochs_to_95pct, 1),
+                    number(r.final_train_loss),
+                    str(r.diverged),
+                ]
+                for r in ab.optimization
+            ],
+            markdown,
+        )
     return "\n".join(out) + ("\n" if out else "")

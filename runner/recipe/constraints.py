@@ -4,17 +4,32 @@ One generic validator (``validate_table``) turns a table plus raw TOML values
 into checked values or a ``RecipeError`` naming the key and what is allowed.
 The same tables drive the documentation of defaults and the JSON Schema.
 """
+
 from __future__ import annotations
 
 import difflib
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any, Mapping
+from typing import Any
 
 from runner.errors import MISSING, RecipeError
 
-__all__ = ["Constraint", "Real", "Integer", "Choice", "Boolean", "Text", "IntList", "Either", "Pattern",
-           "Param", "Invalid", "validate_table", "suggest"]
+__all__ = [
+    "Boolean",
+    "Choice",
+    "Constraint",
+    "Either",
+    "IntList",
+    "Integer",
+    "Invalid",
+    "Param",
+    "Pattern",
+    "Real",
+    "Text",
+    "suggest",
+    "validate_table",
+]
 
 
 class Invalid(ValueError):
@@ -111,6 +126,7 @@ class Choice(Constraint):
 @dataclass(frozen=True, slots=True)
 class Pattern(Constraint):
     """A string matching a regular expression (anchored at both ends)."""
+
     regex: str
     shown: str
 
@@ -170,6 +186,7 @@ class IntList(Constraint):
 @dataclass(frozen=True, slots=True)
 class Either(Constraint):
     """The first constraint that accepts the value wins."""
+
     options: tuple[Constraint, ...]
 
     def check(self, value: Any) -> Any:
@@ -190,10 +207,11 @@ class Either(Constraint):
 @dataclass(frozen=True, slots=True)
 class Param:
     """One setting: its constraint, default (MISSING = required) and a one-line doc."""
+
     constraint: Constraint | None
     default: Any = MISSING
     doc: str = ""
-    table: Mapping[str, "Param"] | None = field(default=None)  # nested table of settings
+    table: Mapping[str, Param] | None = field(default=None)  # nested table of settings
 
 
 def suggest(word: str, options) -> str | None:
@@ -207,13 +225,17 @@ def validate_table(raw: Any, table: Mapping[str, Param], prefix: str) -> dict[st
     Raises RecipeError with ``key`` set to the dotted path of the first bad entry.
     """
     if not isinstance(raw, Mapping):
-        raise RecipeError("must be a table", key=prefix, value=raw,
-                          allowed="a TOML table of " + ", ".join(sorted(table)))
+        raise RecipeError(
+            "must be a table", key=prefix, value=raw, allowed="a TOML table of " + ", ".join(sorted(table))
+        )
     for key in raw:
         if key not in table:
             near = suggest(key, table)
-            raise RecipeError("unknown key" + (f'; did you mean "{prefix}.{near}"?' if near else ""),
-                              key=f"{prefix}.{key}", allowed=", ".join(sorted(table)))
+            raise RecipeError(
+                "unknown key" + (f'; did you mean "{prefix}.{near}"?' if near else ""),
+                key=f"{prefix}.{key}",
+                allowed=", ".join(sorted(table)),
+            )
     out: dict[str, Any] = {}
     for key, param in table.items():
         path = f"{prefix}.{key}"
@@ -229,6 +251,5 @@ def validate_table(raw: Any, table: Mapping[str, Param], prefix: str) -> dict[st
         try:
             out[key] = param.constraint.check(value)
         except Invalid as bad:
-            raise RecipeError(bad.problem, key=path, value=value, allowed=bad.allowed,
-                              hint=bad.hint) from None
+            raise RecipeError(bad.problem, key=path, value=value, allowed=bad.allowed, hint=bad.hint) from None
     return out

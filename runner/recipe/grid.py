@@ -3,25 +3,27 @@
 Every configuration is resolved and validated here, with the data loaded, before any job
 runs: an impossible combination is a RecipeError, not a failed job.
 """
+
 from __future__ import annotations
 
 import dataclasses
 import hashlib
 import itertools
 import json
+from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any, Mapping
+from typing import Any
 
-from runner.datasets.sources import Dataset, load_dataset, source_key
-from runner.errors import DataError, RecipeError, UserError
+from runner.components.lr_schedules import check_schedule
 from runner.components.metrics import METRICS, for_task
 from runner.components.optimizers import check_optimizer
+from runner.datasets.sources import Dataset, load_dataset, source_key
+from runner.errors import DataError, RecipeError, UserError
 from runner.recipe.loader import Recipe, resolve
-from runner.components.lr_schedules import check_schedule
 from runner.recipe.settings import Settings
 from runner.training.job import JobSpec
 
-__all__ = ["Config", "Job", "Grid", "expand", "canonical"]
+__all__ = ["Config", "Grid", "Job", "canonical", "expand"]
 
 KEY_VERSION = 1  # bump when a change to training makes old results incomparable
 
@@ -41,9 +43,9 @@ def _plain(obj: Any) -> Any:
 @dataclass(frozen=True)
 class Config:
     index: int
-    id: str                          # hash of the resolved settings and data, without the seed
-    levels: tuple[int, ...]          # level index of each factor
-    assignments: Mapping[str, Any]   # path -> value set by the factors
+    id: str  # hash of the resolved settings and data, without the seed
+    levels: tuple[int, ...]  # level index of each factor
+    assignments: Mapping[str, Any]  # path -> value set by the factors
     settings: Settings
     data_id: str
 
@@ -56,16 +58,21 @@ class Job:
     monitor: str
 
     def spec(self, checkpoint: str | None = None, time_limit: float | None = None) -> JobSpec:
-        return JobSpec(key=self.key, seed=self.seed, settings=self.config.settings,
-                       monitor=self.monitor, data_id=self.config.data_id, checkpoint=checkpoint,
-                       time_limit=time_limit)
+        return JobSpec(
+            key=self.key,
+            seed=self.seed,
+            settings=self.config.settings,
+            monitor=self.monitor,
+            data_id=self.config.data_id,
+            checkpoint=checkpoint,
+            time_limit=time_limit,
+        )
 
 
 class Grid:
     """Configurations times seeds; ``len`` and indexing do not build every job."""
 
-    def __init__(self, recipe: Recipe, configs: list[Config], datasets: dict[str, Dataset],
-                 rank_by: str, task: str):
+    def __init__(self, recipe: Recipe, configs: list[Config], datasets: dict[str, Dataset], rank_by: str, task: str):
         self.recipe = recipe
         self.configs = configs
         self.datasets = datasets
@@ -93,8 +100,15 @@ class Grid:
 
 
 def job_key(config: Config, seed: int, monitor: str) -> str:
-    text = canonical({"v": KEY_VERSION, "settings": config.settings.identity(), "data": config.data_id,
-                      "seed": seed, "monitor": monitor})
+    text = canonical(
+        {
+            "v": KEY_VERSION,
+            "settings": config.settings.identity(),
+            "data": config.data_id,
+            "seed": seed,
+            "monitor": monitor,
+        }
+    )
     return hashlib.sha256(text.encode()).hexdigest()[:24]
 
 
@@ -141,22 +155,44 @@ def _expand(recipe: Recipe) -> Grid:
         if task is None:
             task = ds.task
         elif ds.task != task:
-            raise RecipeError("all configurations must share one task (classification or regression)",
-                              key="data.source", value=ds.label)
+            raise RecipeError(
+                "all configurations must share one task (classification or regression)",
+                key="data.source",
+                value=ds.label,
+            )
         if settings.model.kind == "cnn" and ds.image_shape is None:
-            raise RecipeError('model.kind = "cnn" needs image data', key="model.kind", value="cnn",
-                              allowed='"digits" or an NPZ file with X of shape (N, H, W) or (N, C, H, W)')
+            raise RecipeError(
+                'model.kind = "cnn" needs image data',
+                key="model.kind",
+                value="cnn",
+                allowed='"digits" or an NPZ file with X of shape (N, H, W) or (N, C, H, W)',
+            )
         ident = hashlib.sha256(canonical({"settings": settings.identity(), "data": ds.fingerprint}).encode())
-        configs.append(Config(index=len(configs), id=ident.hexdigest()[:12], levels=combo,
-                              assignments=assign, settings=settings, data_id=ds.fingerprint))
+        configs.append(
+            Config(
+                index=len(configs),
+                id=ident.hexdigest()[:12],
+                levels=combo,
+                assignments=assign,
+                settings=settings,
+                data_id=ds.fingerprint,
+            )
+        )
     if not configs:
-        raise RecipeError("the exclusions remove every configuration: nothing would run", key="exclude",
-                          hint="Loosen or remove an [[exclude]] rule")
+        raise RecipeError(
+            "the exclusions remove every configuration: nothing would run",
+            key="exclude",
+            hint="Loosen or remove an [[exclude]] rule",
+        )
     rank_by = recipe.rank_by or ("val.accuracy" if task == "classification" else "val.rmse")
     metric = rank_by.split(".", 1)[1]
     if METRICS[metric][0] != task:
-        raise RecipeError(f"{metric} is not a {task} metric", key="rank_by", value=rank_by,
-                          allowed=", ".join(f'"val.{m}"' for m in for_task(task)))
+        raise RecipeError(
+            f"{metric} is not a {task} metric",
+            key="rank_by",
+            value=rank_by,
+            allowed=", ".join(f'"val.{m}"' for m in for_task(task)),
+        )
     return Grid(recipe, configs, datasets, rank_by, task)
 
 
@@ -166,5 +202,8 @@ def _check_rules(settings: Settings) -> None:
     check_schedule(settings.train)
     split = settings.data.split
     if split.val + split.test >= 0.9:
-        raise RecipeError("val and test together must leave at least 10% for training",
-                          key="data.split", value={"val": split.val, "test": split.test})
+        raise RecipeError(
+            "val and test together must leave at least 10% for training",
+            key="data.split",
+            value={"val": split.val, "test": split.test},
+        )

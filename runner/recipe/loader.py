@@ -3,34 +3,71 @@
 Everything downstream takes the Recipe; nothing reads raw TOML again. Checks that need the
 data (the target column, the task, the rank metric) happen in ``grid.expand``.
 """
+
 from __future__ import annotations
 
 import copy
 import hashlib
 import re
-from dataclasses import dataclass, field
+from collections.abc import Mapping
+from dataclasses import dataclass
 from pathlib import Path
 from types import MappingProxyType
-from typing import Any, Mapping
+from typing import Any
 
 import tomli
 
-from runner.errors import RecipeError, UserError
 from runner.components.metrics import METRICS
-from runner.recipe.constraints import Choice, Either, Integer, Invalid, Param, Pattern, Real, Text, suggest, validate_table
+from runner.errors import RecipeError, UserError
+from runner.recipe.constraints import (
+    Choice,
+    Either,
+    Integer,
+    Invalid,
+    Param,
+    Pattern,
+    Real,
+    Text,
+    suggest,
+    validate_table,
+)
 from runner.recipe.settings import SECTIONS, Settings, all_paths, param_at
 
-__all__ = ["Factor", "Recipe", "RunSettings", "TrackingSettings", "DiagnosticThresholds", "load_recipe",
-           "parse_recipe", "resolve"]
+__all__ = [
+    "DiagnosticThresholds",
+    "Factor",
+    "Recipe",
+    "RunSettings",
+    "TrackingSettings",
+    "load_recipe",
+    "parse_recipe",
+    "resolve",
+]
 
-TOP_LEVEL = ("baseline", "data", "description", "diagnostics", "exclude", "factors", "model",
-             "name", "rank_by", "run", "seeds", "tracking", "train")
+TOP_LEVEL = (
+    "baseline",
+    "data",
+    "description",
+    "diagnostics",
+    "exclude",
+    "factors",
+    "model",
+    "name",
+    "rank_by",
+    "run",
+    "seeds",
+    "tracking",
+    "train",
+)
 
 # [run]: where and how wide the grid runs; command-line options override it. Not part of any
 # job's identity: the same job gives the same numbers wherever it runs.
 RUN = {
-    "on": Param(Either((Choice(("dask-local", "local")), Pattern(r"dask://[^\s/]+:\d+", "dask://HOST:PORT"))),
-                "local", 'where jobs run: "local", "dask-local" or "dask://HOST:PORT"'),
+    "on": Param(
+        Either((Choice(("dask-local", "local")), Pattern(r"dask://[^\s/]+:\d+", "dask://HOST:PORT"))),
+        "local",
+        'where jobs run: "local", "dask-local" or "dask://HOST:PORT"',
+    ),
     "workers": Param(Integer(1, 4096), 0, "worker processes (0 = the number of cores)"),
 }
 TRACKING = {
@@ -40,10 +77,12 @@ TRACKING = {
 # Thresholds for the leaderboard's flags. They act on stored numbers, so changing them
 # needs no rerun and they are not part of a job's identity.
 DIAGNOSTICS = {
-    "vanishing_below": Param(Real(0, None, low_open=True), 1e-3,
-                             "flag when first-layer / last-layer gradient norm at init is below this"),
-    "exploding_above": Param(Real(0, None, low_open=True), 1e3,
-                             "flag when first-layer / last-layer gradient norm at init is above this"),
+    "vanishing_below": Param(
+        Real(0, None, low_open=True), 1e-3, "flag when first-layer / last-layer gradient norm at init is below this"
+    ),
+    "exploding_above": Param(
+        Real(0, None, low_open=True), 1e3, "flag when first-layer / last-layer gradient norm at init is above this"
+    ),
     "dead_above": Param(Real(0, 1), 0.5, "flag when the fraction of dead ReLU units exceeds this"),
     "saturated_above": Param(Real(0, 1), 0.5, "flag when the fraction of saturated units exceeds this"),
     "gap_above": Param(Real(0, None), 0.1, "flag overfitting when train minus val metric exceeds this"),
@@ -53,19 +92,22 @@ DIAGNOSTICS = {
 @dataclass(frozen=True, slots=True)
 class RunSettings:
     """The [run] table: where and how wide the grid runs (command-line options win)."""
+
     on: str = "local"
-    workers: int = 0            # 0: chosen by the tool
+    workers: int = 0  # 0: chosen by the tool
 
 
 @dataclass(frozen=True, slots=True)
 class TrackingSettings:
     """The [tracking] table."""
+
     mlflow: str | None = None
 
 
 @dataclass(frozen=True, slots=True)
 class DiagnosticThresholds:
     """The [diagnostics] table: thresholds of the leaderboard's flags."""
+
     vanishing_below: float = 1e-3
     exploding_above: float = 1e3
     dead_above: float = 0.5
@@ -76,6 +118,7 @@ class DiagnosticThresholds:
 @dataclass(frozen=True, slots=True)
 class Factor:
     """A factor: one path, or several linked paths whose levels move together."""
+
     name: str
     paths: tuple[str, ...]
     levels: tuple[tuple[Any, ...], ...]  # levels[i][j] = value of paths[j] at level i
@@ -95,13 +138,13 @@ class Recipe:
     name: str
     description: str
     seeds: tuple[int, ...]
-    rank_by: str | None            # "val.<metric>"; None = the task's default, set by grid.expand
-    sections: Mapping[str, Any]    # the [data], [model], [train] tables as written
+    rank_by: str | None  # "val.<metric>"; None = the task's default, set by grid.expand
+    sections: Mapping[str, Any]  # the [data], [model], [train] tables as written
     factors: tuple[Factor, ...]
     exclude: tuple[Mapping[str, Any], ...]
-    baseline: Mapping[str, int]    # factor name -> level index
+    baseline: Mapping[str, int]  # factor name -> level index
     diagnostics: DiagnosticThresholds
-    baseline_given: bool = False   # the recipe has a [baseline] table of its own
+    baseline_given: bool = False  # the recipe has a [baseline] table of its own
     run: RunSettings = RunSettings()
     tracking: TrackingSettings = TrackingSettings()
 
@@ -118,8 +161,7 @@ def load_recipe(path: str | Path) -> Recipe:
     try:
         data = path.read_bytes()
     except FileNotFoundError:
-        raise RecipeError("recipe file not found", where=str(path),
-                          hint="Give the path of a .toml recipe") from None
+        raise RecipeError("recipe file not found", where=str(path), hint="Give the path of a .toml recipe") from None
     except OSError as exc:
         raise RecipeError(f"cannot read recipe ({exc.strerror})", where=str(path)) from None
     try:
@@ -136,8 +178,9 @@ def parse_recipe(text: str, path: Path) -> Recipe:
     except tomli.TOMLDecodeError as exc:
         line = getattr(exc, "lineno", None)
         msg = getattr(exc, "msg", str(exc))
-        raise RecipeError(f"not valid TOML ({msg})", where=where, line=line,
-                          hint="Check quotes, brackets and '=' on that line") from None
+        raise RecipeError(
+            f"not valid TOML ({msg})", where=where, line=line, hint="Check quotes, brackets and '=' on that line"
+        ) from None
     try:
         return _build(raw, text, path)
     except UserError as err:
@@ -148,14 +191,21 @@ def _build(raw: dict, text: str, path: Path) -> Recipe:
     for key in raw:
         if key not in TOP_LEVEL:
             near = suggest(key, TOP_LEVEL)
-            raise RecipeError("unknown top-level key" + (f'; did you mean "{near}"?' if near else ""),
-                              key=key, allowed=", ".join(TOP_LEVEL))
+            raise RecipeError(
+                "unknown top-level key" + (f'; did you mean "{near}"?' if near else ""),
+                key=key,
+                allowed=", ".join(TOP_LEVEL),
+            )
     if "name" not in raw:
         raise RecipeError("is required", key="name", allowed="a short name for the study")
     name = raw["name"]
     if not isinstance(name, str) or not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9_.-]{0,63}", name):
-        raise RecipeError("must be a short name of letters, digits, '-', '_' or '.'", key="name",
-                          value=name, allowed='e.g. "kiln-quickstart"')
+        raise RecipeError(
+            "must be a short name of letters, digits, '-', '_' or '.'",
+            key="name",
+            value=name,
+            allowed='e.g. "kiln-quickstart"',
+        )
     description = raw.get("description", "")
     if not isinstance(description, str):
         raise RecipeError("must be a string", key="description", value=description)
@@ -175,11 +225,22 @@ def _build(raw: dict, text: str, path: Path) -> Recipe:
     run = RunSettings(**validate_table(raw.get("run", {}), RUN, "run"))
     tracking = TrackingSettings(**validate_table(raw.get("tracking", {}), TRACKING, "tracking"))
     return Recipe(
-        path=path.resolve(), text=text, hash=hashlib.sha256(text.encode()).hexdigest(),
-        name=name, description=description, seeds=seeds, rank_by=rank_by,
-        sections=MappingProxyType(copy.deepcopy(sections)), factors=factors, exclude=exclude,
-        baseline=MappingProxyType(baseline), diagnostics=diagnostics,
-        baseline_given="baseline" in raw, run=run, tracking=tracking)
+        path=path.resolve(),
+        text=text,
+        hash=hashlib.sha256(text.encode()).hexdigest(),
+        name=name,
+        description=description,
+        seeds=seeds,
+        rank_by=rank_by,
+        sections=MappingProxyType(copy.deepcopy(sections)),
+        factors=factors,
+        exclude=exclude,
+        baseline=MappingProxyType(baseline),
+        diagnostics=diagnostics,
+        baseline_given="baseline" in raw,
+        run=run,
+        tracking=tracking,
+    )
 
 
 def resolve(sections: Mapping[str, Any], assignments: Mapping[str, Any]) -> Settings:
@@ -196,14 +257,16 @@ def resolve(sections: Mapping[str, Any], assignments: Mapping[str, Any]) -> Sett
 
 def _seeds(value: Any) -> tuple[int, ...]:
     if not isinstance(value, list) or not value:
-        raise RecipeError("must be a non-empty list of whole numbers", key="seeds", value=value,
-                          allowed="e.g. [1, 2, 3]")
+        raise RecipeError(
+            "must be a non-empty list of whole numbers", key="seeds", value=value, allowed="e.g. [1, 2, 3]"
+        )
     for seed in value:
         try:
             Integer(0, 2**31 - 1).check(seed)
         except Invalid:
-            raise RecipeError("each seed must be a whole number from 0 to 2147483647", key="seeds",
-                              value=seed) from None
+            raise RecipeError(
+                "each seed must be a whole number from 0 to 2147483647", key="seeds", value=seed
+            ) from None
     if len(set(value)) != len(value):
         raise RecipeError("seeds must not repeat", key="seeds", value=value)
     return tuple(value)
@@ -215,16 +278,24 @@ def _rank_by(value: Any) -> str:
         raise RecipeError('must be "<split>.<metric>"', key="rank_by", value=value, allowed=allowed)
     split, metric = value.split(".", 1)
     if split == "test":
-        raise RecipeError("ranking on the test split is refused: choosing on test makes the test "
-                          "score optimistic", key="rank_by", value=value, allowed=allowed,
-                          hint="Rank on val; the test score is shown beside it")
+        raise RecipeError(
+            "ranking on the test split is refused: choosing on test makes the test score optimistic",
+            key="rank_by",
+            value=value,
+            allowed=allowed,
+            hint="Rank on val; the test score is shown beside it",
+        )
     if split != "val":
-        raise RecipeError("the leaderboard ranks on the validation split", key="rank_by",
-                          value=value, allowed=allowed)
+        raise RecipeError("the leaderboard ranks on the validation split", key="rank_by", value=value, allowed=allowed)
     if metric not in METRICS:
         near = suggest(metric, METRICS)
-        raise RecipeError("unknown metric", key="rank_by", value=value, allowed=allowed,
-                          hint=f'Did you mean "val.{near}"?' if near else None)
+        raise RecipeError(
+            "unknown metric",
+            key="rank_by",
+            value=value,
+            allowed=allowed,
+            hint=f'Did you mean "val.{near}"?' if near else None,
+        )
     return value
 
 
@@ -232,8 +303,11 @@ def _check_path(path: str, key: str) -> Param:
     param = param_at(path)
     if param is None:
         near = suggest(path, all_paths())
-        raise RecipeError("is not a setting that can vary" + (f'; did you mean "{near}"?' if near else ""),
-                          key=key, allowed="a dotted path such as \"train.lr\" or \"model.hidden\"")
+        raise RecipeError(
+            "is not a setting that can vary" + (f'; did you mean "{near}"?' if near else ""),
+            key=key,
+            allowed='a dotted path such as "train.lr" or "model.hidden"',
+        )
     return param
 
 
@@ -263,14 +337,19 @@ def _factors(raw: Any, sections: dict) -> tuple[Factor, ...]:
             if -1 in lengths:
                 raise RecipeError("each linked path needs a list of levels", key=key)
             if len(lengths) != 1:
-                raise RecipeError("linked level lists must have equal lengths", key=key,
-                                  value={p: len(v) for p, v in spec.items()})
+                raise RecipeError(
+                    "linked level lists must have equal lengths", key=key, value={p: len(v) for p, v in spec.items()}
+                )
             columns = [spec[p] for p in paths]
         elif isinstance(spec, list):
             paths, columns = (name,), [spec]
         else:
-            raise RecipeError("must be a list of levels, or a table of linked paths", key=key,
-                              value=spec, allowed='e.g. "train.lr" = [0.1, 0.01]')
+            raise RecipeError(
+                "must be a list of levels, or a table of linked paths",
+                key=key,
+                value=spec,
+                allowed='e.g. "train.lr" = [0.1, 0.01]',
+            )
         for path in paths:
             pkey = key if len(paths) == 1 else f'{key}."{path}"'
             param = _check_path(path, pkey)
@@ -286,12 +365,19 @@ def _factors(raw: Any, sections: dict) -> tuple[Factor, ...]:
         if len(set(map(_freeze, levels))) != len(levels):
             raise RecipeError("levels must not repeat", key=key, value=[list(l) for l in levels])
         if names is not None:
-            ok = (isinstance(names, list) and len(names) == len(levels)
-                  and all(isinstance(n, str) and n.strip() for n in names) and len(set(names)) == len(names))
+            ok = (
+                isinstance(names, list)
+                and len(names) == len(levels)
+                and all(isinstance(n, str) and n.strip() for n in names)
+                and len(set(names)) == len(names)
+            )
             if not ok:
-                raise RecipeError("labels must be distinct non-empty strings, one per level",
-                                  key=f"{key}.labels", value=names,
-                                  allowed=f"a list of {len(levels)} distinct names")
+                raise RecipeError(
+                    "labels must be distinct non-empty strings, one per level",
+                    key=f"{key}.labels",
+                    value=names,
+                    allowed=f"a list of {len(levels)} distinct names",
+                )
             names = tuple(names)
         factors.append(Factor(name=name, paths=paths, levels=levels, names=names))
     return tuple(factors)
@@ -299,8 +385,12 @@ def _factors(raw: Any, sections: dict) -> tuple[Factor, ...]:
 
 def _exclude(raw: Any, factors: tuple[Factor, ...]) -> tuple[Mapping[str, Any], ...]:
     if not isinstance(raw, list) or not all(isinstance(r, dict) for r in raw):
-        raise RecipeError("must be a list of tables", key="exclude", value=raw,
-                          allowed='e.g. [[exclude]] with "train.optimizer" = "sgd"')
+        raise RecipeError(
+            "must be a list of tables",
+            key="exclude",
+            value=raw,
+            allowed='e.g. [[exclude]] with "train.optimizer" = "sgd"',
+        )
     by_path = {p: (f, j) for f in factors for j, p in enumerate(f.paths)}
     out = []
     for i, rule in enumerate(raw):
@@ -308,14 +398,20 @@ def _exclude(raw: Any, factors: tuple[Factor, ...]) -> tuple[Mapping[str, Any], 
             raise RecipeError("an empty rule would exclude everything", key=f"exclude[{i}]")
         for path, value in rule.items():
             if path not in by_path:
-                raise RecipeError("names no factor path", key=f'exclude[{i}]."{path}"',
-                                  allowed=", ".join(f'"{p}"' for p in sorted(by_path)) or "(no factors)")
+                raise RecipeError(
+                    "names no factor path",
+                    key=f'exclude[{i}]."{path}"',
+                    allowed=", ".join(f'"{p}"' for p in sorted(by_path)) or "(no factors)",
+                )
             factor, j = by_path[path]
             values = [lvl[j] for lvl in factor.levels]
             if _freeze(value) not in map(_freeze, values):
-                raise RecipeError("is not one of the factor's levels, so the rule never applies",
-                                  key=f'exclude[{i}]."{path}"', value=value,
-                                  allowed=", ".join(_fmt(v) for v in values))
+                raise RecipeError(
+                    "is not one of the factor's levels, so the rule never applies",
+                    key=f'exclude[{i}]."{path}"',
+                    value=value,
+                    allowed=", ".join(_fmt(v) for v in values),
+                )
         out.append(MappingProxyType(dict(rule)))
     return tuple(out)
 
@@ -327,16 +423,23 @@ def _baseline(raw: Any, factors: tuple[Factor, ...]) -> dict[str, int]:
     chosen = {}
     for name, value in raw.items():
         if name not in by_name:
-            raise RecipeError("names no factor", key=f'baseline."{name}"',
-                              allowed=", ".join(f'"{n}"' for n in sorted(by_name)) or "(no factors)")
+            raise RecipeError(
+                "names no factor",
+                key=f'baseline."{name}"',
+                allowed=", ".join(f'"{n}"' for n in sorted(by_name)) or "(no factors)",
+            )
         factor = by_name[name]
         wanted = tuple(value) if len(factor.paths) > 1 and isinstance(value, list) else (value,)
         matches = [i for i, lvl in enumerate(factor.levels) if _freeze(lvl) == _freeze(wanted)]
         if not matches and factor.names and value in factor.names:
             matches = [factor.names.index(value)]
         if not matches:
-            raise RecipeError("is not one of the factor's levels", key=f'baseline."{name}"',
-                              value=value, allowed=", ".join(factor.label(i) for i in range(len(factor.levels))))
+            raise RecipeError(
+                "is not one of the factor's levels",
+                key=f'baseline."{name}"',
+                value=value,
+                allowed=", ".join(factor.label(i) for i in range(len(factor.levels))),
+            )
         chosen[name] = matches[0]
     return {f.name: chosen.get(f.name, 0) for f in factors}
 
@@ -375,8 +478,9 @@ def _line_of(text: str, key: str | None) -> int | None:
     parts = key.split(".")
     if len(parts) == 1:
         for n, line in enumerate(lines, 1):
-            if re.match(rf'\s*"?{re.escape(parts[0])}"?\s*=', line) or \
-               re.match(rf"\s*\[\[?\s*{re.escape(parts[0])}\s*\]", line):
+            if re.match(rf'\s*"?{re.escape(parts[0])}"?\s*=', line) or re.match(
+                rf"\s*\[\[?\s*{re.escape(parts[0])}\s*\]", line
+            ):
                 return n
         return None
     section, name = parts[0], parts[1]

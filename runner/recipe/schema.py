@@ -5,10 +5,11 @@ It covers the structure and every key's type and range. Checks that need the dat
 several settings (the target column, the task's metrics, "nesterov needs momentum > 0",
 exclusions that remove everything) only the validator can make: `recipe check` does both.
 """
+
 from __future__ import annotations
 
-from runner.errors import MISSING
 from runner.components.metrics import METRICS
+from runner.errors import MISSING
 from runner.recipe.constraints import Boolean, Choice, Either, Integer, IntList, Param, Pattern, Real, Text
 from runner.recipe.loader import DIAGNOSTICS, RUN, TRACKING
 from runner.recipe.settings import SECTIONS, all_paths, param_at
@@ -40,8 +41,12 @@ def _constraint(c) -> dict:
     if isinstance(c, Text):
         return {"type": "string", "minLength": 1, "pattern": r"\S"}
     if isinstance(c, IntList):
-        return {"type": "array", "items": {"type": "integer", "minimum": c.low},
-                "minItems": c.min_len, "maxItems": c.max_len}
+        return {
+            "type": "array",
+            "items": {"type": "integer", "minimum": c.low},
+            "minItems": c.min_len,
+            "maxItems": c.max_len,
+        }
     if isinstance(c, Pattern):
         return {"type": "string", "pattern": f"^(?:{c.regex})$"}
     if isinstance(c, Either):
@@ -61,9 +66,12 @@ def _param(p: Param) -> dict:
 
 
 def _table(table: dict, doc: str = "") -> dict:
-    out = {"type": "object", "additionalProperties": False,
-           "properties": {k: _param(p) for k, p in table.items()},
-           "required": [k for k, p in table.items() if p.table is None and p.default is MISSING]}
+    out = {
+        "type": "object",
+        "additionalProperties": False,
+        "properties": {k: _param(p) for k, p in table.items()},
+        "required": [k for k, p in table.items() if p.table is None and p.default is MISSING],
+    }
     if not out["required"]:
         del out["required"]
     if doc:
@@ -77,19 +85,23 @@ def _levels(path: str) -> dict:
 
 def recipe_schema() -> dict:
     paths = all_paths()
-    linked = {"type": "object", "minProperties": 1,
-              "description": "a linked factor: paths whose level lists move together, position by position",
-              "properties": {"labels": {"type": "array", "items": {"type": "string", "minLength": 1},
-                                        "uniqueItems": True}},
-              "propertyNames": {"enum": ["labels", *paths]},
-              "additionalProperties": {"type": "array", "minItems": 1}}
+    linked = {
+        "type": "object",
+        "minProperties": 1,
+        "description": "a linked factor: paths whose level lists move together, position by position",
+        "properties": {"labels": {"type": "array", "items": {"type": "string", "minLength": 1}, "uniqueItems": True}},
+        "propertyNames": {"enum": ["labels", *paths]},
+        "additionalProperties": {"type": "array", "minItems": 1},
+    }
     for p in paths:
         linked["properties"][p] = _levels(p)
-    factors = {"type": "object",
-               "description": 'each key is a setting\'s dotted path with a list of levels, or a linked '
-                              'factor\'s name with a table of paths',
-               "properties": {p: _levels(p) for p in paths},
-               "additionalProperties": linked}
+    factors = {
+        "type": "object",
+        "description": "each key is a setting's dotted path with a list of levels, or a linked "
+        "factor's name with a table of paths",
+        "properties": {p: _levels(p) for p in paths},
+        "additionalProperties": linked,
+    }
     scalar = {"type": ["string", "number", "boolean", "array"]}
     return {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
@@ -101,15 +113,28 @@ def recipe_schema() -> dict:
         "properties": {
             "name": {"type": "string", "pattern": r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$"},
             "description": {"type": "string"},
-            "seeds": {"type": "array", "minItems": 1, "uniqueItems": True,
-                      "items": {"type": "integer", "minimum": 0, "maximum": 2**31 - 1}},
-            "rank_by": {"type": "string", "enum": sorted(f"val.{m}" for m in METRICS),
-                        "description": "ranked on the validation split; never on test"},
+            "seeds": {
+                "type": "array",
+                "minItems": 1,
+                "uniqueItems": True,
+                "items": {"type": "integer", "minimum": 0, "maximum": 2**31 - 1},
+            },
+            "rank_by": {
+                "type": "string",
+                "enum": sorted(f"val.{m}" for m in METRICS),
+                "description": "ranked on the validation split; never on test",
+            },
             **{name: _table(table) for name, table in SECTIONS.items()},
             "factors": factors,
-            "exclude": {"type": "array", "items": {"type": "object", "minProperties": 1,
-                                                   "propertyNames": {"enum": paths},
-                                                   "additionalProperties": scalar}},
+            "exclude": {
+                "type": "array",
+                "items": {
+                    "type": "object",
+                    "minProperties": 1,
+                    "propertyNames": {"enum": paths},
+                    "additionalProperties": scalar,
+                },
+            },
             "baseline": {"type": "object", "additionalProperties": scalar},
             "diagnostics": _table(DIAGNOSTICS),
             "run": _table(RUN),

@@ -7,11 +7,13 @@ travel only as ``Settings`` (``DataSettings``, ``ModelSettings``, ``TrainSetting
 as raw dicts; ``Settings.to_dict`` gives the plain form that job keys are hashed from and the
 store keeps.
 """
+
 from __future__ import annotations
 
 import dataclasses
+from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any, Mapping
+from typing import Any
 
 from runner.components import lr_schedules, regularizers
 from runner.components.activations import ACTIVATIONS
@@ -19,8 +21,21 @@ from runner.components.initializers import INITIALIZERS
 from runner.components.optimizers import HYPERPARAMS, OPTIMIZERS
 from runner.recipe.constraints import Boolean, Choice, Either, Integer, IntList, Param, Real, Text
 
-__all__ = ["SECTIONS", "DATA", "MODEL", "TRAIN", "BUNDLED", "NOT_IDENTITY", "all_paths", "param_at",
-           "Settings", "DataSettings", "SplitSettings", "ModelSettings", "TrainSettings"]
+__all__ = [
+    "BUNDLED",
+    "DATA",
+    "MODEL",
+    "NOT_IDENTITY",
+    "SECTIONS",
+    "TRAIN",
+    "DataSettings",
+    "ModelSettings",
+    "Settings",
+    "SplitSettings",
+    "TrainSettings",
+    "all_paths",
+    "param_at",
+]
 
 BUNDLED = ("breast_cancer", "circles", "diabetes", "digits", "iris", "moons", "wine")
 
@@ -31,14 +46,17 @@ SPLIT = {
 }
 
 DATA = {
-    "source": Param(Text(), doc="CSV or NPZ path relative to the recipe, or a bundled name: "
-                    + ", ".join(BUNDLED)),
+    "source": Param(Text(), doc="CSV or NPZ path relative to the recipe, or a bundled name: " + ", ".join(BUNDLED)),
     "target": Param(Text(), None, "name of the target column (CSV only)"),
-    "task": Param(Choice(("auto", "classification", "regression")), "auto",
-                  "auto: a text target, or whole numbers with at most 20 distinct values, is classification"),
+    "task": Param(
+        Choice(("auto", "classification", "regression")),
+        "auto",
+        "auto: a text target, or whole numbers with at most 20 distinct values, is classification",
+    ),
     "split": Param(None, table=SPLIT, doc="val/test fractions and stratification; the seed draws the split"),
-    "scale": Param(Choice(("minmax", "none", "standard")), "standard",
-                   "feature scaling, fitted on the training split only"),
+    "scale": Param(
+        Choice(("minmax", "none", "standard")), "standard", "feature scaling, fitted on the training split only"
+    ),
     "n_samples": Param(Integer(20, 1_000_000), 1000, "rows generated for moons and circles"),
     "noise": Param(Real(0, None), 0.1, "noise level for moons and circles"),
 }
@@ -63,13 +81,15 @@ TRAIN = {
     **HYPERPARAMS,
     **regularizers.PARAMS,
     **lr_schedules.PARAMS,
-    "batch_size": Param(Either((Integer(1), Choice(("full",)))), 32,
-                        'mini-batch size, or "full" for full-batch gradient descent'),
+    "batch_size": Param(
+        Either((Integer(1), Choice(("full",)))), 32, 'mini-batch size, or "full" for full-batch gradient descent'
+    ),
     "epochs": Param(Integer(1, 100_000), 30, "passes over the training split"),
     "clip_norm": Param(Real(0, None), 0.0, "clip the global gradient norm to this; 0 = off"),
     "patience": Param(Integer(0), 0, "early stopping: epochs without val improvement; 0 = off"),
-    "diverge_factor": Param(Real(1, None, low_open=True), 1e6,
-                            "stop as diverged when the loss exceeds this multiple of its first value"),
+    "diverge_factor": Param(
+        Real(1, None, low_open=True), 1e6, "stop as diverged when the loss exceeds this multiple of its first value"
+    ),
     "time_limit": Param(Real(0, None), 0.0, "seconds one job may train, then it stops as timed out; 0 = no limit"),
     "checkpoint_every": Param(Integer(0), 0, "save a resumable checkpoint every N epochs; 0 = never"),
 }
@@ -119,7 +139,7 @@ class SplitSettings:
 class DataSettings:
     source: str
     target: str | None
-    task: str                  # "auto", "classification" or "regression"
+    task: str  # "auto", "classification" or "regression"
     split: SplitSettings
     scale: str
     n_samples: int
@@ -160,7 +180,7 @@ class TrainSettings:
     step_every: int
     step_gamma: float
     warmup_epochs: int
-    batch_size: int | str      # a row count, or "full"
+    batch_size: int | str  # a row count, or "full"
     epochs: int
     clip_norm: float
     patience: int
@@ -186,6 +206,7 @@ class TrainSettings:
 @dataclass(frozen=True, slots=True)
 class Settings:
     """One configuration's fully resolved settings."""
+
     data: DataSettings
     model: ModelSettings
     train: TrainSettings
@@ -200,8 +221,11 @@ class Settings:
 
     def to_dict(self) -> dict[str, dict[str, Any]]:
         """The plain nested form: what job keys are hashed from and the store keeps."""
-        return {"data": dataclasses.asdict(self.data), "model": dataclasses.asdict(self.model),
-                "train": dataclasses.asdict(self.train)}
+        return {
+            "data": dataclasses.asdict(self.data),
+            "model": dataclasses.asdict(self.model),
+            "train": dataclasses.asdict(self.train),
+        }
 
     def identity(self) -> dict[str, dict[str, Any]]:
         """``to_dict`` without NOT_IDENTITY: what a job's key is hashed from."""

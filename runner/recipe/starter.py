@@ -1,4 +1,5 @@
 """`recipe new`: a commented starter recipe for a data file, with the target and task guessed."""
+
 from __future__ import annotations
 
 import csv
@@ -11,7 +12,7 @@ from runner.datasets.sources import MAX_CLASSES_AUTO
 from runner.errors import DataError
 from runner.recipe.settings import BUNDLED
 
-__all__ = ["target_candidates", "starter_recipe"]
+__all__ = ["starter_recipe", "target_candidates"]
 
 _LIKELY = ("target", "label", "class", "y", "outcome", "species", "result")
 
@@ -60,9 +61,13 @@ def target_candidates(path: Path) -> list[tuple[str, str]]:
 def starter_recipe(source: str, out: Path, target: str | None = None) -> str:
     """The text of a starter recipe for ``source`` (a file, or a bundled name), to live at ``out``."""
     name = re.sub(r"[^A-Za-z0-9_.-]+", "-", Path(source).stem).strip("-.") or "study"
-    lines = [f"# Starter recipe for {source}, written by 'recipe new'. Edit, then: recipe check {out.name}",
-             f'name = "{name}"', 'description = "What does this study want to find out?"',
-             "seeds = [1, 2, 3, 4, 5]                # each configuration runs once per seed", ""]
+    lines = [
+        f"# Starter recipe for {source}, written by 'recipe new'. Edit, then: recipe check {out.name}",
+        f'name = "{name}"',
+        'description = "What does this study want to find out?"',
+        "seeds = [1, 2, 3, 4, 5]                # each configuration runs once per seed",
+        "",
+    ]
     data = ["[data]"]
     image = False
     task = None
@@ -79,31 +84,52 @@ def starter_recipe(source: str, out: Path, target: str | None = None) -> str:
             candidates = target_candidates(path)
             if target is None:
                 if not candidates:
-                    raise DataError("no column looks like a target", where=source,
-                                    hint="Name it with --target COLUMN")
+                    raise DataError("no column looks like a target", where=source, hint="Name it with --target COLUMN")
                 target, task = candidates[0]
                 others = ", ".join(c for c, _ in candidates[1:4])
                 note = f"   # guessed ({task})" + (f"; other candidates: {others}" if others else "")
             else:
                 cols = _read_columns(path)
                 if target not in cols:
-                    raise DataError("no such column", where=source, key="--target", value=target,
-                                    allowed=", ".join(f'"{c}"' for c in cols))
+                    raise DataError(
+                        "no such column",
+                        where=source,
+                        key="--target",
+                        value=target,
+                        allowed=", ".join(f'"{c}"' for c in cols),
+                    )
                 note = ""
             data.append(f'target = "{target}"{note}')
-    data += ["split = { val = 0.2, test = 0.2, stratify = true }   # the seed draws the split",
-             'scale = "standard"                     # fitted on the training split only', ""]
+    data += [
+        "split = { val = 0.2, test = 0.2, stratify = true }   # the seed draws the split",
+        'scale = "standard"                     # fitted on the training split only',
+        "",
+    ]
     model = ["[model]"]
     if image:
-        model += ['kind = "cnn"                           # image data: conv layers, then a dense head',
-                  "channels = [16, 32]", "hidden = [64]"]
+        model += [
+            'kind = "cnn"                           # image data: conv layers, then a dense head',
+            "channels = [16, 32]",
+            "hidden = [64]",
+        ]
     else:
         model += ["hidden = [64, 64]"]
     model += ['activation = "relu"', 'init = "he_normal"', "dropout = 0.0", ""]
-    train = ["[train]", 'optimizer = "adam"', "lr = 1e-3", "batch_size = 32", "epochs = 30",
-             "patience = 0                           # early stopping: epochs without improvement; 0 = off",
-             ""]
-    factors = ["# Every combination of levels is one configuration. A linked factor moves several",
-               "# settings together: [factors.NAME] with equal-length lists (and optional labels).",
-               "[factors]", '"train.optimizer" = ["sgd", "momentum", "adam"]', '"train.l2" = [0.0, 1e-4]', ""]
+    train = [
+        "[train]",
+        'optimizer = "adam"',
+        "lr = 1e-3",
+        "batch_size = 32",
+        "epochs = 30",
+        "patience = 0                           # early stopping: epochs without improvement; 0 = off",
+        "",
+    ]
+    factors = [
+        "# Every combination of levels is one configuration. A linked factor moves several",
+        "# settings together: [factors.NAME] with equal-length lists (and optional labels).",
+        "[factors]",
+        '"train.optimizer" = ["sgd", "momentum", "adam"]',
+        '"train.l2" = [0.0, 1e-4]',
+        "",
+    ]
     return "\n".join(lines + data + model + train + factors)

@@ -1,5 +1,6 @@
 """The results store: one SQLite file per recipe, touched only through ``Store``."""
+
 from runner.store.database import SCHEMA_VERSION, Store, StoredJob
 from runner.store.lock import STALE_AFTER, RunnerLock
 
-__all__ = ["Store", "StoredJob", "RunnerLock", "SCHEMA_VERSION", "STALE_AFTER"]
+__all__ = ["SCHEMA_VERSION", "STALE_AFTER", "RunnerLock", "Store", "StoredJob"]

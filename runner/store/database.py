@@ -5,22 +5,23 @@ environment, diagnostics), metrics (final metric per split), curves (per-epoch v
 A job's whole result is written in one transaction when it finishes, so a killed process
 leaves either the complete result or none of it. Only finished jobs are stored.
 """
+
 from __future__ import annotations
 
 import json
 import os
 import socket
 import sqlite3
-import threading
 import time
-from pathlib import Path
+from collections.abc import Iterable
 from dataclasses import dataclass
-from typing import Any, Iterable
+from pathlib import Path
+from typing import Any
 
 from runner.errors import StoreError
 from runner.training.job import FINISHED, JobResult, Status
 
-__all__ = ["Store", "StoredJob", "SCHEMA_VERSION"]
+__all__ = ["SCHEMA_VERSION", "Store", "StoredJob"]
 
 SCHEMA_VERSION = 1
 
@@ -52,10 +53,11 @@ CREATE TABLE IF NOT EXISTS exports (
 @dataclass(frozen=True)
 class StoredJob:
     """A finished job as the store holds it."""
+
     key: str
     config_id: str
     seed: int
-    levels: dict[str, str]       # factor name -> level label
+    levels: dict[str, str]  # factor name -> level label
     status: Status
     error: str | None
     duration: float
@@ -78,8 +80,11 @@ class Store:
     def __init__(self, path: str | Path, create: bool = True):
         self.path = Path(path)
         if not create and not self.path.exists():
-            raise StoreError("no results store here yet", where=str(self.path),
-                             hint="Run the recipe first with 'recipe run', or pass --store PATH")
+            raise StoreError(
+                "no results store here yet",
+                where=str(self.path),
+                hint="Run the recipe first with 'recipe run', or pass --store PATH",
+            )
         self.path.parent.mkdir(parents=True, exist_ok=True)
         try:
             self.conn = sqlite3.connect(self.path, timeout=30.0, isolation_level=None)
@@ -105,8 +110,10 @@ class Store:
         self.close()
 
     def remember_recipe(self, recipe) -> None:
-        self.conn.execute("INSERT OR IGNORE INTO recipes VALUES (?, ?, ?, ?, ?)",
-                          (recipe.hash, recipe.name, str(recipe.path), recipe.text, time.time()))
+        self.conn.execute(
+            "INSERT OR IGNORE INTO recipes VALUES (?, ?, ?, ?, ?)",
+            (recipe.hash, recipe.name, str(recipe.path), recipe.text, time.time()),
+        )
 
     def finished_keys(self, statuses: Iterable[Status] = FINISHED) -> set[str]:
         statuses = tuple(s.value for s in statuses)
@@ -114,8 +121,7 @@ class Store:
         rows = self.conn.execute(f"SELECT key FROM jobs WHERE status IN ({marks})", statuses)
         return {r[0] for r in rows}
 
-    def write_result(self, job, labels: dict, recipe_hash: str, result: JobResult,
-                     attempts: int = 1) -> None:
+    def write_result(self, job, labels: dict, recipe_hash: str, result: JobResult, attempts: int = 1) -> None:
         """The whole result in one transaction (metrics and curves replace any earlier try)."""
         c = self.conn
         diagnostics = {**result.diagnostics, "notes": result.notes} if result.notes else result.diagnostics
@@ -127,16 +133,32 @@ class Store:
                 "INSERT INTO jobs (key, config_id, seed, levels, settings, recipe_hash, status, error,"
                 " finished, duration, epochs_run, best_epoch, attempts, env, diagnostics)"
                 " VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)",
-                (job.key, job.config.id, job.seed, json.dumps(labels), json.dumps(job.config.settings.to_dict(),
-                 sort_keys=True), recipe_hash, Status(result.status).value, result.error, time.time(),
-                 result.duration, result.epochs_run, result.best_epoch, attempts,
-                 json.dumps(result.env, sort_keys=True), json.dumps(diagnostics, sort_keys=True)))
-            c.executemany("INSERT INTO metrics VALUES (?,?,?,?)",
-                          [(job.key, split, name, _num(v)) for split, vals in result.metrics.items()
-                           for name, v in vals.items()])
-            c.executemany("INSERT INTO curves VALUES (?,?,?,?)",
-                          [(job.key, name, e + 1, _num(v)) for name, vals in result.curves.items()
-                           for e, v in enumerate(vals)])
+                (
+                    job.key,
+                    job.config.id,
+                    job.seed,
+                    json.dumps(labels),
+                    json.dumps(job.config.settings.to_dict(), sort_keys=True),
+                    recipe_hash,
+                    Status(result.status).value,
+                    result.error,
+                    time.time(),
+                    result.duration,
+                    result.epochs_run,
+                    result.best_epoch,
+                    attempts,
+                    json.dumps(result.env, sort_keys=True),
+                    json.dumps(diagnostics, sort_keys=True),
+                ),
+            )
+            c.executemany(
+                "INSERT INTO metrics VALUES (?,?,?,?)",
+                [(job.key, split, name, _num(v)) for split, vals in result.metrics.items() for name, v in vals.items()],
+            )
+            c.executemany(
+                "INSERT INTO curves VALUES (?,?,?,?)",
+                [(job.key, name, e + 1, _num(v)) for name, vals in result.curves.items() for e, v in enumerate(vals)],
+            )
             c.execute("COMMIT")
         except BaseException:
             c.execute("ROLLBACK")
@@ -145,16 +167,29 @@ class Store:
     def jobs(self, keys: Iterable[str] | None = None) -> list[StoredJob]:
         rows = self.conn.execute(
             "SELECT key, config_id, seed, levels, status, error, duration, epochs_run, best_epoch,"
-            " env, diagnostics, recipe_hash FROM jobs").fetchall()
+            " env, diagnostics, recipe_hash FROM jobs"
+        ).fetchall()
         wanted = set(keys) if keys is not None else None
         out = []
         for r in rows:
             if wanted is not None and r[0] not in wanted:
                 continue
-            out.append(StoredJob(key=r[0], config_id=r[1], seed=r[2], levels=json.loads(r[3]),
-                                 status=Status(r[4]), error=r[5], duration=r[6], epochs_run=r[7],
-                                 best_epoch=r[8], env=json.loads(r[9]), diagnostics=json.loads(r[10]),
-                                 recipe_hash=r[11]))
+            out.append(
+                StoredJob(
+                    key=r[0],
+                    config_id=r[1],
+                    seed=r[2],
+                    levels=json.loads(r[3]),
+                    status=Status(r[4]),
+                    error=r[5],
+                    duration=r[6],
+                    epochs_run=r[7],
+                    best_epoch=r[8],
+                    env=json.loads(r[9]),
+                    diagnostics=json.loads(r[10]),
+                    recipe_hash=r[11],
+                )
+            )
         return out
 
     def latest_recipe(self) -> tuple[str, str] | None:
@@ -186,16 +221,20 @@ class Store:
         out: dict = {}
         keys = list(keys)
         for i in range(0, len(keys), 500):
-            chunk = keys[i:i + 500]
-            q = ("SELECT job_key, name, epoch, value FROM curves WHERE job_key IN (%s) "
-                 "ORDER BY job_key, name, epoch" % ",".join("?" * len(chunk)))
+            chunk = keys[i : i + 500]
+            marks = ",".join("?" * len(chunk))
+            q = (
+                f"SELECT job_key, name, epoch, value FROM curves WHERE job_key IN ({marks}) "
+                "ORDER BY job_key, name, epoch"
+            )
             for key, name, _epoch, value in self.conn.execute(q, chunk):
                 out.setdefault(key, {}).setdefault(name, []).append(value)
         return out
 
     def mark_running(self, key: str) -> None:
-        self.conn.execute("INSERT OR REPLACE INTO running VALUES (?, ?, ?, ?)",
-                          (key, os.getpid(), socket.gethostname(), time.time()))
+        self.conn.execute(
+            "INSERT OR REPLACE INTO running VALUES (?, ?, ?, ?)", (key, os.getpid(), socket.gethostname(), time.time())
+        )
 
     def running_keys(self) -> set[str]:
         """Jobs marked running by a runner that still holds the store; stale marks are ignored."""
@@ -213,7 +252,7 @@ class Store:
         try:
             n = 0
             for i in range(0, len(keys), 500):
-                chunk = keys[i:i + 500]
+                chunk = keys[i : i + 500]
                 marks = ",".join("?" * len(chunk))
                 n += c.execute(f"DELETE FROM jobs WHERE key IN ({marks})", chunk).rowcount
                 c.execute(f"DELETE FROM running WHERE key IN ({marks})", chunk)
@@ -225,5 +264,3 @@ class Store:
 
     def integrity(self) -> str:
         return self.conn.execute("PRAGMA integrity_check").fetchone()[0]
-
-

@@ -1,4 +1,5 @@
 """One runner per store: the lock a ``recipe run`` holds while it trains into a store."""
+
 from __future__ import annotations
 
 import json
@@ -11,7 +12,7 @@ import time
 from runner.errors import StoreError
 from runner.store.database import Store
 
-__all__ = ["RunnerLock", "STALE_AFTER"]
+__all__ = ["STALE_AFTER", "RunnerLock"]
 
 STALE_AFTER = 60.0  # seconds without a heartbeat after which a runner's lock is abandoned
 
@@ -26,8 +27,9 @@ def _alive(pid: int) -> bool:
     return True
 
 
-_MINE = ("DELETE FROM meta WHERE key = 'runner' AND json_extract(value, '$.pid') = ?"
-         " AND json_extract(value, '$.host') = ?")
+_MINE = (
+    "DELETE FROM meta WHERE key = 'runner' AND json_extract(value, '$.pid') = ? AND json_extract(value, '$.host') = ?"
+)
 
 
 class RunnerLock:
@@ -66,10 +68,12 @@ class RunnerLock:
                     f"another 'recipe run' (pid {other['pid']} on {other['host']}) is using this store",
                     where=str(self.path),
                     hint="Wait for it to finish, or give this run its own --store; a killed run's lock "
-                         f"is recovered automatically (at once on the same host, else after {STALE_AFTER:g} s)")
+                    f"is recovered automatically (at once on the same host, else after {STALE_AFTER:g} s)",
+                )
             c.execute("DELETE FROM running")
-            c.execute("INSERT OR REPLACE INTO meta VALUES ('runner', ?)",
-                      (json.dumps({**self.me, "heartbeat": time.time()}),))
+            c.execute(
+                "INSERT OR REPLACE INTO meta VALUES ('runner', ?)", (json.dumps({**self.me, "heartbeat": time.time()}),)
+            )
             c.execute("COMMIT")
         except StoreError:
             raise
@@ -84,8 +88,10 @@ class RunnerLock:
         try:
             while not self._stop.wait(5.0):
                 with conn:
-                    conn.execute(_MINE.replace("DELETE FROM meta", "UPDATE meta SET value = ?"),
-                                 (json.dumps({**self.me, "heartbeat": time.time()}), *self._who()))
+                    conn.execute(
+                        _MINE.replace("DELETE FROM meta", "UPDATE meta SET value = ?"),
+                        (json.dumps({**self.me, "heartbeat": time.time()}), *self._who()),
+                    )
         finally:
             conn.close()
 

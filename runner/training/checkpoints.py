@@ -4,14 +4,16 @@ Saved with torch.save and read back with ``weights_only=True``, which only rebui
 and plain containers, so a checkpoint file cannot run code. Writes go to a temporary file
 and are renamed into place, so a kill mid-write leaves the previous checkpoint intact.
 """
+
 from __future__ import annotations
 
+import contextlib
 import os
 from pathlib import Path
 
 import torch
 
-__all__ = ["save", "load", "remove"]
+__all__ = ["load", "remove", "save"]
 
 
 def save(path: str, state: dict) -> None:
@@ -33,7 +35,5 @@ def load(path: str) -> dict | None:
 
 def remove(path: str | None) -> None:
     if path:
-        try:
+        with contextlib.suppress(FileNotFoundError):
             os.remove(path)
-        except FileNotFoundError:
-            pass

@@ -7,6 +7,7 @@ gradients. At the end: the fraction of dead ReLU units (never positive on the pr
 and of saturated sigmoid/tanh units. Flags are decided later from these numbers, with the
 thresholds of the recipe's [diagnostics] table.
 """
+
 from __future__ import annotations
 
 import torch
@@ -15,7 +16,7 @@ from torch import nn
 from runner.components.activations import ACTIVATIONS, SATURATING, make_activation
 from runner.training.models import layers_with_weights
 
-__all__ = ["at_init", "at_end", "init_stats", "end_stats", "PROBE_ROWS"]
+__all__ = ["PROBE_ROWS", "at_end", "at_init", "end_stats", "init_stats"]
 
 PROBE_ROWS = 512
 _ACT_TYPES = tuple({type(make_activation(name)) for name in ACTIVATIONS})
@@ -27,8 +28,9 @@ def _activation_modules(net: nn.Module) -> list[nn.Module]:
 
 def _capture(net: nn.Module, x: torch.Tensor, grad: bool, loss_fn=None, y=None):
     outputs = []
-    hooks = [m.register_forward_hook(lambda _m, _i, out: outputs.append(out.detach()))
-             for m in _activation_modules(net)]
+    hooks = [
+        m.register_forward_hook(lambda _m, _i, out: outputs.append(out.detach())) for m in _activation_modules(net)
+    ]
     was_training = net.training
     net.eval()
     try:
@@ -76,8 +78,14 @@ def init_stats(outputs: list[torch.Tensor], norms: list[list[float]]) -> list[di
                 ratio = member_norms[0] / member_norms[-1]
             elif not any(member_norms):
                 ratio = 0.0  # no gradient reaches any layer: vanishing at its most extreme
-        stats.append({"init_act_mean": [m[k] for m in means], "init_act_std": [s[k] for s in stds],
-                      "init_grad_norms": list(member_norms), "grad_ratio": ratio})
+        stats.append(
+            {
+                "init_act_mean": [m[k] for m in means],
+                "init_act_std": [s[k] for s in stds],
+                "init_grad_norms": list(member_norms),
+                "grad_ratio": ratio,
+            }
+        )
     return stats
 
 
@@ -101,7 +109,8 @@ def end_stats(outputs: list[torch.Tensor], activation: str, members: int) -> lis
     if bounds is not None:
         lo, hi = bounds
         margin = 0.01 * (hi - lo)  # within 1% of the output range of a bound
-        count = sum(((((o - lo) < margin) | ((hi - o) < margin)).float().mean(dim=1) >= 0.9).sum(dim=1)
-                    for o in outputs)  # saturated on >= 90% of rows
+        count = sum(
+            ((((o - lo) < margin) | ((hi - o) < margin)).float().mean(dim=1) >= 0.9).sum(dim=1) for o in outputs
+        )  # saturated on >= 90% of rows
         saturated = (count.double() / total).tolist()
     return [{"dead_fraction": d, "saturated_fraction": s} for d, s in zip(dead, saturated)]

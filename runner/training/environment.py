@@ -1,4 +1,5 @@
 """What a job records of where it ran: library versions, threads, CPU."""
+
 from __future__ import annotations
 
 import os
@@ -23,6 +24,12 @@ def environment() -> dict[str, Any]:
                     break
     except OSError:
         pass
-    return {"python": sys.version.split()[0], "torch": torch.__version__, "numpy": np.__version__,
-            "sklearn": sklearn.__version__, "threads": torch.get_num_threads(), "cpu": cpu,
-            "pid": os.getpid()}
+    return {
+        "python": sys.version.split()[0],
+        "torch": torch.__version__,
+        "numpy": np.__version__,
+        "sklearn": sklearn.__version__,
+        "threads": torch.get_num_threads(),
+        "cpu": cpu,
+        "pid": os.getpid(),
+    }

@@ -5,10 +5,11 @@ The stacked path (stacked.py) trains K jobs whose tensor shapes agree as one com
 ``GROUP_SIZE`` and by an estimate of the group's memory (``member_bytes``) against
 ``MEMORY_BUDGET`` per worker process.
 """
+
 from __future__ import annotations
 
 import math
-from typing import Sequence
+from collections.abc import Sequence
 
 import numpy as np
 
@@ -17,12 +18,20 @@ from runner.datasets.sources import Dataset
 from runner.recipe.grid import canonical
 from runner.training.job import JobSpec
 
-__all__ = ["Stacked", "stack_key", "group_specs", "training_note", "member_bytes", "GROUP_SIZE",
-           "MEMORY_BUDGET"]
+__all__ = [
+    "GROUP_SIZE",
+    "MEMORY_BUDGET",
+    "Stacked",
+    "group_specs",
+    "member_bytes",
+    "stack_key",
+    "training_note",
+]
 
 GROUP_SIZE = 16  # members per stacked group: enough to share the per-operation overhead,
 # few enough that a small grid still spreads over several workers
 MEMORY_BUDGET = 512 * 2**20  # bytes of tensors one stacked group may hold in a worker
+
 
 class Stacked(tuple):
     """A work item of job specs trained together on the stacked path (even a group of one)."""
@@ -33,12 +42,28 @@ class Stacked(tuple):
 def stack_key(spec: JobSpec) -> str | None:
     """Jobs with equal keys can share one stacked computation; None: this job runs alone."""
     m, t = spec.settings.model, spec.settings.train
-    if (m.kind != "mlp" or m.batch_norm or t.optimizer not in STACKED_OPTIMIZERS
-            or t.checkpoint_every or t.time_limit or spec.time_limit or spec.checkpoint):
+    if (
+        m.kind != "mlp"
+        or m.batch_norm
+        or t.optimizer not in STACKED_OPTIMIZERS
+        or t.checkpoint_every
+        or t.time_limit
+        or spec.time_limit
+        or spec.checkpoint
+    ):
         return None
-    return canonical({"data": spec.data_id, "split": spec.settings.data, "hidden": m.hidden,
-                      "act": m.activation, "slope": m.leaky_slope, "bs": t.batch_size,
-                      "epochs": t.epochs, "monitor": spec.monitor})
+    return canonical(
+        {
+            "data": spec.data_id,
+            "split": spec.settings.data,
+            "hidden": m.hidden,
+            "act": m.activation,
+            "slope": m.leaky_slope,
+            "bs": t.batch_size,
+            "epochs": t.epochs,
+            "monitor": spec.monitor,
+        }
+    )
 
 
 def member_bytes(spec: JobSpec, ds: Dataset) -> int:
@@ -53,8 +78,9 @@ def member_bytes(spec: JobSpec, ds: Dataset) -> int:
     return 4 * (6 * params + len(ds.y) * features + 4 * batch * sum(widths))
 
 
-def group_specs(specs: Sequence[JobSpec], datasets: dict[str, Dataset],
-                enabled: bool = True) -> list[tuple[JobSpec, ...]]:
+def group_specs(
+    specs: Sequence[JobSpec], datasets: dict[str, Dataset], enabled: bool = True
+) -> list[tuple[JobSpec, ...]]:
     """Work items over the grid's jobs in grid order: stackable jobs in groups of up to
     GROUP_SIZE (fewer when the memory estimate says so), others alone.
 
@@ -86,8 +112,9 @@ def training_note(items: Sequence[tuple[JobSpec, ...]]) -> str:
     parts = []
     if sizes:
         span = str(sizes[0]) if sizes[0] == sizes[-1] else f"{sizes[0]}-{sizes[-1]}"
-        parts.append(f"{len(sizes)} stacked group{'s' if len(sizes) > 1 else ''} of {span} "
-                     f"job{'s' if sizes[-1] > 1 else ''}")
+        parts.append(
+            f"{len(sizes)} stacked group{'s' if len(sizes) > 1 else ''} of {span} job{'s' if sizes[-1] > 1 else ''}"
+        )
     if alone:
         parts.append(f"{alone} job{'s' if alone > 1 else ''} one at a time")
     return "training " + ", ".join(parts)

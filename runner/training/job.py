@@ -3,6 +3,7 @@
 and the leaderboard can be used without importing it; the executors send these to workers
 and back.
 """
+
 from __future__ import annotations
 
 from dataclasses import dataclass, field
@@ -12,12 +13,13 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:
     from runner.recipe.settings import Settings
 
-__all__ = ["JobSpec", "JobResult", "Status", "FINISHED"]
+__all__ = ["FINISHED", "JobResult", "JobSpec", "Status"]
 
 
 class Status(str, Enum):
     """How a job ended. Every finished job is stored with one of these; a job with no
     stored result is pending."""
+
     DONE = "done"
     DIVERGED = "diverged"
     FAILED = "failed"
@@ -34,11 +36,11 @@ FINISHED = tuple(Status)
 class JobSpec:
     key: str
     seed: int
-    settings: Settings      # fully resolved
-    monitor: str            # the rank metric, watched by early stopping
-    data_id: str            # the dataset's fingerprint
-    checkpoint: str | None = None     # file for mid-job checkpoints (train.checkpoint_every)
-    time_limit: float | None = None   # overrides train.time_limit when set (--time-limit)
+    settings: Settings  # fully resolved
+    monitor: str  # the rank metric, watched by early stopping
+    data_id: str  # the dataset's fingerprint
+    checkpoint: str | None = None  # file for mid-job checkpoints (train.checkpoint_every)
+    time_limit: float | None = None  # overrides train.time_limit when set (--time-limit)
 
 
 @dataclass
@@ -47,7 +49,7 @@ class JobResult:
     status: Status
     error: str | None = None
     metrics: dict[str, dict[str, float]] = field(default_factory=dict)  # split -> {metric: value}
-    curves: dict[str, list[float]] = field(default_factory=dict)        # name -> [value per epoch]
+    curves: dict[str, list[float]] = field(default_factory=dict)  # name -> [value per epoch]
     diagnostics: dict[str, Any] = field(default_factory=dict)
     epochs_run: int = 0
     best_epoch: int | None = None

@@ -14,12 +14,14 @@ fails on the stacked path is retrained one job at a time, and each of its result
 note saying so, which the run prints as a warning: a bug in the fast path shows, it does not
 hide as a slower run.
 """
+
 from __future__ import annotations
 
 import math
 import time
+from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Any, Protocol, Sequence
+from typing import Any, Protocol
 
 from runner.components.lr_schedules import lr_at
 from runner.components.metrics import METRICS, Goal
@@ -29,11 +31,12 @@ from runner.training import checkpoints
 from runner.training.environment import environment
 from runner.training.job import JobResult, JobSpec, Status
 
-__all__ = ["Backend", "new_members", "train_members", "train_job", "train_group", "train_item"]
+__all__ = ["Backend", "new_members", "train_group", "train_item", "train_job", "train_members"]
 
 
 class Backend(Protocol):
     """What the loop needs from a way of computing K members' training steps."""
+
     members: int
     steps_per_epoch: int
 
@@ -74,6 +77,7 @@ class Backend(Protocol):
 @dataclass
 class _Member:
     """The loop's bookkeeping for one member."""
+
     spec: JobSpec
     result: JobResult
     curves: dict[str, list[float]]
@@ -99,14 +103,20 @@ def new_members(specs: Sequence[JobSpec], env: dict[str, Any]) -> list[_Member]:
     for spec in specs:
         monitor = spec.monitor
         limit = spec.time_limit if spec.time_limit is not None else spec.settings.train.time_limit
-        out.append(_Member(spec=spec, result=JobResult(key=spec.key, status=Status.DONE, env=env),
-                           curves={"train_loss": [], "val_loss": [], f"val_{monitor}": [], "lr": []},
-                           time_limit=limit))
+        out.append(
+            _Member(
+                spec=spec,
+                result=JobResult(key=spec.key, status=Status.DONE, env=env),
+                curves={"train_loss": [], "val_loss": [], f"val_{monitor}": [], "lr": []},
+                time_limit=limit,
+            )
+        )
     return out
 
 
-def train_members(backend: Backend, members: list[_Member], start: float,
-                  checkpoint: str | None = None) -> list[JobResult]:
+def train_members(
+    backend: Backend, members: list[_Member], start: float, checkpoint: str | None = None
+) -> list[JobResult]:
     """Train the backend's members through every epoch; one JobResult per member. If it
     raises, ``members`` keep what was recorded so far. ``checkpoint``: a single job's
     checkpoint file (train.checkpoint_every)."""
@@ -226,10 +236,21 @@ def _finish(backend: Backend, members: list[_Member]) -> None:
 
 
 def _save(backend: Backend, m: _Member, path: str, step: int, epoch: int) -> None:
-    checkpoints.save(path, {
-        **backend.checkpoint_state(), "curves": m.curves, "diagnostics": m.result.diagnostics,
-        "best_value": m.best_value, "best_epoch": m.best_epoch, "best_state": m.best_state,
-        "since_best": m.since_best, "first_loss": m.first_loss, "step": step, "epoch": epoch + 1})
+    checkpoints.save(
+        path,
+        {
+            **backend.checkpoint_state(),
+            "curves": m.curves,
+            "diagnostics": m.result.diagnostics,
+            "best_value": m.best_value,
+            "best_epoch": m.best_epoch,
+            "best_state": m.best_state,
+            "since_best": m.since_best,
+            "first_loss": m.first_loss,
+            "step": step,
+            "epoch": epoch + 1,
+        },
+    )
 
 
 def _resume(backend: Backend, m: _Member, saved: dict[str, Any]) -> tuple[int, int]:
@@ -274,8 +295,10 @@ def train_group(specs: Sequence[JobSpec], ds: Dataset) -> list[JobResult]:
         backend = StackedBackend(specs, ds)
         return train_members(backend, new_members(specs, environment()), start)
     except Exception as exc:
-        note = (f"the stacked path failed for its group of {len(specs)} ({type(exc).__name__}: {exc}); "
-                "trained on its own instead")
+        note = (
+            f"the stacked path failed for its group of {len(specs)} ({type(exc).__name__}: {exc}); "
+            "trained on its own instead"
+        )
         results = [train_job(s, ds) for s in specs]
         for r in results:
             r.notes.append(note)

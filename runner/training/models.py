@@ -1,7 +1,9 @@
 """Models: an MLP and a small CNN, built with every random draw from a given generator."""
+
 from __future__ import annotations
 
-from typing import Any, Mapping
+from collections.abc import Mapping
+from typing import Any
 
 import torch
 from torch import nn
@@ -9,7 +11,7 @@ from torch import nn
 from runner.components.activations import gain, make_activation
 from runner.components.initializers import initialize
 
-__all__ = ["Dropout", "build_model", "weight_tensors", "layers_with_weights"]
+__all__ = ["Dropout", "build_model", "layers_with_weights", "weight_tensors"]
 
 
 class Dropout(nn.Module):
@@ -31,8 +33,13 @@ class Dropout(nn.Module):
         return f"p={self.p}"
 
 
-def build_model(model: Mapping[str, Any], in_shape: tuple[int, ...], n_out: int,
-                init_gen: torch.Generator, dropout_gen: torch.Generator) -> nn.Sequential:
+def build_model(
+    model: Mapping[str, Any],
+    in_shape: tuple[int, ...],
+    n_out: int,
+    init_gen: torch.Generator,
+    dropout_gen: torch.Generator,
+) -> nn.Sequential:
     act = model.activation
     slope = model.leaky_slope
     layers: list[nn.Module] = []

@@ -2,6 +2,7 @@
 (``score_outputs``, the single path) and K members' logits at once (``score_members``, the
 stacked path). Both compute the metrics through components/metrics.py; a member whose
 outputs are not all finite gets NaN for everything."""
+
 from __future__ import annotations
 
 from typing import Any
@@ -13,7 +14,7 @@ import torch.nn.functional as F
 from runner.components.metrics import Task, evaluate, for_task, quick
 from runner.datasets.sources import Dataset
 
-__all__ = ["score_outputs", "score_members"]
+__all__ = ["score_members", "score_outputs"]
 
 
 @torch.no_grad()
@@ -26,8 +27,11 @@ def score_outputs(out: torch.Tensor, y: np.ndarray, ds: Dataset, sp: Any, only: 
     if ds.task is Task.CLASSIFICATION:
         loss = float(F.cross_entropy(out, torch.from_numpy(y.astype(np.int64))))
         probs = torch.softmax(out.double(), dim=1).numpy()
-        metrics = ({only: quick(only, y, probs, len(ds.classes))} if only
-                   else evaluate(Task.CLASSIFICATION, y, probs, len(ds.classes)))
+        metrics = (
+            {only: quick(only, y, probs, len(ds.classes))}
+            if only
+            else evaluate(Task.CLASSIFICATION, y, probs, len(ds.classes))
+        )
     else:
         pred = out.squeeze(1).double().numpy() * sp.y_std + sp.y_mean
         loss = float(np.mean(((y - sp.y_mean) / sp.y_std - out.squeeze(1).double().numpy()) ** 2))
@@ -40,8 +44,9 @@ def _nan(names: list[str]) -> dict[str, float]:
     return {**{m: float("nan") for m in names}, "loss": float("nan")}
 
 
-def score_members(logits: torch.Tensor, ys: list[np.ndarray], ds: Dataset, splits: list[Any],
-                  only: str | None = None) -> list[dict[str, float]]:
+def score_members(
+    logits: torch.Tensor, ys: list[np.ndarray], ds: Dataset, splits: list[Any], only: str | None = None
+) -> list[dict[str, float]]:
     """``score_outputs`` for every member at once, from logits (K, outputs, rows)."""
     finite = torch.isfinite(logits).flatten(1).all(dim=1).tolist()
     names = [only] if only else for_task(ds.task)

@@ -6,6 +6,7 @@ Every random draw comes from generators seeded by the job's seed (streams.py): t
 their own stream. With torch's deterministic algorithms and a fixed thread count, the same
 job gives bitwise-identical numbers on the same machine.
 """
+
 from __future__ import annotations
 
 import math
@@ -70,7 +71,7 @@ class SingleBackend:
         self.order = torch.randperm(self.n, generator=self.shuffle_gen)
 
     def losses(self, step: int) -> tuple[list[float], int]:
-        idx = self.order[step * self.batch:(step + 1) * self.batch]
+        idx = self.order[step * self.batch : (step + 1) * self.batch]
         self.opt.zero_grad(set_to_none=True)
         self.loss = self._loss_fn(self.net(self.Xtr[idx]), self.ytr[idx])
         return [self.loss.item()], len(idx)
@@ -109,11 +110,15 @@ class SingleBackend:
         overfitting gap)."""
         out = {}
         sp = self.sp
-        for split, X, y in (("train", sp.X_train, sp.y_train), ("val", sp.X_val, sp.y_val),
-                            ("test", sp.X_test, sp.y_test)):
+        for split, X, y in (
+            ("train", sp.X_train, sp.y_train),
+            ("val", sp.X_val, sp.y_val),
+            ("test", sp.X_test, sp.y_test),
+        ):
             if X is not None:
-                metrics = self._evaluate(torch.from_numpy(np.ascontiguousarray(X)), y,
-                                         only=self.spec.monitor if split == "train" else None)
+                metrics = self._evaluate(
+                    torch.from_numpy(np.ascontiguousarray(X)), y, only=self.spec.monitor if split == "train" else None
+                )
                 metrics.pop("loss")
                 out[split] = metrics
         return [out]
@@ -123,8 +128,12 @@ class SingleBackend:
         return [{**ends, **regularizers.sparsity(self.weights, self.train_s.sparsity_tol)}]
 
     def checkpoint_state(self) -> dict[str, Any]:
-        return {"model": self.net.state_dict(), "optimizer": self.opt.state_dict(),
-                "shuffle_rng": self.shuffle_gen.get_state(), "dropout_rng": self.drop_gen.get_state()}
+        return {
+            "model": self.net.state_dict(),
+            "optimizer": self.opt.state_dict(),
+            "shuffle_rng": self.shuffle_gen.get_state(),
+            "dropout_rng": self.drop_gen.get_state(),
+        }
 
     def load_checkpoint_state(self, saved: dict[str, Any]) -> None:
         self.net.load_state_dict(saved["model"])

@@ -15,6 +15,7 @@ steps without disturbing the others. Results agree with the single-job path to
 floating-point summation order, not bit for bit (DEVELOPERS.md gives the measured
 tolerance); each path on its own is bitwise reproducible.
 """
+
 from __future__ import annotations
 
 from collections import OrderedDict
@@ -93,8 +94,9 @@ class _Dropout:
         if not self.used:
             return None
         if rows not in self._buffers:
-            self._buffers[rows] = [torch.ones(len(self.gens), rows, w) if any(r) else None
-                                   for r, w in zip(self.rates, self.widths)]
+            self._buffers[rows] = [
+                torch.ones(len(self.gens), rows, w) if any(r) else None for r, w in zip(self.rates, self.widths)
+            ]
         out = self._buffers[rows]
         for rates, mask in zip(self.rates, out):
             for k, (p, g) in enumerate(zip(rates, self.gens)):
@@ -128,8 +130,9 @@ class StackedBackend:
         if self.classify:
             self.ytr = torch.stack([torch.from_numpy(sp.y_train.astype(np.int64)) for sp in splits])
         else:
-            self.ytr = torch.stack([torch.from_numpy(((sp.y_train - sp.y_mean) / sp.y_std).astype(np.float32))
-                                    for sp in splits])
+            self.ytr = torch.stack(
+                [torch.from_numpy(((sp.y_train - sp.y_mean) / sp.y_std).astype(np.float32)) for sp in splits]
+            )
         self.loss_grad = cross_entropy_grad if self.classify else mse_grad
         self.n, features = n, _ = self.Xtr.shape[1], self.Xtr.shape[2]
         self.gens = gens = [streams(s.seed) for s in specs]
@@ -141,8 +144,13 @@ class StackedBackend:
         act_gain = gain(model_s.activation, model_s.leaky_slope)
         for i, w in enumerate(net.weights):
             for k, s in enumerate(specs):
-                initialize(s.settings.model.init, w[k], 1.0 if i == len(net.weights) - 1 else act_gain,
-                           s.settings.model.init_scale, gens[k][0])
+                initialize(
+                    s.settings.model.init,
+                    w[k],
+                    1.0 if i == len(net.weights) - 1 else act_gain,
+                    s.settings.model.init_scale,
+                    gens[k][0],
+                )
         self.probe = min(diagnostics.PROBE_ROWS, n)
         hyper = {h: _hyper(specs, h) for h in ("momentum", "beta1", "beta2", "eps", "weight_decay")}
         self.opt = StackedOptimizer([t.optimizer for t in T], [net.flat], [net.gflat], [net.is_weight], hyper)
@@ -177,7 +185,7 @@ class StackedBackend:
 
     def losses(self, step: int) -> tuple[list[float], int]:
         bs = self.batch
-        xb, yb = self.X_epoch[:, step * bs:(step + 1) * bs], self.y_epoch[:, step * bs:(step + 1) * bs]
+        xb, yb = self.X_epoch[:, step * bs : (step + 1) * bs], self.y_epoch[:, step * bs : (step + 1) * bs]
         m = xb.shape[1]  # this mini-batch's rows per member
         logits = self.net.forward(xb, self.dropout.masks(m), keep=True)
         values, self._dout = self.loss_grad(logits, yb)
@@ -201,8 +209,9 @@ class StackedBackend:
 
     def validate(self) -> list[dict[str, float]]:
         splits = self.splits
-        return score_members(self.net.logits(self.Xva), [sp.y_val for sp in splits], self.ds, splits,
-                             only=self.specs[0].monitor)
+        return score_members(
+            self.net.logits(self.Xva), [sp.y_val for sp in splits], self.ds, splits, only=self.specs[0].monitor
+        )
 
     def snapshot(self, k: int) -> torch.Tensor:
         return self.net.member(k)
@@ -217,18 +226,25 @@ class StackedBackend:
             if getattr(splits[0], f"X_{split}") is None:
                 continue
             logits = self.net.logits(_stacked_inputs([getattr(sp, f"X_{split}") for sp in splits]))
-            scores = score_members(logits, [getattr(sp, f"y_{split}") for sp in splits], self.ds, splits,
-                                   only=monitor if split == "train" else None)
+            scores = score_members(
+                logits,
+                [getattr(sp, f"y_{split}") for sp in splits],
+                self.ds,
+                splits,
+                only=monitor if split == "train" else None,
+            )
             for k, per_member in enumerate(scores):
                 out[k][split] = {m: v for m, v in per_member.items() if m != "loss"}
         return out
 
     def end_diagnostics(self) -> list[dict[str, Any]]:
         net, K = self.net, self.members
-        net.forward(self.Xtr[:, :self.probe])
+        net.forward(self.Xtr[:, : self.probe])
         ends = diagnostics.end_stats(net.hidden, self.specs[0].settings.model.activation, K)
-        return [{**ends[k], **regularizers.sparsity([w[k] for w in net.weights], t.sparsity_tol), "stacked": K}
-                for k, t in enumerate(self.trains)]
+        return [
+            {**ends[k], **regularizers.sparsity([w[k] for w in net.weights], t.sparsity_tol), "stacked": K}
+            for k, t in enumerate(self.trains)
+        ]
 
     def checkpoint_state(self) -> dict[str, Any]:
         raise NotImplementedError("stacked groups take no mid-job checkpoints (grouping.stack_key)")

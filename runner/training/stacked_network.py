@@ -18,6 +18,7 @@ to step (``_Workspace``) rather than fresh tensors, as few as the chain rule all
 these sizes the products run at half their in-cache rate once the step's working set
 spills out of the core's cache.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -42,23 +43,41 @@ def _activation(name: str, slope: float):
     """(forward(z, out), backward(grad, z, a, out), in_place) with autograd's own derivative
     kernels; ``in_place``: the backward needs only the output, so it may overwrite z."""
     if name == "relu":
-        return (lambda z, out: torch.relu_(z)), \
-            (lambda g, z, a, out: _aten.threshold_backward.grad_input(g, a, 0, grad_input=out)), True
+        return (
+            (lambda z, out: torch.relu_(z)),
+            (lambda g, z, a, out: _aten.threshold_backward.grad_input(g, a, 0, grad_input=out)),
+            True,
+        )
     if name == "tanh":
-        return (lambda z, out: torch.tanh_(z)), \
-            (lambda g, z, a, out: _aten.tanh_backward.grad_input(g, a, grad_input=out)), True
+        return (
+            (lambda z, out: torch.tanh_(z)),
+            (lambda g, z, a, out: _aten.tanh_backward.grad_input(g, a, grad_input=out)),
+            True,
+        )
     if name == "sigmoid":
-        return (lambda z, out: torch.sigmoid_(z)), \
-            (lambda g, z, a, out: _aten.sigmoid_backward.grad_input(g, a, grad_input=out)), True
+        return (
+            (lambda z, out: torch.sigmoid_(z)),
+            (lambda g, z, a, out: _aten.sigmoid_backward.grad_input(g, a, grad_input=out)),
+            True,
+        )
     if name == "leaky_relu":
-        return (lambda z, out: _aten.leaky_relu.out(z, slope, out=out)), \
-            (lambda g, z, a, out: _aten.leaky_relu_backward.grad_input(g, z, slope, False, grad_input=out)), False
+        return (
+            (lambda z, out: _aten.leaky_relu.out(z, slope, out=out)),
+            (lambda g, z, a, out: _aten.leaky_relu_backward.grad_input(g, z, slope, False, grad_input=out)),
+            False,
+        )
     if name == "elu":
-        return (lambda z, out: _aten.elu.out(z, 1.0, 1, 1, out=out)), \
-            (lambda g, z, a, out: _aten.elu_backward.grad_input(g, 1.0, 1, 1, False, z, grad_input=out)), False
+        return (
+            (lambda z, out: _aten.elu.out(z, 1.0, 1, 1, out=out)),
+            (lambda g, z, a, out: _aten.elu_backward.grad_input(g, 1.0, 1, 1, False, z, grad_input=out)),
+            False,
+        )
     if name == "gelu":
-        return (lambda z, out: _aten.gelu.out(z, approximate="none", out=out)), \
-            (lambda g, z, a, out: _aten.gelu_backward.grad_input(g, z, approximate="none", grad_input=out)), False
+        return (
+            (lambda z, out: _aten.gelu.out(z, approximate="none", out=out)),
+            (lambda g, z, a, out: _aten.gelu_backward.grad_input(g, z, approximate="none", grad_input=out)),
+            False,
+        )
     raise ValueError(f"no stacked activation {name}")
 
 
@@ -68,7 +87,7 @@ class _Workspace:
     mode, in filling them) than their arithmetic. Backward's buffers come on first need."""
 
     def __init__(self, K: int, rows: int, widths: list[int], in_place: bool, dtype):
-        self.new = lambda w: torch.empty(K, rows, w, dtype=dtype)  # noqa: E731
+        self.new = lambda w: torch.empty(K, rows, w, dtype=dtype)
         self.widths = widths
         hidden = widths[1:-1]
         self.z = [self.new(w) for w in hidden]
@@ -89,15 +108,18 @@ class _Workspace:
         if name not in ("dropped", "dh"):
             raise AttributeError(name)
         if self._train is None:
-            self._train = {"dropped": [self.new(w) for w in self.widths[:-1]],  # after dropout
-                           # gradients at each hidden layer's output, then (in place) its input
-                           "dh": [self.new(w) for w in self.widths[1:-1]]}
+            self._train = {
+                "dropped": [self.new(w) for w in self.widths[:-1]],  # after dropout
+                # gradients at each hidden layer's output, then (in place) its input
+                "dh": [self.new(w) for w in self.widths[1:-1]],
+            }
         return self._train[name]
 
 
 class StackedMLP:
-    def __init__(self, members: int, widths: list[int], activation: str, slope: float = 0.01,
-                 dtype: torch.dtype = torch.float32):
+    def __init__(
+        self, members: int, widths: list[int], activation: str, slope: float = 0.01, dtype: torch.dtype = torch.float32
+    ):
         self.K = members
         self.widths = list(widths)
         self.dtype = dtype
@@ -110,12 +132,12 @@ class StackedMLP:
         self.weights, self.biases, self.gw, self.gb = [], [], [], []
         offset = 0
         for o, i in shapes:
-            self.weights.append(self.flat[:, offset:offset + o * i].view(members, o, i))
-            self.gw.append(self.gflat[:, offset:offset + o * i].view(members, o, i))
-            self.is_weight[offset:offset + o * i] = 1.0
+            self.weights.append(self.flat[:, offset : offset + o * i].view(members, o, i))
+            self.gw.append(self.gflat[:, offset : offset + o * i].view(members, o, i))
+            self.is_weight[offset : offset + o * i] = 1.0
             offset += o * i
-            self.biases.append(self.flat[:, offset:offset + o])
-            self.gb.append(self.gflat[:, offset:offset + o])
+            self.biases.append(self.flat[:, offset : offset + o])
+            self.gb.append(self.gflat[:, offset : offset + o])
             offset += o
         self._w_np = [w.numpy() for w in self.weights]
         self._wT = [w.transpose(1, 2) for w in self.weights]  # views made once, not each step
@@ -148,7 +170,7 @@ class StackedMLP:
         through the reused buffers."""
         out = torch.zeros(x.shape[0], self.widths[-1], x.shape[1], dtype=self.dtype)
         for start in range(0, x.shape[1], chunk):
-            out[:, :, start:start + chunk] = self.forward(x[:, start:start + chunk])
+            out[:, :, start : start + chunk] = self.forward(x[:, start : start + chunk])
         return out
 
     def forward(self, x: torch.Tensor, masks: list | None = None, keep: bool = False) -> torch.Tensor:

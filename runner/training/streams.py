@@ -1,5 +1,6 @@
 """A job's random streams: every draw of its training comes from generators built from its
 seed, one per purpose, so that adding a draw of one kind never shifts the others."""
+
 from __future__ import annotations
 
 from typing import TYPE_CHECKING
