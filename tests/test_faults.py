@@ -90,7 +90,7 @@ def test_ctrl_c_during_start_up_prints_no_traceback(tmp_path):
     # any program prints a traceback on Ctrl-C): about when the server is spawned, while it
     # imports, and while the runner imports torch
     begin = time.monotonic()
-    subprocess.run([PYTHON, "-c", "import runner.cli.commands"], env=subprocess_env(), check=True)
+    subprocess.run([PYTHON, "-c", "import runner.cli.app"], env=subprocess_env(), check=True)
     ready = time.monotonic() - begin
     for delay in (ready + 0.05, ready + 0.3, ready + 1.0):
         proc = start([path, "--store", tmp_path / f"s{delay}.sqlite", "--workers", 2])

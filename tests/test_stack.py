@@ -8,7 +8,7 @@ import pytest
 import torch
 from conftest import invoke, write_recipe
 
-from runner.components.stacked_optim import STACKED_OPTIMIZERS, StackedOptimizer
+from runner.components.optimizers import STACKED_OPTIMIZERS, StackedOptimizer
 from runner.execution.executors import prepare_process
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe

@@ -26,7 +26,7 @@ def _cli_alone(args: list[str]) -> tuple[list[str], str]:
     """Run one CLI command in a fresh interpreter: (its exit code, the worker fork server's
     pid or None, whether torch got imported), and its stderr."""
     code = (
-        f"import sys\nfrom runner.cli.commands import cli\nimport multiprocessing.forkserver as f\n"
+        f"import sys\nfrom runner.cli.app import cli\nimport multiprocessing.forkserver as f\n"
         f"try:\n    cli({args!r})\nexcept SystemExit as e:\n"
         f"    print(e.code, f._forkserver._forkserver_pid, 'torch' in sys.modules)"
     )
@@ -36,7 +36,7 @@ def _cli_alone(args: list[str]) -> tuple[list[str], str]:
 
 def test_cli_and_package_import_without_torch():
     # `recipe --help`, completion and a malformed recipe's error must not wait for torch
-    loaded = _modules_after("import runner.cli.commands, runner.execution.forkserver")
+    loaded = _modules_after("import runner.cli.app, runner.execution.forkserver")
     assert "torch" not in loaded and "scipy" not in loaded and "sklearn" not in loaded
     loaded = _modules_after("import runner\nrunner.Store")  # names still there, on first use
     assert "runner.store.database" in loaded

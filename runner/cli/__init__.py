@@ -11,7 +11,7 @@ __all__ = ["main"]
 
 def main() -> None:
     try:
-        from runner.cli.commands import main as cli_main
+        from runner.cli.app import main as cli_main
     except KeyboardInterrupt:
         sys.stderr.write("\nInterrupted before anything ran.\n")
         sys.exit(130)

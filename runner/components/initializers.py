@@ -14,7 +14,9 @@ from typing import TYPE_CHECKING
 if TYPE_CHECKING:  # annotations only; torch is imported where it is used
     import torch
 
-__all__ = ["INITIALIZERS", "USES_GAIN", "fans", "initialize"]
+from runner.recipe.constraints import Examples
+
+__all__ = ["EXAMPLES", "INITIALIZERS", "USES_GAIN", "fans", "initialize"]
 
 
 def fans(weight: torch.Tensor) -> tuple[int, int]:
@@ -83,6 +85,25 @@ INITIALIZERS = {
     "orthogonal": _orthogonal,
     "uniform": _uniform,
     "zeros": _zeros,
+}
+
+# Worked examples, walked by tests/test_components.py.
+EXAMPLES = {
+    "glorot_normal": Examples(valid=({"model": {"init": "glorot_normal"}},)),
+    "glorot_uniform": Examples(valid=({"model": {"init": "glorot_uniform"}},)),
+    "he_normal": Examples(valid=({"model": {"init": "he_normal", "activation": "relu"}},)),
+    "he_uniform": Examples(valid=({"model": {"init": "he_uniform", "activation": "leaky_relu"}},)),
+    "lecun_normal": Examples(valid=({"model": {"init": "lecun_normal", "activation": "tanh"}},)),
+    "normal": Examples(
+        valid=({"model": {"init": "normal", "init_scale": 0.05}},),
+        invalid=(({"model": {"init": "normal", "init_scale": 0.0}}, "must be > 0"),),
+    ),
+    "orthogonal": Examples(valid=({"model": {"init": "orthogonal"}},)),
+    "uniform": Examples(valid=({"model": {"init": "uniform", "init_scale": 0.1}},)),
+    "zeros": Examples(
+        valid=({"model": {"init": "zeros"}},),
+        invalid=(({"model": {"init": "zero"}}, 'Did you mean "zeros"?'),),
+    ),
 }
 
 # Methods whose published form scales by the activation's gain; the others ignore it.

@@ -8,9 +8,9 @@ from __future__ import annotations
 import math
 
 from runner.errors import RecipeError
-from runner.recipe.constraints import Choice, Integer, Param, Real
+from runner.recipe.constraints import Choice, Examples, Integer, Param, Real
 
-__all__ = ["PARAMS", "SCHEDULES", "check_schedule", "lr_at"]
+__all__ = ["EXAMPLES", "PARAMS", "SCHEDULES", "check_schedule", "lr_at"]
 
 SCHEDULES = ("constant", "cosine", "step", "warmup_cosine")
 
@@ -19,6 +19,22 @@ PARAMS = {
     "step_every": Param(Integer(1), 10, "step schedule: epochs between decays"),
     "step_gamma": Param(Real(0, 1, low_open=True), 0.1, "step schedule: factor applied at each decay"),
     "warmup_epochs": Param(Integer(0), 0, "warmup_cosine: epochs of linear warm-up from 0"),
+}
+
+# Worked examples, walked by tests/test_components.py.
+EXAMPLES = {
+    "constant": Examples(valid=({"train": {"schedule": "constant"}},)),
+    "cosine": Examples(valid=({"train": {"schedule": "cosine", "lr": 0.01}},)),
+    "step": Examples(
+        valid=({"train": {"schedule": "step", "step_every": 1, "step_gamma": 0.5}},),
+        invalid=(({"train": {"schedule": "step", "step_gamma": 0.0}}, "must be > 0"),),
+    ),
+    "warmup_cosine": Examples(
+        valid=({"train": {"schedule": "warmup_cosine", "warmup_epochs": 1, "epochs": 2}},),
+        invalid=(
+            ({"train": {"schedule": "warmup_cosine", "warmup_epochs": 2, "epochs": 2}}, "warm-up must end before"),
+        ),
+    ),
 }
 
 
@@ -45,5 +61,5 @@ def check_schedule(train: dict) -> None:
             "warm-up must end before training does",
             key="train.warmup_epochs",
             value=train.warmup_epochs,
-            allowed=f"a whole number below train.epochs ({train['epochs']})",
+            allowed=f"a whole number below train.epochs ({train.epochs})",
         )

@@ -13,7 +13,9 @@ from typing import NamedTuple
 
 import numpy as np
 
-__all__ = ["METRICS", "Goal", "MetricInfo", "Task", "evaluate", "for_task", "goal", "quick"]
+from runner.recipe.constraints import Examples
+
+__all__ = ["EXAMPLES", "METRICS", "Goal", "MetricInfo", "Task", "evaluate", "for_task", "goal", "quick"]
 
 
 class Task(str, Enum):
@@ -54,6 +56,25 @@ METRICS = {
     "mae": MetricInfo(Task.REGRESSION, Goal.MIN),
     "r2": MetricInfo(Task.REGRESSION, Goal.MAX),
     "rmse": MetricInfo(Task.REGRESSION, Goal.MIN),
+}
+
+# Worked examples, walked by tests/test_components.py.
+EXAMPLES = {
+    "accuracy": Examples(
+        valid=({"rank_by": "val.accuracy"},),
+        invalid=(({"rank_by": "test.accuracy"}, "ranking on the test split is refused"),),
+    ),
+    "f1_macro": Examples(valid=({"rank_by": "val.f1_macro"},)),
+    "log_loss": Examples(
+        valid=({"rank_by": "val.log_loss"},),
+        invalid=(({"rank_by": "val.rmse"}, "rmse is not a classification metric"),),
+    ),
+    "mae": Examples(valid=({"rank_by": "val.mae", "data": {"source": "diabetes"}},)),
+    "r2": Examples(valid=({"rank_by": "val.r2", "data": {"source": "diabetes"}},)),
+    "rmse": Examples(
+        valid=({"rank_by": "val.rmse", "data": {"source": "diabetes"}},),
+        invalid=(({"rank_by": "val.rsme", "data": {"source": "diabetes"}}, 'Did you mean "val.rmse"?'),),
+    ),
 }
 
 

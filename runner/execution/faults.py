@@ -1,6 +1,7 @@
 """Fault injection for the robustness tests: make a worker die the way real ones do.
 
-Set ``RECIPE_FAULT="MODE@EPOCH"`` (MODE: exit, segv, kill, hang) and optionally
+Set ``RECIPE_FAULT="MODE@EPOCH"`` (MODE: exit, segv, kill, hang; or stacked, an exception
+raised in the stacked backend only, to test its visible fall-back) and optionally
 ``RECIPE_FAULT_ONCE=/path/marker``: then the fault fires only while the marker file does not
 exist, and creates it, so the retry succeeds. Unset in normal use; costs one lookup per job.
 """
@@ -21,8 +22,8 @@ class Fault:
     epoch: int
     once: str | None
 
-    def maybe_fire(self, epoch: int) -> None:
-        if epoch != self.epoch:
+    def maybe_fire(self, epoch: int, stacked: bool = False) -> None:
+        if epoch != self.epoch or (self.mode == "stacked" and not stacked):
             return
         if self.once:
             try:
@@ -30,6 +31,8 @@ class Fault:
                 os.close(fd)
             except FileExistsError:
                 return
+        if self.mode == "stacked":
+            raise RuntimeError("fault injected into the stacked path")
         if self.mode == "exit":
             os._exit(3)
         if self.mode == "segv":

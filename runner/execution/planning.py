@@ -75,7 +75,7 @@ def execute(
     stack: bool = True,
 ) -> None:
     """Run ``todo``; each result is committed to the store as soon as it arrives. With
-    ``stack``, same-shaped jobs train together as one stacked computation (stack.py)."""
+    ``stack``, same-shaped jobs train together as one stacked computation (training/stacked.py)."""
     from runner.training import checkpoints as checkpoint
     from runner.training.grouping import group_specs, training_note
 
@@ -97,6 +97,8 @@ def execute(
         store.write_result(job, labels, grid.recipe.hash, result, attempts)
         checkpoint.remove(spec.checkpoint)  # the result is safe: its checkpoint is not needed
         if progress is not None:
+            for note in result.notes:
+                progress.warn(note)
             value = result.metrics.get(split, {}).get(metric)
             label = ", ".join(labels.values()) or "base"
             progress.update(label, job.seed, result.status, value, result.duration, result.error)

@@ -46,12 +46,24 @@ class Progress:
         self.counts = dict.fromkeys(Status, 0)
         self.values: dict[str, list[float]] = {}
         self.finished = 0
+        self.warned: set[str] = set()
 
     def note(self, text: str) -> None:
         """A line about the run as a whole, before its jobs' lines (not when quiet)."""
         if not self.quiet:
             self.stream.write(text + "\n")
             self.stream.flush()
+
+    def warn(self, text: str) -> None:
+        """A warning about how the run went, shown once even when quiet (a fast path that
+        failed must show, not hide as a slower run)."""
+        if text in self.warned:
+            return
+        self.warned.add(text)
+        if self.live and self.finished:
+            self.stream.write("\n")
+        self.stream.write(f"warning: {text}\n")
+        self.stream.flush()
 
     def update(
         self, label: str, seed: int, status: Status, value: float | None, seconds: float, error: str | None = None

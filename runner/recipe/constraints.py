@@ -20,6 +20,7 @@ __all__ = [
     "Choice",
     "Constraint",
     "Either",
+    "Examples",
     "IntList",
     "Integer",
     "Invalid",
@@ -212,6 +213,16 @@ class Param:
     default: Any = MISSING
     doc: str = ""
     table: Mapping[str, Param] | None = field(default=None)  # nested table of settings
+
+
+@dataclass(frozen=True, slots=True)
+class Examples:
+    """A component's worked examples, walked by the registry test: ``valid`` recipe tables
+    (e.g. {"train": {"optimizer": "sgd", "lr": 0.1}}) that must validate and train, and
+    ``invalid`` ones, each with a fragment of the message it must be refused with."""
+
+    valid: tuple[Mapping[str, Any], ...] = ()
+    invalid: tuple[tuple[Mapping[str, Any], str], ...] = ()
 
 
 def suggest(word: str, options) -> str | None:

@@ -182,12 +182,12 @@ def parse_recipe(text: str, path: Path) -> Recipe:
             f"not valid TOML ({msg})", where=where, line=line, hint="Check quotes, brackets and '=' on that line"
         ) from None
     try:
-        return _build(raw, text, path)
+        return recipe_from_tables(raw, text, path)
     except UserError as err:
         raise err.located(where=where, line=_line_of(text, err.key) if err.key else None) from None
 
 
-def _build(raw: dict, text: str, path: Path) -> Recipe:
+def recipe_from_tables(raw: dict, text: str, path: Path) -> Recipe:
     for key in raw:
         if key not in TOP_LEVEL:
             near = suggest(key, TOP_LEVEL)

@@ -13,7 +13,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from runner.components.stacked_optim import STACKED_OPTIMIZERS
+from runner.components.optimizers import STACKED_OPTIMIZERS
 from runner.datasets.sources import Dataset
 from runner.recipe.grid import canonical
 from runner.training.job import JobSpec

@@ -39,6 +39,7 @@ class Backend(Protocol):
 
     members: int
     steps_per_epoch: int
+    stacked: bool  # the stacked path (a failure there is retried one job at a time)
 
     def initial_diagnostics(self) -> list[dict[str, Any]]:
         """Per member: activation and gradient statistics at initialization (no random draw)."""
@@ -134,7 +135,7 @@ def train_members(
         if not any(m.active for m in members):
             break
         if fault is not None:
-            fault.maybe_fire(epoch)
+            fault.maybe_fire(epoch, stacked=backend.stacked)
         step = _epoch(backend, members, epoch, step, start)
         if not any(m.active for m in members):
             break

@@ -34,6 +34,7 @@ class SingleBackend:
     """One job: its split, network, optimizer and random streams."""
 
     members = 1
+    stacked = False
 
     def __init__(self, spec: JobSpec, ds: Dataset):
         self.spec, self.ds = spec, ds

@@ -28,7 +28,7 @@ from runner.components import regularizers
 from runner.components.activations import gain
 from runner.components.initializers import initialize
 from runner.components.metrics import Task
-from runner.components.stacked_optim import StackedOptimizer, member_runs
+from runner.components.optimizers import StackedOptimizer, member_column
 from runner.datasets.sources import Dataset
 from runner.datasets.splits import split_and_scale
 from runner.recipe.grid import canonical
@@ -43,10 +43,6 @@ __all__ = ["StackedBackend"]
 
 def _hyper(specs, name, dtype=torch.float32):
     return torch.tensor([float(getattr(s.settings.train, name)) for s in specs], dtype=dtype)
-
-
-def _column(values, like: torch.Tensor) -> torch.Tensor:
-    return torch.tensor(values, dtype=like.dtype).view(-1, *([1] * (like.dim() - 1)))
 
 
 _SPLIT_CACHE: OrderedDict = OrderedDict()  # recent splits of this process, read-only here
@@ -105,17 +101,10 @@ class _Dropout:
         return out
 
 
-def _penalty_runs(strengths: list[float], net: StackedMLP) -> list[tuple]:
-    """(gradient rows, weight rows, coefficient) for each contiguous run of members with a
-    nonzero penalty: per-member strength times the weight mask. Members without the
-    penalty are not touched (a grid's L2 factor leaves half of a group at 0)."""
-    rows = [k for k, v in enumerate(strengths) if v]
-    coef = _column(strengths, net.flat) * net.is_weight
-    return [(net.gflat[run], net.flat[run], coef[run]) for run in member_runs(rows)]
-
-
 class StackedBackend:
     """K members of one stack key (grouping.stack_key): shared shapes, their own everything else."""
+
+    stacked = True
 
     def __init__(self, specs: list[JobSpec], ds: Dataset):
         self.specs, self.ds = specs, ds
@@ -154,10 +143,7 @@ class StackedBackend:
         self.probe = min(diagnostics.PROBE_ROWS, n)
         hyper = {h: _hyper(specs, h) for h in ("momentum", "beta1", "beta2", "eps", "weight_decay")}
         self.opt = StackedOptimizer([t.optimizer for t in T], [net.flat], [net.gflat], [net.is_weight], hyper)
-        # penalties act on weights only: per-member strength times the weight mask, (K, P)
-        self.l2_terms = _penalty_runs([2.0 * t.l2 for t in T], net)  # gradient of l2 * sum(w^2)
-        self.l1_terms = _penalty_runs([t.penalty_l1 for t in T], net)
-        self.prox = [t.proximal_l1 for t in T]
+        self.penalties = regularizers.StackedPenalties(T, net.flat, net.gflat, net.is_weight)
         self.clip = [t.clip_norm for t in T]
         self.dropout = _Dropout(specs, gens, widths)
         self.batch = T[0].batch_rows(n)
@@ -194,18 +180,13 @@ class StackedBackend:
     def update(self, lrs: list[float], active: list[bool]) -> None:
         net = self.net
         net.backward(self._dout)
-        for g, w, coef in self.l2_terms:
-            g.addcmul_(w, coef)
-        for g, w, coef in self.l1_terms:
-            g.addcmul_(torch.sign(w), coef)
+        self.penalties.add_gradients()
         if any(self.clip):  # torch.nn.utils.clip_grad_norm_ per member: scale by max_norm / (norm + 1e-6), at most 1
             norm = net.gflat.norm(dim=1).tolist()
             coef = [min(c / (v + 1e-6), 1.0) if c > 0 else 1.0 for c, v in zip(self.clip, norm)]
-            net.gflat.mul_(_column(coef, net.gflat))
+            net.gflat.mul_(member_column(coef, net.gflat))
         self.opt.step(lrs, active)
-        if any(self.prox):  # soft-threshold the weights (biases get threshold 0: unchanged)
-            thr = [r * lam if a else 0.0 for r, lam, a in zip(lrs, self.prox, active)]
-            regularizers.soft_threshold_(net.flat, _column(thr, net.flat) * net.is_weight)
+        self.penalties.proximal_step(lrs, active)
 
     def validate(self) -> list[dict[str, float]]:
         splits = self.splits

@@ -24,9 +24,9 @@ from __future__ import annotations
 import numpy as np
 import torch
 
-__all__ = ["StackedMLP", "cross_entropy_grad", "mse_grad"]
+from runner.components.activations import stacked_activation
 
-_aten = torch.ops.aten
+__all__ = ["StackedMLP", "cross_entropy_grad", "mse_grad"]
 
 
 # Products go through numpy's BLAS (OpenBLAS in numpy's wheels) on numpy views of the same
@@ -37,48 +37,6 @@ _aten = torch.ops.aten
 
 def _T(a: np.ndarray) -> np.ndarray:
     return a.transpose(0, 2, 1)
-
-
-def _activation(name: str, slope: float):
-    """(forward(z, out), backward(grad, z, a, out), in_place) with autograd's own derivative
-    kernels; ``in_place``: the backward needs only the output, so it may overwrite z."""
-    if name == "relu":
-        return (
-            (lambda z, out: torch.relu_(z)),
-            (lambda g, z, a, out: _aten.threshold_backward.grad_input(g, a, 0, grad_input=out)),
-            True,
-        )
-    if name == "tanh":
-        return (
-            (lambda z, out: torch.tanh_(z)),
-            (lambda g, z, a, out: _aten.tanh_backward.grad_input(g, a, grad_input=out)),
-            True,
-        )
-    if name == "sigmoid":
-        return (
-            (lambda z, out: torch.sigmoid_(z)),
-            (lambda g, z, a, out: _aten.sigmoid_backward.grad_input(g, a, grad_input=out)),
-            True,
-        )
-    if name == "leaky_relu":
-        return (
-            (lambda z, out: _aten.leaky_relu.out(z, slope, out=out)),
-            (lambda g, z, a, out: _aten.leaky_relu_backward.grad_input(g, z, slope, False, grad_input=out)),
-            False,
-        )
-    if name == "elu":
-        return (
-            (lambda z, out: _aten.elu.out(z, 1.0, 1, 1, out=out)),
-            (lambda g, z, a, out: _aten.elu_backward.grad_input(g, 1.0, 1, 1, False, z, grad_input=out)),
-            False,
-        )
-    if name == "gelu":
-        return (
-            (lambda z, out: _aten.gelu.out(z, approximate="none", out=out)),
-            (lambda g, z, a, out: _aten.gelu_backward.grad_input(g, z, approximate="none", grad_input=out)),
-            False,
-        )
-    raise ValueError(f"no stacked activation {name}")
 
 
 class _Workspace:
@@ -144,7 +102,7 @@ class StackedMLP:
         self._bias_rows = [b.unsqueeze(1) for b in self.biases[:-1]]
         self._bias_out = self.biases[-1].unsqueeze(2)
         self._gw_np = [g.numpy() for g in self.gw]
-        self.act, self.act_back, self.in_place = _activation(activation, slope)
+        self.act, self.act_back, self.in_place = stacked_activation(activation, slope)
         self.hidden: list[torch.Tensor] = []  # each hidden activation of the last forward
         self._work: dict[int, _Workspace] = {}
         self._saved = None

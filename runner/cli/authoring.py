@@ -1,0 +1,75 @@
+"""Commands that help write a recipe: check, schema, new."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import click
+
+from runner.cli.common import fail, load_grid, store_option, store_path
+from runner.errors import UserError
+
+
+@click.command()
+@click.argument("recipe_path", metavar="RECIPE", type=click.Path())
+@store_option
+@click.option("--workers", type=click.IntRange(1), default=None, help="Workers to estimate for (default: cores).")
+@click.option("--no-probe", is_flag=True, help="Skip the timed probes (no run-time estimate).")
+@click.option("--no-stack", is_flag=True, help="Estimate for `recipe run --no-stack`: every job on its own.")
+def check(recipe_path, store, workers, no_probe, no_stack):
+    """Validate RECIPE and print its plan: factors, jobs, what is stored, a time estimate."""
+    try:
+        recipe, grid = load_grid(recipe_path)
+        from runner.execution.estimate import describe_plan
+        from runner.execution.executors import default_workers
+        from runner.store.database import Store
+
+        path = store_path(recipe, store)
+        workers = workers or recipe.run.workers or default_workers()
+        if path.exists():
+            with Store(path, create=False) as db:
+                text, _ = describe_plan(grid, db, workers, probe=not no_probe, stack=not no_stack)
+        else:
+            text, _ = describe_plan(grid, None, workers, probe=not no_probe, stack=not no_stack)
+    except UserError as err:
+        fail(err)
+    click.echo(f"{recipe_path}: valid.")
+    click.echo(text, nl=False)
+
+
+@click.command()
+def schema():
+    """Print the JSON Schema of the recipe format (for editors with TOML schema support)."""
+    import json
+
+    from runner.recipe.schema import recipe_schema
+
+    click.echo(json.dumps(recipe_schema(), indent=2))
+
+
+@click.command()
+@click.argument("source")
+@click.option(
+    "--out",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Recipe file to write (default: <data name>.toml here).",
+)
+@click.option("--target", default=None, help="The target column (default: guessed from the data).")
+@click.option("--force", is_flag=True, help="Overwrite an existing file.")
+def new(source, out, target, force):
+    """Write a commented starter recipe for SOURCE: a CSV or NPZ file, or a bundled data set."""
+    from runner.recipe.grid import expand
+    from runner.recipe.loader import parse_recipe
+    from runner.recipe.starter import starter_recipe
+
+    target_path = Path(out) if out else Path(f"{Path(source).stem}.toml")
+    try:
+        if target_path.exists() and not force:
+            raise UserError("file exists", where=str(target_path), hint="Choose another --out or pass --force")
+        text = starter_recipe(source, target_path, target)
+        expand(parse_recipe(text, target_path.resolve()))  # never write a starter that does not validate
+    except UserError as err:
+        fail(err)
+    target_path.write_text(text)
+    click.echo(f"wrote {target_path}; next: recipe check {target_path}")

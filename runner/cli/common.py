@@ -1,0 +1,48 @@
+"""What the commands share: turning a user error into one line and exit 2, where a
+recipe's store lives, loading and expanding a recipe, and the common options."""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import click
+
+from runner.errors import UserError
+
+__all__ = ["fail", "format_option", "load_grid", "store_option", "store_path"]
+
+
+def fail(err: UserError) -> None:
+    click.echo(f"error: {err.message()}", err=True)
+    sys.exit(2)
+
+
+def store_path(recipe, store: str | None) -> Path:
+    return Path(store) if store else recipe.base_dir / "runs" / f"{recipe.name}.sqlite"
+
+
+def load_grid(recipe_path: str):
+    """The validated recipe and its grid. Validation imports nothing heavy, so a recipe's
+    error is reported at once; commands import their own heavy modules after this."""
+    from runner.recipe.loader import load_recipe
+
+    recipe = load_recipe(recipe_path)
+    from runner.recipe.grid import expand
+
+    return recipe, expand(recipe)
+
+
+store_option = click.option(
+    "--store",
+    "store",
+    type=click.Path(dir_okay=False),
+    help="Results database (default: runs/<name>.sqlite beside the recipe).",
+)
+format_option = click.option(
+    "--format",
+    "fmt",
+    type=click.Choice(["table", "markdown", "csv", "json"]),
+    default=None,
+    help="Leaderboard format (default: table).",
+)

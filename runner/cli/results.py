@@ -1,0 +1,140 @@
+"""Commands that read stored results: board, status, diff, report, export-mlflow."""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import click
+
+from runner.cli.common import fail, format_option, load_grid, store_option, store_path
+from runner.errors import UserError
+
+
+@click.command()
+@click.argument("recipe_path", metavar="RECIPE", type=click.Path())
+@store_option
+@format_option
+@click.option("--out", type=click.Path(dir_okay=False), help="Write to this file instead of stdout.")
+@click.option(
+    "--ablation",
+    is_flag=True,
+    help="Add the ablation tables (main effects, interactions, regularization and optimizer views).",
+)
+def board(recipe_path, store, fmt, out, ablation):
+    """Print the leaderboard of RECIPE from its store, without training."""
+    try:
+        recipe, grid = load_grid(recipe_path)
+        from runner.evidence.leaderboard import leaderboard
+        from runner.outputs.text import render, render_ablation
+        from runner.store.database import Store
+
+        with Store(store_path(recipe, store), create=False) as db:
+            doc = leaderboard(grid, db)
+        fmt = fmt or "table"
+        text = render(doc, fmt)
+        if ablation and fmt in ("table", "markdown"):
+            text += render_ablation(doc.ablation, markdown=fmt == "markdown")
+    except UserError as err:
+        fail(err)
+    if out:
+        Path(out).write_text(text)
+    else:
+        click.echo(text, nl=False)
+
+
+@click.command()
+@click.argument("recipe_path", metavar="RECIPE", type=click.Path())
+@store_option
+def status(recipe_path, store):
+    """Count RECIPE's jobs by state: done, diverged, failed, timed out, pending."""
+    try:
+        recipe, grid = load_grid(recipe_path)
+        from runner.store.database import Store
+        from runner.training.job import Status
+
+        path = store_path(recipe, store)
+        keys = {j.key for j in grid}
+        counts = dict.fromkeys(Status, 0)
+        running = set()
+        if path.exists():
+            with Store(path, create=False) as db:
+                for row in db.jobs(keys):
+                    counts[row.status] += 1
+                running = db.running_keys() & keys
+    except UserError as err:
+        fail(err)
+    pending = len(keys) - sum(counts.values()) - len(running)
+    click.echo(
+        f"{len(keys)} jobs: {counts[Status.DONE]} done, {len(running)} running, {pending} pending, "
+        f"{counts[Status.FAILED]} failed, {counts[Status.DIVERGED]} diverged, "
+        f"{counts[Status.TIMEOUT]} timed out"
+    )
+
+
+@click.command()
+@click.argument("old", type=click.Path())
+@click.argument("new", type=click.Path())
+@click.option("--format", "fmt", type=click.Choice(["table", "markdown", "json"]), default="table", show_default=True)
+@click.option("--fail-on-worse", is_flag=True, help="Exit 1 when any configuration got clearly worse.")
+def diff(old, new, fmt, fail_on_worse):
+    """Compare two leaderboards: OLD and NEW are JSON exports, stores, or recipes."""
+    from runner.evidence.diff import diff as compare
+    from runner.evidence.diff import load_board, render_diff
+
+    try:
+        result = compare(load_board(old), load_board(new))
+    except UserError as err:
+        fail(err)
+    click.echo(render_diff(result, fmt), nl=False)
+    if fail_on_worse and result.summary["worse"]:
+        sys.exit(1)
+
+
+@click.command()
+@click.argument("recipe_path", metavar="RECIPE", type=click.Path())
+@store_option
+@click.option(
+    "--out",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="HTML file to write (default: <name>-report.html beside the store).",
+)
+def report(recipe_path, store, out):
+    """Write a self-contained HTML report of RECIPE's stored results."""
+    try:
+        recipe, grid = load_grid(recipe_path)
+        from runner.outputs.html_report import build_report
+        from runner.store.database import Store
+
+        path = store_path(recipe, store)
+        with Store(path, create=False) as db:
+            text = build_report(grid, db)
+    except UserError as err:
+        fail(err)
+    target = Path(out) if out else path.with_name(f"{recipe.name}-report.html")
+    target.write_text(text, encoding="utf-8")
+    click.echo(f"wrote {target}")
+
+
+@click.command("export-mlflow")
+@click.argument("recipe_path", metavar="RECIPE", type=click.Path())
+@store_option
+@click.option("--uri", required=True, help="MLflow tracking URI, e.g. sqlite:///mlflow.db.")
+def export_mlflow(recipe_path, store, uri):
+    """Log RECIPE's stored jobs to MLflow; jobs already there are skipped, so it can be retried."""
+    try:
+        recipe, grid = load_grid(recipe_path)
+        from runner.outputs.mlflow_export import export_all
+        from runner.store.database import Store
+
+        with Store(store_path(recipe, store), create=False) as db:
+            sent, before, errors = export_all(uri, grid, db)
+    except UserError as err:
+        fail(err)
+    click.echo(f"{sent} jobs logged to {uri}; {before} were already there.")
+    if errors:
+        click.echo(
+            f"{len(errors)} failed (first: {errors[0][:300]}); nothing was lost: run this again to retry.", err=True
+        )
+        sys.exit(1)
