@@ -9,7 +9,10 @@ import subprocess
 import time
 
 import numpy as np
+import pytest
 from conftest import PYTHON, invoke, stored_metrics, subprocess_env, write_recipe
+
+pytestmark = pytest.mark.slow  # starts processes, sends signals, or starts Dask, MLflow or a browser
 
 RECIPE = """
     name = "chaos"

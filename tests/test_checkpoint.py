@@ -4,6 +4,7 @@ where an uninterrupted run ends."""
 import sqlite3
 import subprocess
 
+import pytest
 import torch
 from conftest import PYTHON, invoke, subprocess_env, write_recipe
 
@@ -35,6 +36,7 @@ def stored(store):
     return m, k, d
 
 
+@pytest.mark.slow
 def test_killed_job_resumes_from_checkpoint_bit_for_bit(tmp_path):
     path = write_recipe(tmp_path, RECIPE)
     killed, clean = tmp_path / "k.sqlite", tmp_path / "c.sqlite"

@@ -4,6 +4,7 @@ import io
 import re
 import subprocess
 
+import pytest
 from conftest import DATA, PYTHON, ROOT, invoke, subprocess_env, write_recipe
 
 from runner.execution.progress import Progress
@@ -65,6 +66,7 @@ def test_new_for_a_regression_csv_and_images(tmp_path):
     assert 'kind = "cnn"' in (tmp_path / "d.toml").read_text()
 
 
+@pytest.mark.slow
 def test_shell_completion_script_from_click():
     env = subprocess_env()
     env["_RECIPE_COMPLETE"] = "bash_source"

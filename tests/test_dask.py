@@ -15,6 +15,8 @@ from runner.recipe.grid import expand  # noqa: E402
 from runner.recipe.loader import load_recipe  # noqa: E402
 from runner.store.database import Store  # noqa: E402
 
+pytestmark = pytest.mark.slow  # starts processes, sends signals, or starts Dask, MLflow or a browser
+
 RECIPE = """
     name = "dask"
     seeds = [1, 2, 3]

@@ -12,7 +12,10 @@ import subprocess
 import textwrap
 import time
 
+import pytest
 from conftest import PYTHON, invoke, stored_metrics, subprocess_env, write_recipe
+
+pytestmark = pytest.mark.slow  # starts processes, sends signals, or starts Dask, MLflow or a browser
 
 RECIPE = """
     name = "faults"

@@ -10,6 +10,8 @@ pytest.importorskip("sqlalchemy")
 from conftest import invoke, write_recipe
 from mlflow.tracking import MlflowClient
 
+pytestmark = pytest.mark.slow  # starts processes, sends signals, or starts Dask, MLflow or a browser
+
 RECIPE = """
     name = "track"
     seeds = [1, 2]

@@ -56,6 +56,7 @@ def test_bad_recipe_cli_exit_2_and_no_store(name, tmp_path):
     assert not store.exists()
 
 
+@pytest.mark.slow
 def test_real_process_exit_status_and_no_traceback(tmp_path):
     """The installed entry point exits 2 with a one-paragraph message."""
     proc = subprocess.run(

@@ -10,6 +10,8 @@ import pytest
 from conftest import invoke, write_recipe
 from PIL import Image
 
+pytestmark = pytest.mark.slow  # starts processes, sends signals, or starts Dask, MLflow or a browser
+
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 FLAGS = [
     "--headless",

@@ -7,7 +7,10 @@ import sqlite3
 import subprocess
 import time
 
+import pytest
 from conftest import PYTHON, invoke, subprocess_env, write_recipe
+
+pytestmark = pytest.mark.slow  # starts processes, sends signals, or starts Dask, MLflow or a browser
 
 RECIPE = """
     name = "resume"

@@ -34,6 +34,7 @@ def _cli_alone(args: list[str]) -> tuple[list[str], str]:
     return proc.stdout.split()[-3:], proc.stderr
 
 
+@pytest.mark.slow
 def test_cli_and_package_import_without_torch():
     # `recipe --help`, completion and a malformed recipe's error must not wait for torch
     loaded = _modules_after("import runner.cli.app, runner.execution.forkserver")
@@ -42,6 +43,7 @@ def test_cli_and_package_import_without_torch():
     assert "runner.store.database" in loaded
 
 
+@pytest.mark.slow
 def test_deterministic_switch_matches_the_public_one():
     # torch.use_deterministic_algorithms(True) sets two things a CPU run can see: the flag,
     # and filling fresh tensors (torch.empty) with NaN; the cheaper switch must set both
@@ -80,6 +82,7 @@ def test_when_the_fork_server_starts_early(run, workers, on, expected):
     assert wants_workers(workers, on, RunSettings(**run)) is expected
 
 
+@pytest.mark.slow
 def test_validating_a_recipe_needs_no_torch_and_a_bad_one_starts_no_workers(tmp_path):
     # a typo in a recipe is reported at once, by every command, and starts no worker server
     good, bad = tmp_path / "good.toml", tmp_path / "bad.toml"
@@ -100,6 +103,7 @@ def test_default_worker_count_is_the_usable_cores():
     assert default_workers() == len(os.sched_getaffinity(0))
 
 
+@pytest.mark.slow
 def test_reading_results_needs_no_torch(tmp_path):
     # board, status and diff read the store: a practitioner's most frequent commands stay quick
     path = write_recipe(

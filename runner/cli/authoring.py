@@ -20,7 +20,7 @@ def check(recipe_path, store, workers, no_probe, no_stack):
     """Validate RECIPE and print its plan: factors, jobs, what is stored, a time estimate."""
     try:
         recipe, grid = load_grid(recipe_path)
-        from runner.execution.estimate import describe_plan
+        from runner.execution.estimate import plan_report
         from runner.execution.executors import default_workers
         from runner.store.database import Store
 
@@ -28,9 +28,9 @@ def check(recipe_path, store, workers, no_probe, no_stack):
         workers = workers or recipe.run.workers or default_workers()
         if path.exists():
             with Store(path, create=False) as db:
-                text, _ = describe_plan(grid, db, workers, probe=not no_probe, stack=not no_stack)
+                text, _ = plan_report(grid, db, workers, probe=not no_probe, stack=not no_stack)
         else:
-            text, _ = describe_plan(grid, None, workers, probe=not no_probe, stack=not no_stack)
+            text, _ = plan_report(grid, None, workers, probe=not no_probe, stack=not no_stack)
     except UserError as err:
         fail(err)
     click.echo(f"{recipe_path}: valid.")

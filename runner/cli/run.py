@@ -149,7 +149,7 @@ def _run(
                 _confirm_fresh(db, grid, yes)
             todo = plan(grid, db, retry_failed)
             if not quiet:
-                click.echo(todo.describe(), err=True)
+                click.echo(todo.summary_line(), err=True)
             progress = Progress(
                 len(todo.to_run), grid.rank_by, grid.goal, quiet=quiet, live=False if verbose else None, verbose=verbose
             )

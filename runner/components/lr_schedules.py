@@ -5,6 +5,11 @@ Being stateless, a schedule needs no saved state to resume: lr(step) is recomput
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from runner.recipe.settings import TrainSettings
+
 import math
 
 from runner.errors import RecipeError
@@ -38,7 +43,7 @@ EXAMPLES = {
 }
 
 
-def lr_at(step: int, steps_per_epoch: int, train: dict) -> float:
+def lr_at(step: int, steps_per_epoch: int, train: TrainSettings) -> float:
     """Learning rate for optimizer step ``step`` (0-based)."""
     base = train.lr
     kind = train.schedule
@@ -55,7 +60,7 @@ def lr_at(step: int, steps_per_epoch: int, train: dict) -> float:
     return base * 0.5 * (1.0 + math.cos(math.pi * min(1.0, progress)))
 
 
-def check_schedule(train: dict) -> None:
+def check_schedule(train: TrainSettings) -> None:
     if train.schedule == "warmup_cosine" and train.warmup_epochs >= train.epochs:
         raise RecipeError(
             "warm-up must end before training does",

@@ -43,8 +43,11 @@ from typing import TYPE_CHECKING
 from runner.errors import RecipeError
 from runner.recipe.constraints import Examples, Param, Real
 
-if TYPE_CHECKING:  # annotations only; torch is imported where it is used
+if TYPE_CHECKING:
+    # annotations only; torch is imported where it is used
     import torch
+
+    from runner.recipe.settings import TrainSettings
 
 __all__ = [
     "EXAMPLES",
@@ -143,7 +146,7 @@ EXAMPLES = {
 }
 
 
-def check_optimizer(train: dict) -> None:
+def check_optimizer(train: TrainSettings) -> None:
     """Rules that span two settings."""
     if train.optimizer in ("momentum", "nesterov") and train.momentum <= 0:
         raise RecipeError(
@@ -155,7 +158,7 @@ def check_optimizer(train: dict) -> None:
         )
 
 
-def build_optimizer(model: torch.nn.Module, train: dict) -> torch.optim.Optimizer:
+def build_optimizer(model: torch.nn.Module, train: TrainSettings) -> torch.optim.Optimizer:
     """Weight matrices get ``weight_decay``; biases and normalization parameters get none."""
     decay, no_decay = split_parameters(model)
     groups = [{"params": decay, "weight_decay": train.weight_decay}, {"params": no_decay, "weight_decay": 0.0}]

@@ -53,7 +53,7 @@ EXAMPLES = {
 }
 
 
-def penalty(weights: list[torch.Tensor], train: dict) -> torch.Tensor | None:
+def penalty(weights: list[torch.Tensor], train: TrainSettings) -> torch.Tensor | None:
     """The explicit penalty term to add to the loss, or None when there is none."""
     total = None
     if train.l2 > 0:

@@ -97,6 +97,46 @@ def _no_spread_half_width(k: int, n: int, alpha: float, constant: str) -> float:
     return 0.0 if min_attainable_p(n) <= alpha / (k * (k - 1) / 2) else math.inf
 
 
+def _check_arguments(goal: str, constant: str, margin: float | None) -> None:
+    if goal not in _GOALS:
+        raise ValueError(f"goal: unknown {goal!r}; allowed: {', '.join(_GOALS)}")
+    if constant not in _CONSTANTS:
+        raise ValueError(f"constant: unknown {constant!r}; allowed: {', '.join(_CONSTANTS)}")
+    if margin is not None and not margin > 0:
+        raise ValueError(f"margin must be > 0, got {margin}")
+
+
+def _unbounded(common: dict, means: np.ndarray, adv: np.ndarray, k: int, margin: float | None, basis: str) -> BestSet:
+    """No interval can be formed: one configuration (nothing to compare) or one seed (no spread)."""
+    inf = (math.inf,) * k if k > 1 else None
+    return BestSet(
+        **common, df=0, means=tuple(means.tolist()), advantage=tuple(adv.tolist()),
+        lower=tuple(-v for v in inf) if inf else None, upper=inf, possibly_best=(True,) * k, shortfall=inf,
+        within_margin=(False,) * k if (margin is not None and inf) else None, margin=margin,
+        residual_sd=None, critical=None, half_width=None, basis=basis,
+    )  # fmt: skip
+
+
+def _half_width(oriented: np.ndarray, alpha: float, protocol: Resampling, constant: str):
+    """(residual sd, critical constant, half-width w, basis) of the simultaneous intervals."""
+    k, n = oriented.shape
+    ms, df = _residual_ms(oriented)
+    scale = float(np.abs(oriented - oriented.mean()).max())
+    v = protocol.variance_factor(n)
+    if constant == "dunnett":
+        d, spread = dunnett_one_sided(k - 1, df, alpha), math.sqrt(2.0 * v)
+    else:
+        d, spread = range_quantile(k, df, alpha), math.sqrt(v)
+    if ms <= (1e-12 * scale) ** 2:
+        w = _no_spread_half_width(k, n, alpha, constant)
+        if protocol.kind != "fixed":
+            w = math.inf  # correlated seeds: sign flips do not apply, nothing is bounded
+        return 0.0, d, w, "zero residual variance: exact sign-flip bound"
+    sd = math.sqrt(ms)
+    basis = "Hsu MCB" if constant == "dunnett" else "constrained MCB, studentized range"
+    return sd, d, d * sd * spread, basis
+
+
 def possibly_best(
     y,
     goal: str = "max",
@@ -114,105 +154,27 @@ def possibly_best(
     Row i: [min(0, a_i - w), max(0, a_i + w)] with a_i its advantage. A residual variance of
     exactly 0 is not evidence of no noise: see ``_no_spread_half_width``.
     """
-    if goal not in _GOALS:
-        raise ValueError(f"goal: unknown {goal!r}; allowed: {', '.join(_GOALS)}")
-    if constant not in _CONSTANTS:
-        raise ValueError(f"constant: unknown {constant!r}; allowed: {', '.join(_CONSTANTS)}")
-    if margin is not None and not margin > 0:
-        raise ValueError(f"margin must be > 0, got {margin}")
+    _check_arguments(goal, constant, margin)
     data = np.asarray(y, dtype=float)
     if data.ndim != 2 or data.size == 0 or not np.all(np.isfinite(data)):
         raise ValueError("possibly_best: y must be a complete, finite k x n matrix (matched seeds only)")
-    sign = 1.0 if goal == "max" else -1.0
     k, n = data.shape
+    common = {"goal": goal, "alpha": alpha, "k": k, "n": n, "protocol": protocol.kind, "constant": constant}
     means = data.mean(axis=1)
     if k == 1:
-        return BestSet(
-            goal,
-            alpha,
-            1,
-            n,
-            0,
-            (float(means[0]),),
-            (0.0,),
-            None,
-            None,
-            (True,),
-            None,
-            None,
-            margin,
-            None,
-            None,
-            None,
-            "one configuration",
-            protocol.kind,
-            constant,
-        )
-    oriented = sign * data
+        return _unbounded(common, means, np.zeros(1), 1, margin, "one configuration")
+    oriented = (1.0 if goal == "max" else -1.0) * data
     adv = _advantage(oriented.mean(axis=1))
     if n == 1:
-        inf = (math.inf,) * k
-        return BestSet(
-            goal,
-            alpha,
-            k,
-            1,
-            0,
-            tuple(means.tolist()),
-            tuple(adv.tolist()),
-            tuple(-v for v in inf),
-            inf,
-            (True,) * k,
-            inf,
-            (False,) * k if margin is not None else None,
-            margin,
-            None,
-            None,
-            None,
-            "one seed: no verdict",
-            protocol.kind,
-            constant,
-        )
-    ms, df = _residual_ms(oriented)
-    scale = float(np.abs(oriented - oriented.mean()).max())
-    v = protocol.variance_factor(n)
-    if constant == "dunnett":
-        d, spread = dunnett_one_sided(k - 1, df, alpha), math.sqrt(2.0 * v)
-    else:
-        d, spread = range_quantile(k, df, alpha), math.sqrt(v)
-    if ms <= (1e-12 * scale) ** 2:
-        sd, w = 0.0, _no_spread_half_width(k, n, alpha, constant)
-        basis = "zero residual variance: exact sign-flip bound"
-        if protocol.kind != "fixed":
-            w = math.inf  # correlated seeds: sign flips do not apply, nothing is bounded
-    else:
-        sd = math.sqrt(ms)
-        w = d * sd * spread
-        basis = "Hsu MCB" if constant == "dunnett" else "constrained MCB, studentized range"
+        return _unbounded(common, means, adv, k, margin, "one seed: no verdict")
+    sd, d, w, basis = _half_width(oriented, alpha, protocol, constant)
     lower = np.minimum(0.0, adv - w)
     upper = np.maximum(0.0, adv + w)
     best = adv + w >= 0  # a row tied at the boundary is kept
-    within = None
-    if margin is not None:
-        within = tuple(bool(x) for x in (lower > -margin) & (upper < margin))
+    within = None if margin is None else tuple(bool(x) for x in (lower > -margin) & (upper < margin))
     return BestSet(
-        goal,
-        alpha,
-        k,
-        n,
-        df,
-        tuple(means.tolist()),
-        tuple(adv.tolist()),
-        tuple(lower.tolist()),
-        tuple(upper.tolist()),
-        tuple(bool(b) for b in best),
-        tuple((-lower).tolist()),
-        within,
-        margin,
-        sd,
-        d,
-        w,
-        basis,
-        protocol.kind,
-        constant,
-    )
+        **common, df=(k - 1) * (n - 1), means=tuple(means.tolist()), advantage=tuple(adv.tolist()),
+        lower=tuple(lower.tolist()), upper=tuple(upper.tolist()), possibly_best=tuple(bool(b) for b in best),
+        shortfall=tuple((-lower).tolist()), within_margin=within, margin=margin, residual_sd=sd, critical=d,
+        half_width=w, basis=basis,
+    )  # fmt: skip

@@ -11,7 +11,16 @@ from runner.recipe.grid import Grid, canonical
 from runner.store.database import Store
 from runner.training.job import Status
 
-__all__ = ["MAX_PROBES", "PROBE_EPOCHS", "describe_plan", "estimate_seconds"]
+__all__ = [
+    "MAX_PROBES",
+    "PROBE_EPOCHS",
+    "deal",
+    "estimate_seconds",
+    "item_costs",
+    "plan_report",
+    "probe_rates",
+    "work_items",
+]
 
 PROBE_EPOCHS = 2
 MAX_PROBES = 6  # distinct kinds of work item timed; others are costed from these
@@ -56,41 +65,57 @@ def _seconds_per_member_epoch(item, grid: Grid) -> float:
     return elapsed / epochs / len(probe)
 
 
-def estimate_seconds(grid: Grid, todo: list, workers: int, stack: bool = True) -> float:
-    """Seconds of training for ``todo`` on ``workers`` processes (one thread each), from the
-    work items `recipe run` would make of it: stacked groups formed as execute() forms them
-    (over the whole grid, a group running whole if any member is to run), one job at a time
-    otherwise. One item of each kind (up to MAX_PROBES kinds) is trained for PROBE_EPOCHS
-    epochs in this process, after an untimed epoch that absorbs its one-off costs; an
-    item costs its kind's time per member and epoch times its members and epochs (items of
-    kinds not probed get the mean of the probed kinds), and the items are dealt to the
-    workers longest first, each to the least loaded."""
-    from runner.execution.executors import prepare_process
+def work_items(grid: Grid, todo: list, stack: bool = True) -> list[tuple]:
+    """The work items `recipe run` would make of ``todo``: stacked groups formed as
+    execute() forms them (over the whole grid, a group running whole if any member is to
+    run), one job at a time otherwise."""
     from runner.training.grouping import group_specs
 
     keys = {j.key for j in todo}
     specs = [j.spec() for j in grid] if stack else [j.spec() for j in todo]
-    items = [it for it in group_specs(specs, grid.datasets, enabled=stack) if any(s.key in keys for s in it)]
-    if not items:
-        return 0.0
+    return [it for it in group_specs(specs, grid.datasets, enabled=stack) if any(s.key in keys for s in it)]
+
+
+def probe_rates(items: list[tuple], grid: Grid) -> dict[str, float]:
+    """Seconds per member and epoch of each kind of work item (up to MAX_PROBES kinds),
+    from a PROBE_EPOCHS-epoch probe of one item of the kind, in this process."""
+    from runner.execution.executors import prepare_process
+
     prepare_process(1, grid.datasets)
     rates: dict[str, float] = {}
     for item in items:
         kind = _kind(item)
         if kind not in rates and len(rates) < MAX_PROBES:
             rates[kind] = _seconds_per_member_epoch(item, grid)
+    return rates
+
+
+def item_costs(items: list[tuple], rates: dict[str, float]) -> list[float]:
+    """Each item's seconds: its kind's rate times its members and epochs (kinds not probed
+    get the mean of the probed kinds)."""
     fallback = sum(rates.values()) / len(rates)
-    costs = sorted(
-        (rates.get(_kind(it), fallback) * len(it) * max(s.settings.train.epochs for s in it) for it in items),
-        reverse=True,
-    )
-    loads = [0.0] * max(1, min(workers, len(items)))
-    for cost in costs:
+    return [rates.get(_kind(it), fallback) * len(it) * max(s.settings.train.epochs for s in it) for it in items]
+
+
+def deal(costs: list[float], workers: int) -> float:
+    """The finishing time of items dealt to ``workers`` longest first, each to the least
+    loaded worker (the longest-processing-time rule)."""
+    loads = [0.0] * max(1, min(workers, len(costs)))
+    for cost in sorted(costs, reverse=True):
         heapq.heapreplace(loads, loads[0] + cost)
     return max(loads)
 
 
-def describe_plan(
+def estimate_seconds(grid: Grid, todo: list, workers: int, stack: bool = True) -> float:
+    """Seconds of training for ``todo`` on ``workers`` processes (one thread each): the work
+    items `recipe run` would make, costed from short probes and dealt to the workers."""
+    items = work_items(grid, todo, stack)
+    if not items:
+        return 0.0
+    return deal(item_costs(items, probe_rates(items, grid)), workers)
+
+
+def plan_report(
     grid: Grid, store: Store | None, workers: int, probe: bool = True, stack: bool = True
 ) -> tuple[str, dict]:
     recipe = grid.recipe

@@ -24,7 +24,7 @@ class Plan:
     done: int
     to_run: list[Job]
 
-    def describe(self) -> str:
+    def summary_line(self) -> str:
         return f"{self.total} jobs, {self.done} done, {len(self.to_run)} to run"
 
 

@@ -179,105 +179,68 @@ def p_text(value) -> str:
     return "-" if value is None else f"{value:.2g}"
 
 
-def render_ablation(ab: Ablation, markdown: bool = False) -> str:
-    """The ablation tables of a leaderboard, as text or markdown."""
-    title = (lambda t: f"#### {t}") if markdown else (lambda t: t)
-    out: list[str] = []
+def _main_effects_lines(ab: Ablation, title, markdown: bool) -> list[str]:
     body = []
     for eff in ab.main_effects:
         for lvl in eff.levels:
             d = lvl.diff_vs_baseline
-            is_base = lvl.label == eff.baseline
-            body.append(
-                [
-                    eff.factor,
-                    lvl.label + (" (baseline)" if is_base else ""),
-                    number(lvl.mean),
-                    interval(lvl.ci95),
-                    "-" if d is None else f"{d.diff_mean:+.4f}",
-                    "-" if d is None else interval(d.ci95),
-                    "-" if d is None else p_text(d.p_value),
-                    "-" if d is None else f"{d.n_pairs}/{d.n_seeds}",
-                ]
-            )
-    if body:
-        out += [
-            "",
-            title(
-                f"Main effects on {ab.metric}: each level averaged over the other factors; "
-                "difference to the baseline paired over matched configurations and seeds"
-            ),
-            "",
-        ]
-        out += grid_lines(
-            ["factor", "level", "mean", "95% CI", "vs baseline", "95% CI", "p", "pairs/seeds"], body, markdown
-        )
+            label = lvl.label + (" (baseline)" if lvl.label == eff.baseline else "")
+            cells = ["-"] * 4 if d is None else [f"{d.diff_mean:+.4f}", interval(d.ci95), p_text(d.p_value),
+                                                  f"{d.n_pairs}/{d.n_seeds}"]  # fmt: skip
+            body.append([eff.factor, label, number(lvl.mean), interval(lvl.ci95), *cells])
+    if not body:
+        return []
+    head = (f"Main effects on {ab.metric}: each level averaged over the other factors; "
+            "difference to the baseline paired over matched configurations and seeds")  # fmt: skip
+    header = ["factor", "level", "mean", "95% CI", "vs baseline", "95% CI", "p", "pairs/seeds"]
+    return ["", title(head), "", *grid_lines(header, body, markdown)]
+
+
+def _one_at_a_time_lines(ab: Ablation, title, markdown: bool) -> list[str]:
     ofat = ab.one_at_a_time
-    if ofat and ofat.rows:
-        base = ", ".join(f"{k} = {v}" for k, v in ofat.baseline.items())
-        out += ["", title(f"One factor at a time from the baseline ({base}; mean {number(ofat.baseline_mean)})"), ""]
-        out += grid_lines(
-            ["factor", "changed to", "mean", "vs baseline", "95% CI", "p", "seeds"],
-            [
-                [
-                    r.factor,
-                    r.label,
-                    number(r.mean),
-                    "-" if r.diff_mean is None else f"{r.diff_mean:+.4f}",
-                    interval(r.ci95),
-                    p_text(r.p_value),
-                    str(r.n_pairs),
-                ]
-                for r in ofat.rows
-            ],
-            markdown,
-        )
+    if not ofat or not ofat.rows:
+        return []
+    base = ", ".join(f"{k} = {v}" for k, v in ofat.baseline.items())
+    body = [[r.factor, r.label, number(r.mean), "-" if r.diff_mean is None else f"{r.diff_mean:+.4f}",
+             interval(r.ci95), p_text(r.p_value), str(r.n_pairs)] for r in ofat.rows]  # fmt: skip
+    header = ["factor", "changed to", "mean", "vs baseline", "95% CI", "p", "seeds"]
+    head = f"One factor at a time from the baseline ({base}; mean {number(ofat.baseline_mean)})"
+    return ["", title(head), "", *grid_lines(header, body, markdown)]
+
+
+def _interaction_lines(ab: Ablation, title, markdown: bool) -> list[str]:
+    out: list[str] = []
     for inter in ab.interactions:
         a_levels = list(next(iter(inter.means.values())).keys()) if inter.means else []
-        rows = [
-            [bl, *[number(row[a]) for a in a_levels], inter.best_a_by_b[bl] or "-"] for bl, row in inter.means.items()
-        ]
+        rows = [[bl, *[number(row[a]) for a in a_levels], inter.best_a_by_b[bl] or "-"]
+                for bl, row in inter.means.items()]  # fmt: skip
         verdict = "depends on" if inter.depends else "does not depend on"
         out += ["", title(f"Interaction: the best {inter.a} {verdict} {inter.b} (means)"), ""]
         out += grid_lines([f"{inter.b} \\ {inter.a}", *a_levels, "best"], rows, markdown)
+    return out
+
+
+def _views_lines(ab: Ablation, title, markdown: bool) -> list[str]:
+    out: list[str] = []
     if ab.regularization:
         out += ["", title("Regularization: val metric, train-val gap and weight sparsity"), ""]
-        out += grid_lines(
-            ["factor", "level", "n", "mean", "gap", "zero w", "near-zero w"],
-            [
-                [
-                    r.factor,
-                    r.label,
-                    str(r.n),
-                    number(r.mean),
-                    number(r.gap),
-                    number(r.zero_fraction, 3),
-                    number(r.near_zero_fraction, 3),
-                ]
-                for r in ab.regularization
-            ],
-            markdown,
-        )
+        out += grid_lines(["factor", "level", "n", "mean", "gap", "zero w", "near-zero w"],
+                          [[r.factor, r.label, str(r.n), number(r.mean), number(r.gap),
+                            number(r.zero_fraction, 3), number(r.near_zero_fraction, 3)]
+                           for r in ab.regularization], markdown)  # fmt: skip
     if ab.optimization:
-        out += [
-            "",
-            title("Optimization: epochs to reach 95% of each job's best val metric, final train loss, divergences"),
-            "",
-        ]
-        out += grid_lines(
-            ["factor", "level", "n", "mean", "epochs to 95%", "final loss", "diverged"],
-            [
-                [
-                    r.factor,
-                    r.label,
-                    str(r.n),
-                    number(r.mean),
-                    number(r.epochs_to_95pct, 1),
-                    number(r.final_train_loss),
-                    str(r.diverged),
-                ]
-                for r in ab.optimization
-            ],
-            markdown,
-        )
+        out += ["", title("Optimization: epochs to reach 95% of each job's best val metric, final train loss, "
+                          "divergences"), ""]  # fmt: skip
+        out += grid_lines(["factor", "level", "n", "mean", "epochs to 95%", "final loss", "diverged"],
+                          [[r.factor, r.label, str(r.n), number(r.mean), number(r.epochs_to_95pct, 1),
+                            number(r.final_train_loss), str(r.diverged)] for r in ab.optimization],
+                          markdown)  # fmt: skip
+    return out
+
+
+def render_ablation(ab: Ablation, markdown: bool = False) -> str:
+    """The ablation tables of a leaderboard, as text or markdown."""
+    title = (lambda t: f"#### {t}") if markdown else (lambda t: t)
+    out = [*_main_effects_lines(ab, title, markdown), *_one_at_a_time_lines(ab, title, markdown),
+           *_interaction_lines(ab, title, markdown), *_views_lines(ab, title, markdown)]  # fmt: skip
     return "\n".join(out) + ("\n" if out else "")

@@ -253,14 +253,16 @@ def validate_table(raw: Any, table: Mapping[str, Param], prefix: str) -> dict[st
         if param.table is not None:
             out[key] = validate_table(raw.get(key, {}), param.table, path)
             continue
+        constraint = param.constraint
+        assert constraint is not None, path  # every leaf has one (tests/test_components.py)
         if key not in raw:
             if param.default is MISSING:
-                raise RecipeError("is required", key=path, allowed=param.constraint.allowed())
+                raise RecipeError("is required", key=path, allowed=constraint.allowed())
             out[key] = param.default
             continue
         value = raw[key]
         try:
-            out[key] = param.constraint.check(value)
+            out[key] = constraint.check(value)
         except Invalid as bad:
             raise RecipeError(bad.problem, key=path, value=value, allowed=bad.allowed, hint=bad.hint) from None
     return out

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from runner.components.lr_schedules import check_schedule
-from runner.components.metrics import METRICS, for_task
+from runner.components.metrics import METRICS, Task, for_task
 from runner.components.optimizers import check_optimizer
 from runner.datasets.sources import Dataset, load_dataset, source_key
 from runner.errors import DataError, RecipeError, UserError
@@ -131,7 +131,7 @@ def _expand(recipe: Recipe) -> Grid:
     configs: list[Config] = []
     task = None
     for combo in itertools.product(*(range(len(f.levels)) for f in factors)):
-        assign = {}
+        assign: dict[str, Any] = {}
         for f, i in zip(factors, combo):
             assign.update(zip(f.paths, f.levels[i]))
         if _excluded(assign, recipe.exclude):
@@ -184,7 +184,8 @@ def _expand(recipe: Recipe) -> Grid:
             key="exclude",
             hint="Loosen or remove an [[exclude]] rule",
         )
-    rank_by = recipe.rank_by or ("val.accuracy" if task == "classification" else "val.rmse")
+    assert task is not None  # configs is not empty
+    rank_by = recipe.rank_by or ("val.accuracy" if task is Task.CLASSIFICATION else "val.rmse")
     metric = rank_by.split(".", 1)[1]
     if METRICS[metric][0] != task:
         raise RecipeError(

@@ -31,7 +31,8 @@ from runner.recipe.constraints import (
     suggest,
     validate_table,
 )
-from runner.recipe.settings import SECTIONS, Settings, all_paths, param_at
+from runner.recipe.factors import Factor, parse_baseline, parse_exclude, parse_factors
+from runner.recipe.settings import SECTIONS, Settings
 
 __all__ = [
     "DiagnosticThresholds",
@@ -113,21 +114,6 @@ class DiagnosticThresholds:
     dead_above: float = 0.5
     saturated_above: float = 0.5
     gap_above: float = 0.1
-
-
-@dataclass(frozen=True, slots=True)
-class Factor:
-    """A factor: one path, or several linked paths whose levels move together."""
-
-    name: str
-    paths: tuple[str, ...]
-    levels: tuple[tuple[Any, ...], ...]  # levels[i][j] = value of paths[j] at level i
-    names: tuple[str, ...] | None = None  # optional level names of a linked factor
-
-    def label(self, i: int) -> str:
-        if self.names:
-            return self.names[i]
-        return "/".join(_fmt(v) for v in self.levels[i])
 
 
 @dataclass(frozen=True, slots=True)
@@ -218,9 +204,9 @@ def recipe_from_tables(raw: dict, text: str, path: Path) -> Recipe:
     rank_by = raw.get("rank_by")
     if rank_by is not None:
         rank_by = _rank_by(rank_by)
-    factors = _factors(raw.get("factors", {}), sections)
-    exclude = _exclude(raw.get("exclude", []), factors)
-    baseline = _baseline(raw.get("baseline", {}), factors)
+    factors = parse_factors(raw.get("factors", {}), sections)
+    exclude = parse_exclude(raw.get("exclude", []), factors)
+    baseline = parse_baseline(raw.get("baseline", {}), factors)
     diagnostics = DiagnosticThresholds(**validate_table(raw.get("diagnostics", {}), DIAGNOSTICS, "diagnostics"))
     run = RunSettings(**validate_table(raw.get("run", {}), RUN, "run"))
     tracking = TrackingSettings(**validate_table(raw.get("tracking", {}), TRACKING, "tracking"))
@@ -297,171 +283,6 @@ def _rank_by(value: Any) -> str:
             hint=f'Did you mean "val.{near}"?' if near else None,
         )
     return value
-
-
-def _check_path(path: str, key: str) -> Param:
-    param = param_at(path)
-    if param is None:
-        near = suggest(path, all_paths())
-        raise RecipeError(
-            "is not a setting that can vary" + (f'; did you mean "{near}"?' if near else ""),
-            key=key,
-            allowed='a dotted path such as "train.lr" or "model.hidden"',
-        )
-    return param
-
-
-def _check_level(param: Param, value: Any, key: str) -> Any:
-    if param.constraint is None:
-        return value
-    try:
-        return param.constraint.check(value)
-    except Invalid as bad:
-        raise RecipeError(bad.problem, key=key, value=value, allowed=bad.allowed, hint=bad.hint) from None
-
-
-def _factors(raw: Any, sections: dict) -> tuple[Factor, ...]:
-    if not isinstance(raw, dict):
-        raise RecipeError("must be a table", key="factors", value=raw)
-    factors, seen = [], {}
-    for name, spec in raw.items():
-        key = f'factors."{name}"'
-        names = None
-        if isinstance(spec, dict):  # linked: several paths, equal-length level lists
-            spec = dict(spec)
-            names = spec.pop("labels", None)
-            if not spec:
-                raise RecipeError("a linked factor needs at least one path", key=key)
-            paths = tuple(spec)
-            lengths = {len(v) if isinstance(v, list) else -1 for v in spec.values()}
-            if -1 in lengths:
-                raise RecipeError("each linked path needs a list of levels", key=key)
-            if len(lengths) != 1:
-                raise RecipeError(
-                    "linked level lists must have equal lengths", key=key, value={p: len(v) for p, v in spec.items()}
-                )
-            columns = [spec[p] for p in paths]
-        elif isinstance(spec, list):
-            paths, columns = (name,), [spec]
-        else:
-            raise RecipeError(
-                "must be a list of levels, or a table of linked paths",
-                key=key,
-                value=spec,
-                allowed='e.g. "train.lr" = [0.1, 0.01]',
-            )
-        for path in paths:
-            pkey = key if len(paths) == 1 else f'{key}."{path}"'
-            param = _check_path(path, pkey)
-            if path in seen:
-                raise RecipeError(f'is already varied by factor "{seen[path]}"', key=pkey)
-            seen[path] = name
-            column = columns[paths.index(path)]
-            if not column:
-                raise RecipeError("has no levels", key=pkey, allowed="a list of at least one level")
-            for i, value in enumerate(column):
-                column[i] = _check_level(param, value, f"{pkey}[{i}]")
-        levels = tuple(zip(*columns))
-        if len(set(map(_freeze, levels))) != len(levels):
-            raise RecipeError("levels must not repeat", key=key, value=[list(l) for l in levels])
-        if names is not None:
-            ok = (
-                isinstance(names, list)
-                and len(names) == len(levels)
-                and all(isinstance(n, str) and n.strip() for n in names)
-                and len(set(names)) == len(names)
-            )
-            if not ok:
-                raise RecipeError(
-                    "labels must be distinct non-empty strings, one per level",
-                    key=f"{key}.labels",
-                    value=names,
-                    allowed=f"a list of {len(levels)} distinct names",
-                )
-            names = tuple(names)
-        factors.append(Factor(name=name, paths=paths, levels=levels, names=names))
-    return tuple(factors)
-
-
-def _exclude(raw: Any, factors: tuple[Factor, ...]) -> tuple[Mapping[str, Any], ...]:
-    if not isinstance(raw, list) or not all(isinstance(r, dict) for r in raw):
-        raise RecipeError(
-            "must be a list of tables",
-            key="exclude",
-            value=raw,
-            allowed='e.g. [[exclude]] with "train.optimizer" = "sgd"',
-        )
-    by_path = {p: (f, j) for f in factors for j, p in enumerate(f.paths)}
-    out = []
-    for i, rule in enumerate(raw):
-        if not rule:
-            raise RecipeError("an empty rule would exclude everything", key=f"exclude[{i}]")
-        for path, value in rule.items():
-            if path not in by_path:
-                raise RecipeError(
-                    "names no factor path",
-                    key=f'exclude[{i}]."{path}"',
-                    allowed=", ".join(f'"{p}"' for p in sorted(by_path)) or "(no factors)",
-                )
-            factor, j = by_path[path]
-            values = [lvl[j] for lvl in factor.levels]
-            if _freeze(value) not in map(_freeze, values):
-                raise RecipeError(
-                    "is not one of the factor's levels, so the rule never applies",
-                    key=f'exclude[{i}]."{path}"',
-                    value=value,
-                    allowed=", ".join(_fmt(v) for v in values),
-                )
-        out.append(MappingProxyType(dict(rule)))
-    return tuple(out)
-
-
-def _baseline(raw: Any, factors: tuple[Factor, ...]) -> dict[str, int]:
-    if not isinstance(raw, dict):
-        raise RecipeError("must be a table of factor = level", key="baseline", value=raw)
-    by_name = {f.name: f for f in factors}
-    chosen = {}
-    for name, value in raw.items():
-        if name not in by_name:
-            raise RecipeError(
-                "names no factor",
-                key=f'baseline."{name}"',
-                allowed=", ".join(f'"{n}"' for n in sorted(by_name)) or "(no factors)",
-            )
-        factor = by_name[name]
-        wanted = tuple(value) if len(factor.paths) > 1 and isinstance(value, list) else (value,)
-        matches = [i for i, lvl in enumerate(factor.levels) if _freeze(lvl) == _freeze(wanted)]
-        if not matches and factor.names and value in factor.names:
-            matches = [factor.names.index(value)]
-        if not matches:
-            raise RecipeError(
-                "is not one of the factor's levels",
-                key=f'baseline."{name}"',
-                value=value,
-                allowed=", ".join(factor.label(i) for i in range(len(factor.levels))),
-            )
-        chosen[name] = matches[0]
-    return {f.name: chosen.get(f.name, 0) for f in factors}
-
-
-def _freeze(value: Any) -> Any:
-    if isinstance(value, (list, tuple)):
-        return tuple(_freeze(v) for v in value)
-    if isinstance(value, bool):
-        return ("bool", value)
-    if isinstance(value, (int, float)):
-        return float(value)
-    return value
-
-
-def _fmt(value: Any) -> str:
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, float):
-        return f"{value:g}"
-    if isinstance(value, (list, tuple)):
-        return "[" + ",".join(_fmt(v) for v in value) + "]"
-    return str(value)
 
 
 def _line_of(text: str, key: str | None) -> int | None:

@@ -8,6 +8,9 @@ exclusions that remove everything) only the validator can make: `recipe check` d
 
 from __future__ import annotations
 
+from collections.abc import Mapping
+from typing import Any
+
 from runner.components.metrics import METRICS
 from runner.errors import MISSING
 from runner.recipe.constraints import Boolean, Choice, Either, Integer, IntList, Param, Pattern, Real, Text
@@ -65,7 +68,7 @@ def _param(p: Param) -> dict:
     return out
 
 
-def _table(table: dict, doc: str = "") -> dict:
+def _table(table: Mapping[str, Param], doc: str = "") -> dict:
     out = {
         "type": "object",
         "additionalProperties": False,
@@ -80,12 +83,14 @@ def _table(table: dict, doc: str = "") -> dict:
 
 
 def _levels(path: str) -> dict:
-    return {"type": "array", "minItems": 1, "items": _constraint(param_at(path).constraint)}
+    param = param_at(path)
+    assert param is not None and param.constraint is not None, path
+    return {"type": "array", "minItems": 1, "items": _constraint(param.constraint)}
 
 
 def recipe_schema() -> dict:
     paths = all_paths()
-    linked = {
+    linked: dict[str, Any] = {
         "type": "object",
         "minProperties": 1,
         "description": "a linked factor: paths whose level lists move together, position by position",

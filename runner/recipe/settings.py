@@ -118,7 +118,7 @@ def all_paths() -> list[str]:
 
 def param_at(path: str) -> Param | None:
     parts = path.split(".")
-    table = SECTIONS.get(parts[0])
+    table: Mapping[str, Param] | None = SECTIONS.get(parts[0])
     param = None
     for part in parts[1:]:
         if table is None or part not in table:
@@ -216,7 +216,7 @@ class Settings:
         """From the validated tables (``constraints.validate_table`` output)."""
         data = dict(raw["data"])
         data["split"] = SplitSettings(**data["split"])
-        model = {k: tuple(v) if isinstance(v, list) else v for k, v in raw["model"].items()}
+        model: dict[str, Any] = {k: tuple(v) if isinstance(v, list) else v for k, v in raw["model"].items()}
         return cls(DataSettings(**data), ModelSettings(**model), TrainSettings(**raw["train"]))
 
     def to_dict(self) -> dict[str, dict[str, Any]]:
