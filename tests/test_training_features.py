@@ -146,7 +146,10 @@ def test_vanishing_gradient_flag_on_deep_sigmoid_not_on_relu(tmp_path):
     doc = json.loads(
         invoke("run", path, "--store", tmp_path / "s.sqlite", "-q", "--format", "json", "--workers", 2).stdout
     )
-    flags = {(r["levels"]["model.init"], r["levels"]["model.activation"]): r["flags"] for r in doc["rows"]}
+    flags = {
+        (r["levels"]["model.init"], r["levels"]["model.activation"]): [f["text"] for f in r["flags"]]
+        for r in doc["rows"]
+    }
     for init in ("zeros", "glorot_uniform", "orthogonal"):
         assert "vanishing gradients" in flags[(init, "sigmoid")]
     assert "vanishing gradients" in flags[("zeros", "relu")]

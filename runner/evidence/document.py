@@ -21,6 +21,7 @@ __all__ = [
     "Comparison",
     "Counts",
     "Environment",
+    "Flag",
     "Interaction",
     "Leaderboard",
     "LevelEffect",
@@ -74,6 +75,15 @@ class Comparison:
 
 
 @dataclass(frozen=True)
+class Flag:
+    """A failure mode seen in a configuration's jobs: a stable ``code`` (JSON consumers and
+    the legend key on it) and the ``text`` the board prints (e.g. "diverged 2/5")."""
+
+    code: str
+    text: str
+
+
+@dataclass(frozen=True)
 class Row:
     """One configuration: its levels, its rank metric over seeds and what went wrong."""
 
@@ -89,7 +99,7 @@ class Row:
     test_per_seed: dict[str, float]
     counts: Counts
     diagnostics: dict[str, float | None]
-    flags: list[str]
+    flags: list[Flag]
     rank: int | None = None
     vs_best: Comparison | None = None
     top_group: bool | None = None
@@ -299,7 +309,7 @@ def _row(raw: dict[str, Any]) -> Row:
         test_per_seed=raw["test_per_seed"],
         counts=_counts(raw["counts"]),
         diagnostics=raw["diagnostics"],
-        flags=raw["flags"],
+        flags=[Flag(**f) for f in raw["flags"]],
         rank=raw.get("rank"),
         vs_best=Comparison(**vs) if vs else None,
         top_group=raw.get("top_group"),

@@ -9,6 +9,8 @@ from __future__ import annotations
 import statistics
 from typing import TYPE_CHECKING, Any
 
+from runner.evidence.document import Flag
+
 if TYPE_CHECKING:
     from runner.evidence.document import Counts
     from runner.recipe.loader import DiagnosticThresholds
@@ -31,27 +33,27 @@ def _median(diags: list[dict[str, Any]], name: str) -> float | None:
     return statistics.median(values) if values else None
 
 
-def flags(diags: list[dict[str, Any]], counts: Counts, th: DiagnosticThresholds) -> list[str]:
+def flags(diags: list[dict[str, Any]], counts: Counts, th: DiagnosticThresholds) -> list[Flag]:
     out = []
     total = counts.finished
     if counts.diverged:
-        out.append(f"diverged {counts.diverged}/{total}")
+        out.append(Flag("diverged", f"diverged {counts.diverged}/{total}"))
     if counts.failed:
-        out.append(f"failed {counts.failed}/{total}")
+        out.append(Flag("failed", f"failed {counts.failed}/{total}"))
     if counts.timeout:
-        out.append(f"timed out {counts.timeout}/{total}")
+        out.append(Flag("timed_out", f"timed out {counts.timeout}/{total}"))
     ratio = _median(diags, "grad_ratio")
     if ratio is not None and ratio < th.vanishing_below:
-        out.append("vanishing gradients")
+        out.append(Flag("vanishing_gradients", "vanishing gradients"))
     if ratio is not None and ratio > th.exploding_above:
-        out.append("exploding gradients")
+        out.append(Flag("exploding_gradients", "exploding gradients"))
     dead = _median(diags, "dead_fraction")
     if dead is not None and dead > th.dead_above:
-        out.append("dead units")
+        out.append(Flag("dead_units", "dead units"))
     sat = _median(diags, "saturated_fraction")
     if sat is not None and sat > th.saturated_above:
-        out.append("saturated units")
+        out.append(Flag("saturated_units", "saturated units"))
     gap = _median(diags, "gap")
     if gap is not None and gap > th.gap_above:
-        out.append("overfitting")
+        out.append(Flag("overfitting", "overfitting"))
     return out

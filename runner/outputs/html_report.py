@@ -71,7 +71,7 @@ def _table(doc: Leaderboard) -> str:
     for row in doc.rows:
         cells = [str(row.rank or "-"), *[html.escape(row.labels[n]) for n in names], str(row.n)]
         nums = [number(row.mean), number(row.std), interval(row.ci95), number(row.test_mean)]
-        flags = ", ".join(row.flags)
+        flags = ", ".join(f.text for f in row.flags)
         body.append(
             f'<tr class="{"top" if row.top_group else ""}">'
             + "".join(f"<td>{c}</td>" for c in cells)

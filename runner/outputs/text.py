@@ -54,7 +54,7 @@ def _columns(doc: Leaderboard) -> tuple[list[str], list[list[str]]]:
                 interval(row.ci95),
                 number(row.test_mean),
                 versus(row),
-                ", ".join(row.flags) or "",
+                ", ".join(f.text for f in row.flags),
             ]
         )
     return header, body
@@ -151,7 +151,7 @@ def _csv(doc: Leaderboard) -> str:
                 row.top_group,
                 row.counts.diverged,
                 row.counts.failed,
-                ";".join(row.flags),
+                ";".join(f.code for f in row.flags),
                 *[row.per_seed.get(s) for s in seeds],
             ]
         )
