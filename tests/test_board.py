@@ -22,17 +22,23 @@ def test_json_document_keys_and_values(finished):
     result = invoke("board", recipe, "--store", store, "--format", "json")
     assert result.exit_code == 0
     doc = json.loads(result.stdout)
-    assert doc["format"] == "recipe-leaderboard" and doc["version"] == 1
+    assert doc["format"] == "recipe-leaderboard" and doc["version"] == 2
     assert doc["metric"] == "val.accuracy" and doc["goal"] == "max"
     assert len(doc["rows"]) == 2
+    # each seed redraws train/val: the interval's variance is (1/n + n_val/n_train) s^2
+    # (Nadeau & Bengio 2003), with the split sizes the jobs stored
+    n_val, n_train = doc["protocol"]["n_val"], doc["protocol"]["n_train"]
+    assert (n_val, n_train) == (30, 90)  # iris 150 rows: test 30, then val 0.25 of the other 120
     for row in doc["rows"]:
-        assert set(row) >= {"levels", "n", "mean", "std", "ci95", "per_seed", "test_mean", "counts"}
+        assert set(row) >= {"levels", "n", "mean", "std", "ci95", "per_seed", "test_mean", "counts", "possibly_best"}
         values = list(row["per_seed"].values())
         assert row["n"] == 2 and set(row["per_seed"]) == {"1", "2"}
         assert row["mean"] == pytest.approx(np.mean(values))
         assert row["std"] == pytest.approx(np.std(values, ddof=1))
-        half = st.t.ppf(0.975, 1) * row["std"] / np.sqrt(2)  # 12.7062 for 1 df (t table)
-        assert row["ci95"] == [pytest.approx(row["mean"] - half), pytest.approx(row["mean"] + half)]
+        if row["std"] > 0:
+            half = st.t.ppf(0.975, 1) * row["std"] * np.sqrt(1 / 2 + n_val / n_train)  # 12.7062 for 1 df
+            assert row["ci95"] == [pytest.approx(row["mean"] - half), pytest.approx(row["mean"] + half)]
+    assert len(doc["data"]["test_fingerprints"]) == 1  # one test split for every job
     means = [r["mean"] for r in doc["rows"]]
     assert means == sorted(means, reverse=True)
     assert any("optimistic" in c for c in doc["cautions"])

@@ -46,13 +46,14 @@ def test_split_matches_sklearn_stratified_80_20():
 
 @pytest.mark.parametrize("stratify", [True, False])
 def test_split_rows_are_exactly_sklearn_train_test_split(stratify):
-    """Row for row and in order, the splits are sklearn's train_test_split applied twice
-    (test first, then val from the rest), stratified or not."""
+    """Row for row and in order, the splits are sklearn's train_test_split applied twice: the
+    test rows first with test_seed (the same rows for every job), then val from the rest
+    with the job's seed, stratified or not."""
     ds = load_dataset(settings(source="wine"), DATA)
-    data = settings(source="wine", split={"val": 0.2, "test": 0.25, "stratify": stratify})
+    data = settings(source="wine", split={"val": 0.2, "test": 0.25, "stratify": stratify, "test_seed": 11})
     sp = split_and_scale(ds, data, seed=7)
     idx = np.arange(len(ds.y))
-    rest, test_idx = train_test_split(idx, test_size=0.25, random_state=7, stratify=ds.y if stratify else None)
+    rest, test_idx = train_test_split(idx, test_size=0.25, random_state=11, stratify=ds.y if stratify else None)
     train_idx, val_idx = train_test_split(
         rest, test_size=0.2 / 0.75, random_state=7, stratify=ds.y[rest] if stratify else None
     )
@@ -71,7 +72,7 @@ def test_standardization_uses_training_rows_only():
     sp = split_and_scale(ds, data, seed=3)
     flat = ds.X.reshape(len(ds.X), -1)
     idx = np.arange(len(ds.y))
-    rest, _ = train_test_split(idx, test_size=0.2, random_state=3, stratify=ds.y)
+    rest, _ = train_test_split(idx, test_size=0.2, random_state=0, stratify=ds.y)  # test_seed 0
     train_idx, _ = train_test_split(rest, test_size=0.25, random_state=3, stratify=ds.y[rest])
     assert np.allclose(sp.scaler_mean, flat[train_idx].mean(axis=0), atol=1e-5)
     assert not np.allclose(sp.scaler_mean, flat.mean(axis=0), atol=1e-3)
@@ -100,3 +101,37 @@ def test_csv_errors_name_the_column_and_line(tmp_path):
     short.write_text("a,b,y\n1,2\n")
     with pytest.raises(DataError, match="row has 2 fields"):
         load_dataset(settings(source="short.csv", target="y"), tmp_path)
+
+
+def test_the_test_rows_are_the_same_for_every_seed_and_never_in_validation():
+    """The audit found 55-59% of one seed's test rows were another seed's validation rows on
+    digits; now every seed's test rows are one set, disjoint from every seed's train and val."""
+    ds = load_dataset(settings(source="digits"), DATA)
+    data = settings(source="digits")
+    splits = [split_and_scale(ds, data, seed=s) for s in range(1, 6)]
+    tests = {tuple(sorted(sp.rows.test)) for sp in splits}
+    assert len(tests) == 1
+    test = set(next(iter(tests)))
+    for sp in splits:
+        assert not test & set(sp.rows.val) and not test & set(sp.rows.train)
+    assert len({sp.rows.record()["test_rows"] for sp in splits}) == 1
+    assert len({tuple(sorted(sp.rows.val)) for sp in splits}) == 5  # resample: each seed its own val
+
+
+def test_fixed_validation_is_one_split_and_folds_are_sklearn_stratified_kfold():
+    """fixed: every seed the same train/val rows. folds: fold f of seed s is sklearn's
+    StratifiedKFold(k, shuffle=True, random_state=s) on the non-test rows, and the k folds
+    of a seed partition them."""
+    from sklearn.model_selection import StratifiedKFold
+
+    ds = load_dataset(settings(source="wine"), DATA)
+    fixed = settings(source="wine", split={"validation": "fixed"})
+    vals = {tuple(split_and_scale(ds, fixed, seed=s).rows.val) for s in (1, 2, 3)}
+    assert len(vals) == 1
+    folds = settings(source="wine", split={"validation": "folds", "folds": 4})
+    rows = [split_and_scale(ds, folds, seed=9, fold=f).rows for f in range(4)]
+    rest = np.setdiff1d(np.arange(len(ds.y)), rows[0].test)
+    ref = list(StratifiedKFold(4, shuffle=True, random_state=9).split(rest, ds.y[rest]))
+    for got, (train, val) in zip(rows, ref):
+        assert np.array_equal(got.val, rest[val]) and np.array_equal(got.train, rest[train])
+    assert np.array_equal(np.sort(np.concatenate([r.val for r in rows])), rest)

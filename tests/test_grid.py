@@ -92,3 +92,23 @@ def test_adding_a_level_reruns_only_the_new_configuration(tmp_path):
     assert "9 jobs, 6 done, 3 to run" in result.stderr
     again = invoke("run", path, "--store", store, "--workers", 1)
     assert "9 jobs, 9 done, 0 to run" in again.stderr
+
+
+def test_rank_by_is_part_of_a_job_only_when_early_stopping_watches_it(tmp_path):
+    """Changing rank_by reruns nothing without early stopping (the audit found every job
+    rerun); with train.patience > 0 the monitored metric decides the epochs, so it reruns."""
+    from conftest import write_recipe
+
+    def keys(rank_by, patience):
+        text = f"""
+            name = "k"
+            rank_by = "{rank_by}"
+            [data]
+            source = "iris"
+            [train]
+            patience = {patience}
+        """
+        return [j.key for j in expand(load_recipe(write_recipe(tmp_path, text)))]
+
+    assert keys("val.accuracy", 0) == keys("val.log_loss", 0)
+    assert keys("val.accuracy", 3) != keys("val.log_loss", 3)

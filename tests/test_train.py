@@ -99,27 +99,27 @@ def test_digits_mlp_sanity_band(tmp_path):
         assert c.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
 
 
-def test_failed_job_is_recorded_and_grid_goes_on(tmp_path):
-    """A job that raises is stored as failed with its message; the others still finish."""
+def test_failed_job_is_recorded_and_grid_goes_on(tmp_path, monkeypatch):
+    """A job that raises is stored as failed with its message; the others still finish.
+    The first job raises at its second epoch (RECIPE_FAULT=raise@1, fired once)."""
     path = write_recipe(
         tmp_path,
         """
         name = "f"
-        seeds = [1]
+        seeds = [1, 2]
         [data]
         source = "iris"
-        split = { val = 0.01, test = 0.0, stratify = true }
         [train]
-        epochs = 2
-        [factors]
-        "data.split.stratify" = [true, false]
+        epochs = 3
     """,
     )
-    # A 2-row validation set cannot hold all three classes: the stratified job fails.
+    monkeypatch.setenv("RECIPE_FAULT", "raise@1")
+    monkeypatch.setenv("RECIPE_FAULT_ONCE", str(tmp_path / "fired"))
     store = tmp_path / "s.sqlite"
-    result = invoke("run", path, "--store", store, "-q", "--workers", 1)
+    result = invoke("run", path, "--store", store, "-q", "--workers", 1, "--no-stack")
     assert result.exit_code == 0
     with sqlite3.connect(store) as c:
         rows = dict(c.execute("SELECT status, error FROM jobs"))
+        epochs = dict(c.execute("SELECT status, epochs_run FROM jobs"))
     assert set(rows) == {"failed", "done"}
-    assert "cannot split" in rows["failed"]
+    assert rows["failed"] == "RuntimeError: fault injected at epoch 2" and epochs["failed"] == 1

@@ -9,6 +9,7 @@ import click
 
 from runner.cli.common import fail, format_option, load_grid, store_option, store_path
 from runner.errors import UserError
+from runner.recipe.loader import check_rank_by
 
 
 @click.command()
@@ -21,7 +22,19 @@ from runner.errors import UserError
     is_flag=True,
     help="Add the ablation tables (main effects, interactions, regularization and optimizer views).",
 )
-def board(recipe_path, store, fmt, out, ablation):
+@click.option(
+    "--rank-by",
+    default=None,
+    metavar="val.METRIC",
+    help="Rank the stored results on another validation metric (no retraining).",
+)
+@click.option(
+    "--margin",
+    type=click.FloatRange(0),
+    default=None,
+    help="Practical-equivalence margin in the metric's units (overrides [verdicts] margin; 0 = off).",
+)
+def board(recipe_path, store, fmt, out, ablation, rank_by, margin):
     """Print the leaderboard of RECIPE from its store, without training."""
     try:
         recipe, grid = load_grid(recipe_path)
@@ -29,8 +42,10 @@ def board(recipe_path, store, fmt, out, ablation):
         from runner.outputs.text import render, render_ablation
         from runner.store.database import Store
 
+        if rank_by is not None:
+            grid = grid.with_rank_by(check_rank_by(rank_by, "--rank-by"))
         with Store(store_path(recipe, store), create=False) as db:
-            doc = leaderboard(grid, db)
+            doc = leaderboard(grid, db, margin=margin)
         fmt = fmt or "table"
         text = render(doc, fmt)
         if ablation and fmt in ("table", "markdown"):
@@ -76,18 +91,31 @@ def status(recipe_path, store):
 @click.argument("old", type=click.Path())
 @click.argument("new", type=click.Path())
 @click.option("--format", "fmt", type=click.Choice(["table", "markdown", "json"]), default="table", show_default=True)
-@click.option("--fail-on-worse", is_flag=True, help="Exit 1 when any configuration got clearly worse.")
-def diff(old, new, fmt, fail_on_worse):
+@click.option(
+    "--fail-on-worse",
+    is_flag=True,
+    help="Exit 1 when any configuration regressed (Holm-corrected across configurations).",
+)
+@click.option(
+    "--min-change",
+    type=click.FloatRange(0),
+    default=0.0,
+    show_default=True,
+    help="Smallest change worth a verdict, in the metric's units (0: any change).",
+)
+@click.option("--alpha", type=click.FloatRange(0, 0.5, min_open=True, max_open=True), default=0.05, show_default=True,
+              help="Level of the verdicts: the chance of any false alarm across configurations.")  # fmt: skip
+def diff(old, new, fmt, fail_on_worse, min_change, alpha):
     """Compare two leaderboards: OLD and NEW are JSON exports, stores, or recipes."""
     from runner.evidence.diff import diff as compare
     from runner.evidence.diff import load_board, render_diff
 
     try:
-        result = compare(load_board(old), load_board(new))
+        result = compare(load_board(old), load_board(new), alpha=alpha, min_change=min_change)
     except UserError as err:
         fail(err)
     click.echo(render_diff(result, fmt), nl=False)
-    if fail_on_worse and result.summary["worse"]:
+    if fail_on_worse and result.failed:
         sys.exit(1)
 
 

@@ -102,10 +102,10 @@ def quick(metric: str, y_true: np.ndarray, output: np.ndarray, n_classes: int = 
         denom = cm.sum(axis=0) + cm.sum(axis=1)
         f1 = np.divide(2 * tp, denom, out=np.zeros(n_classes), where=denom > 0)
         return float(f1.mean())
-    if metric == "log_loss":  # probabilities clipped at 1e-15 and renormalized
-        probs = np.clip(output, 1e-15, 1.0)
-        probs = probs / probs.sum(axis=1, keepdims=True)
-        return float(-np.mean(np.log(probs[np.arange(len(y_true)), y_true])))
+    if metric == "log_loss":  # clipped to [eps, 1 - eps] with the dtype's machine eps, as sklearn does
+        eps = np.finfo(output.dtype).eps
+        probs = np.clip(output[np.arange(len(y_true)), y_true], eps, 1 - eps)
+        return float(-np.mean(np.log(probs)))
     err = y_true - output
     if metric == "rmse":
         return float(np.sqrt(np.mean(err**2)))

@@ -1,5 +1,14 @@
-"""Compare two leaderboards: configurations matched by their level labels, each change
-judged with Welch's unpaired interval (the runs are separate, so seeds do not pair).
+"""Compare two leaderboards of one grid (last week's and today's): configurations matched by
+their level labels, each change judged by the gate (gate.py).
+
+When both sides share at least two seeds, the data fingerprint, the test rows and the split
+settings, a seed's two values saw the same data order and initial weights, so changes are
+paired by seed (exact sign-flip test on a fixed split; the corrected t when splits are
+redrawn per seed); otherwise Welch's unpaired t, and the header says which. Holm's correction
+across configurations keeps the chance of any false alarm at the board's level
+(bench/verdicts.py measures it). The board's rule holds: a configuration with a seed that did
+not finish is not compared on its survivors; if that happened only in the new run it counts
+as a regression, only in the old one as an improvement.
 
 Inputs may be leaderboard JSON files (``recipe board --format json``), result stores, or
 recipes (read through their default store).
@@ -8,24 +17,24 @@ recipes (read through their default store).
 from __future__ import annotations
 
 import json
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 from typing import Any
 
 from runner.components.metrics import Goal
 from runner.errors import StoreError, UserError
-from runner.evidence import stats
 from runner.evidence.document import FORMAT as BOARD
-from runner.evidence.document import FORMAT_VERSION as BOARD_VERSION
 from runner.evidence.document import Leaderboard, Row
-from runner.outputs.text import grid_lines, interval, number, p_text
+from runner.evidence.gate import compare_runs, pairing
+from runner.evidence.protocols import FIXED, Resampling
+from runner.outputs.text import grid_lines, interval, number, p_text, signed
 from runner.recipe.grid import canonical
 
 __all__ = ["FORMAT", "VERDICTS", "ConfigChange", "Diff", "diff", "load_board", "render_diff"]
 
 FORMAT = "recipe-diff"
-VERSION = 1
-VERDICTS = ("better", "worse", "no clear change")
+VERSION = 2
+VERDICTS = ("regressed", "improved", "no shift shown", "too few seeds", "not comparable")
 ENV_KEYS = ("python", "torch", "numpy", "sklearn", "threads", "cpu")
 
 
@@ -38,15 +47,17 @@ class Side:
 
 @dataclass(frozen=True)
 class ConfigChange:
-    """One configuration present in both leaderboards."""
+    """One configuration present in both leaderboards: change = new - old (metric units),
+    its 95% interval, p for |true change| > min_change, Holm-adjusted, the verdict."""
 
     labels: dict[str, str]
     levels: dict[str, Any]
     old: Side
     new: Side
-    diff_mean: float | None
+    change: float | None
     ci95: list[float] | None
     p_value: float | None
+    p_holm: float | None
     rank_move: int | None
     verdict: str
     reason: str
@@ -58,11 +69,19 @@ class Diff:
     goal: Goal
     old: dict[str, str | None]  # recipe, source
     new: dict[str, str | None]
-    changes: list[dict[str, Any]]  # what, old, new
+    method: str  # how changes were judged (paired by seed or Welch, and why)
+    alpha: float
+    min_change: float
+    changes: list[dict[str, Any]]  # what else changed: what, old, new
     configs: list[ConfigChange]
     only_old: list[dict[str, str]]
     only_new: list[dict[str, str]]
     summary: dict[str, int]
+
+    @property
+    def failed(self) -> bool:
+        """Whether any configuration regressed (the CI gate's answer)."""
+        return self.summary["regressed"] > 0
 
     def to_json(self) -> dict[str, Any]:
         out = {"format": FORMAT, "version": VERSION, **asdict(self)}
@@ -72,8 +91,6 @@ class Diff:
 
 def load_board(path: str | Path, store: str | Path | None = None) -> Leaderboard:
     """A leaderboard from a JSON export, a store, or a recipe."""
-    from dataclasses import replace
-
     from runner.evidence.leaderboard import leaderboard
     from runner.recipe.grid import expand
     from runner.recipe.loader import load_recipe, parse_recipe
@@ -108,148 +125,138 @@ def load_board(path: str | Path, store: str | Path | None = None) -> Leaderboard
     try:
         doc = json.loads(path.read_text())
     except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise UserError(
-            f"not a leaderboard JSON file ({exc})",
-            where=str(path),
-            hint="Export one with: recipe board RECIPE --format json --out FILE",
-        ) from None
+        raise UserError(f"not a leaderboard JSON file ({exc})", where=str(path),
+                        hint="Export one with: recipe board RECIPE --format json --out FILE") from None  # fmt: skip
     if not isinstance(doc, dict) or doc.get("format") != BOARD:
-        raise UserError(
-            f'not a "{BOARD}" document', where=str(path), value=doc.get("format") if isinstance(doc, dict) else None
-        )
-    if doc.get("version") != BOARD_VERSION:
-        raise UserError(
-            "unsupported leaderboard version", where=str(path), value=doc.get("version"), allowed=str(BOARD_VERSION)
-        )
+        raise UserError(f'not a "{BOARD}" document', where=str(path),
+                        value=doc.get("format") if isinstance(doc, dict) else None)  # fmt: skip
+    if doc.get("version") not in (1, 2):
+        raise UserError("unsupported leaderboard version", where=str(path), value=doc.get("version"), allowed="1, 2")
     return Leaderboard.from_json(doc, source=str(path))
-
-
-def _verdict(old: Row, new: Row, goal: Goal) -> tuple[str, dict | None, str]:
-    a = list(old.per_seed.values())
-    b = list(new.per_seed.values())
-    if not b and a:
-        c = new.counts
-        return "worse", None, f"no finished seed in new ({c.diverged} diverged, {c.failed} failed)"
-    if not a and b:
-        return "better", None, "no finished seed in old"
-    test = stats.welch(b, a)
-    if test is None:
-        return "no clear change", None, "fewer than 2 seeds on a side"
-    if test["p_value"] < 0.05 and test["diff_mean"] != 0:
-        up = test["diff_mean"] > 0
-        return ("better" if up == (goal is Goal.MAX) else "worse"), test, ""
-    return "no clear change", test, ""
 
 
 def _changes(old: Leaderboard, new: Leaderboard) -> list[dict[str, Any]]:
     out = []
-    if old.metric != new.metric:
-        out.append({"what": "rank metric", "old": old.metric, "new": new.metric})
     ob, nb = old.base_settings, new.base_settings
     for key in sorted(set(ob) | set(nb)):
         if ob.get(key) != nb.get(key):
             out.append({"what": key, "old": ob.get(key), "new": nb.get(key)})
-    if old.data != new.data:
-        out.append(
-            {
-                "what": "data fingerprint",
-                "old": ",".join(d[:12] for d in old.data),
-                "new": ",".join(d[:12] for d in new.data),
-            }
-        )
-    oe = old.environment.first or {}
-    ne = new.environment.first or {}
-    for key in ENV_KEYS:
-        if oe.get(key) != ne.get(key):
-            out.append({"what": key, "old": oe.get(key), "new": ne.get(key)})
+    for what in ("fingerprints", "test_fingerprints"):
+        a, b = old.data.get(what, []), new.data.get(what, [])
+        if a != b:
+            out.append({"what": f"data {what.replace('_', ' ')}", "old": ",".join(d[:12] for d in a),
+                        "new": ",".join(d[:12] for d in b)})  # fmt: skip
+    oe, ne = old.environment.first or {}, new.environment.first or {}
+    out += [{"what": k, "old": oe.get(k), "new": ne.get(k)} for k in ENV_KEYS if oe.get(k) != ne.get(k)]
     if old.seeds != new.seeds:
         out.append({"what": "seeds", "old": old.seeds, "new": new.seeds})
     return out
 
 
-def diff(old: Leaderboard, new: Leaderboard) -> Diff:
+def _split_key(board: Leaderboard) -> dict[str, Any]:
+    return {k: v for k, v in board.protocol.items() if k in ("validation", "folds", "test_seed")}
+
+
+def _protocol(board: Leaderboard) -> Resampling:
+    p = board.protocol
+    if p.get("validation") == "resample" and p.get("n_val") and p.get("n_train"):
+        return Resampling.resample(p["n_val"], p["n_train"])
+    return FIXED  # fixed split; under folds each seed's value is already its fold mean
+
+
+def _failure_verdict(orow: Row, nrow: Row, goal: Goal) -> tuple[str, str] | None:
+    if orow.complete and not nrow.complete:
+        return "regressed", "a seed diverged, failed or timed out in the new run"
+    if nrow.complete and not orow.complete:
+        return "improved", "every seed finished in the new run, not in the old"
+    if not (orow.complete and nrow.complete):
+        return "not comparable", "seeds did not finish on both sides"
+    if not orow.per_seed or not nrow.per_seed:
+        return "not comparable", "no finished seed on a side"
+    return None
+
+
+def diff(old: Leaderboard, new: Leaderboard, alpha: float = 0.05, min_change: float = 0.0) -> Diff:
     if old.goal != new.goal or old.metric != new.metric:
-        raise UserError(
-            "the two leaderboards rank different metrics, so they cannot be compared",
-            value=f"{old.metric} vs {new.metric}",
-            hint="Export both with the same rank_by",
-        )
-    goal = new.goal
+        raise UserError("the two leaderboards rank different metrics, so they cannot be compared",
+                        value=f"{old.metric} vs {new.metric}", hint="Export both with the same rank_by")  # fmt: skip
     old_rows = {canonical(r.labels): r for r in old.rows}
     new_rows = {canonical(r.labels): r for r in new.rows}
-    configs = []
-    for key, nrow in new_rows.items():
-        if key not in old_rows:
-            continue
-        orow = old_rows[key]
-        verdict, test, reason = _verdict(orow, nrow, goal)
-        move = (orow.rank - nrow.rank) if orow.rank and nrow.rank else None
-        configs.append(
-            ConfigChange(
-                labels=nrow.labels,
-                levels=nrow.levels,
-                old=Side(orow.mean, orow.n, orow.rank),
-                new=Side(nrow.mean, nrow.n, nrow.rank),
-                diff_mean=test["diff_mean"] if test else None,
-                ci95=test["ci95"] if test else None,
-                p_value=test["p_value"] if test else None,
-                rank_move=move,
-                verdict=verdict,
-                reason=reason,
-            )
-        )
+    shared = [k for k in new_rows if k in old_rows]
+    same_split = bool(new.protocol) and _split_key(old) == _split_key(new) and (
+        old.data.get("test_fingerprints") == new.data.get("test_fingerprints"))  # fmt: skip
+    same_data = old.data.get("fingerprints") == new.data.get("fingerprints")
+    pair = pairing(old.seeds, new.seeds, same_data, same_split)
+    judged, verdicts = [], {}
+    for key in shared:
+        found = _failure_verdict(old_rows[key], new_rows[key], new.goal)
+        if found is None:
+            judged.append(key)
+        else:
+            verdicts[key] = found
+    gate = None
+    if judged:
+        seeds = [str(s) for s in pair.seeds]
+        values = [([old_rows[k].per_seed[s] for s in seeds if s in old_rows[k].per_seed and s in new_rows[k].per_seed],
+                   [new_rows[k].per_seed[s] for s in seeds if s in old_rows[k].per_seed and s in new_rows[k].per_seed])
+                  if pair.paired else (list(old_rows[k].per_seed.values()), list(new_rows[k].per_seed.values()))
+                  for k in judged]  # fmt: skip
+        gate = compare_runs([o for o, _ in values], [n for _, n in values], str(new.goal), paired=pair.paired,
+                            alpha=alpha, min_change=min_change, protocol=_protocol(new))  # fmt: skip
+    configs = [_config(old_rows[k], new_rows[k], verdicts.get(k), gate, judged) for k in shared]
     configs.sort(key=lambda c: (c.new.rank is None, c.new.rank or 0))
-    return Diff(
-        metric=new.metric,
-        goal=goal,
-        old={"recipe": old.recipe, "source": old.source},
-        new={"recipe": new.recipe, "source": new.source},
-        changes=_changes(old, new),
-        configs=configs,
-        only_old=[old_rows[k].labels for k in old_rows if k not in new_rows],
-        only_new=[new_rows[k].labels for k in new_rows if k not in old_rows],
-        summary={v: sum(1 for c in configs if c.verdict == v) for v in VERDICTS},
-    )
+    method = pair.reason + (f"; Holm across {len(judged)} configurations" if judged else "")
+    return Diff(metric=new.metric, goal=new.goal, old={"recipe": old.recipe, "source": old.source},
+                new={"recipe": new.recipe, "source": new.source}, method=method, alpha=alpha, min_change=min_change,
+                changes=_changes(old, new), configs=configs,
+                only_old=[old_rows[k].labels for k in old_rows if k not in new_rows],
+                only_new=[new_rows[k].labels for k in new_rows if k not in old_rows],
+                summary={v: sum(1 for c in configs if c.verdict == v) for v in VERDICTS})  # fmt: skip
+
+
+def _config(orow: Row, nrow: Row, failure, gate, judged: list[str]) -> ConfigChange:
+    move = (orow.rank - nrow.rank) if orow.rank and nrow.rank else None
+    sides = {"labels": nrow.labels, "levels": nrow.levels, "old": Side(orow.mean, orow.n, orow.rank),
+             "new": Side(nrow.mean, nrow.n, nrow.rank), "rank_move": move}  # fmt: skip
+    if failure is not None:
+        change = None if orow.mean is None or nrow.mean is None else nrow.mean - orow.mean
+        return ConfigChange(**sides, change=change, ci95=None, p_value=None, p_holm=None, verdict=failure[0],
+                            reason=failure[1])  # fmt: skip
+    c = gate.changes[judged.index(canonical(nrow.labels))]
+    ci = [c.low, c.high] if c.low is not None else None
+    return ConfigChange(**sides, change=c.change, ci95=ci, p_value=c.p_value, p_holm=c.p_adjusted, verdict=c.verdict,
+                        reason=c.method)  # fmt: skip
 
 
 def render_diff(d: Diff, fmt: str) -> str:
     if fmt == "json":
         return json.dumps(d.to_json(), indent=2) + "\n"
     md = fmt == "markdown"
-    lines = [
-        ("### " if md else "") + f"{d.old['source']} -> {d.new['source']}",
-        "",
-        f"Metric {d.metric} ({d.goal.words}); changes judged by Welch's t interval at the 5% level.",
-        "",
-    ]
+    floor = f", changes smaller than {d.min_change:g} not counted" if d.min_change else ""
+    lines = [("### " if md else "") + f"{d.old['source']} -> {d.new['source']}", "",
+             f"Metric {d.metric} ({d.goal.words}); {d.method}; level {d.alpha:g}{floor}.", ""]  # fmt: skip
     if d.changes:
         lines.append("What else changed:")
         lines += [f"- {c['what']}: {c['old']} -> {c['new']}" for c in d.changes]
     else:
-        lines.append("Nothing else changed: same settings outside the factors, data, libraries and threads.")
+        lines.append("Nothing else changed: same settings outside the factors, data, test rows, libraries and threads.")
     names = list(d.configs[0].labels) if d.configs else []
     body = []
     for c in d.configs:
         move = "-" if c.rank_move is None else (f"{c.rank_move:+d}" if c.rank_move else "0")
-        body.append(
-            [
-                *[str(c.labels[n]) for n in names],
-                number(c.old.mean),
-                number(c.new.mean),
-                "-" if c.diff_mean is None else f"{c.diff_mean:+.4f}",
-                interval(c.ci95),
-                p_text(c.p_value),
-                f"{c.old.rank or '-'}->{c.new.rank or '-'} ({move})",
-                c.verdict + (f" ({c.reason})" if c.reason else ""),
-            ]
-        )
-    lines += [""] + grid_lines([*names, "old", "new", "change", "95% CI", "p", "rank", "verdict"], body, md)
+        body.append([*[str(c.labels[n]) for n in names], number(c.old.mean), number(c.new.mean), signed(c.change),
+                     interval(c.ci95), p_text(c.p_holm), f"{c.old.rank or '-'}->{c.new.rank or '-'} ({move})",
+                     c.verdict])  # fmt: skip
+    header = [*names, "old", "new", "change", "95% CI", "p (Holm)", "rank", "verdict"]
+    lines += ["", *grid_lines(header, body, md)]
+    notes = [f"{', '.join(c.labels.values()) or 'base'}: {c.reason}" for c in d.configs
+             if c.verdict in ("regressed", "improved", "not comparable", "too few seeds")]  # fmt: skip
+    if notes:
+        lines += ["", *notes]
     for name, side in (("old", d.only_old), ("new", d.only_new)):
         if side:
-            lines += [
-                "",
-                f"Only in {name}: " + "; ".join(", ".join(f"{k} = {v}" for k, v in labels.items()) for labels in side),
-            ]
+            lines += ["", f"Only in {name}: " + "; ".join(", ".join(f"{k} = {v}" for k, v in labels.items())
+                                                        for labels in side)]  # fmt: skip
     s = d.summary
-    lines += ["", f"{s['better']} better, {s['worse']} worse, {s['no clear change']} no clear change."]
+    lines += ["", ", ".join(f"{s[v]} {v}" for v in VERDICTS if s[v] or v in ("regressed", "improved")) + "."]
     return "\n".join(lines) + "\n"

@@ -32,10 +32,11 @@ __all__ = [
     "OptimizationRow",
     "RegularizationRow",
     "Row",
+    "Verdict",
 ]
 
 FORMAT = "recipe-leaderboard"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 
 
 @dataclass(frozen=True)
@@ -62,16 +63,35 @@ class Counts:
 
 @dataclass(frozen=True)
 class Comparison:
-    """A row against the best row: paired over the seeds both finished."""
+    """A row against the top row, paired over the seeds both finished (supplementary: the
+    verdict is the selection-aware ``Verdict``). p_value is the exact sign-flip test on a
+    fixed split, the corrected t under resampled splits or folds (``basis`` says which);
+    ci95 is the paired interval with the protocol's variance (None without spread)."""
 
     diff_mean: float
     ci95: list[float] | None
-    t: float
-    df: int
     p_value: float
+    basis: str
     n_pairs: int
-    wilcoxon_p: float | None
     p_holm: float | None = None
+
+
+@dataclass(frozen=True)
+class Verdict:
+    """Where a configuration stands against the best of the others, from simultaneous
+    intervals over all configurations (the possibly-best set, selection-aware).
+
+    kind: "possibly_best" (cannot be ruled out as the best), "behind" (some other
+    configuration is better, at the board's level), "within_margin" (within +-margin of the
+    best, by two one-sided tests on the simultaneous bounds) or "no_verdict" (``reason``
+    says why). advantage: mean minus the best mean of the others, oriented so positive is
+    better, in metric units; low/high: its simultaneous bounds (None when not formed)."""
+
+    kind: str
+    advantage: float | None
+    low: float | None
+    high: float | None
+    reason: str = ""
 
 
 @dataclass(frozen=True)
@@ -100,9 +120,17 @@ class Row:
     counts: Counts
     diagnostics: dict[str, float | None]
     flags: list[Flag]
+    complete: bool = True  # no seed diverged, failed or timed out
     rank: int | None = None
+    verdict: Verdict | None = None
     vs_best: Comparison | None = None
-    top_group: bool | None = None
+    best_epoch_median: float | None = None  # under early stopping
+
+    @property
+    def possibly_best(self) -> bool | None:
+        if self.verdict is None or self.verdict.kind == "no_verdict":
+            return None
+        return self.verdict.kind in ("possibly_best", "within_margin")
 
     @property
     def label(self) -> str:
@@ -122,12 +150,15 @@ class Environment:
 
 @dataclass(frozen=True)
 class MatchedDifference:
-    """A level against its factor's baseline, over matched configurations and seeds."""
+    """A level against its factor's baseline, over matched configurations (contexts: the
+    other factors' levels) and seeds; p_value by ``basis`` (exact sign-flip on a fixed split,
+    the corrected t otherwise)."""
 
     diff_mean: float
     ci95: list[float] | None
     p_value: float | None
-    n_pairs: int
+    basis: str
+    n_contexts: int
     n_seeds: int
 
 
@@ -145,6 +176,9 @@ class MainEffect:
     factor: str
     baseline: str
     levels: list[LevelEffect]
+    contexts_used: int = 0  # contexts in which every level finished
+    contexts_total: int = 0
+    note: str = ""
 
 
 @dataclass(frozen=True)
@@ -156,6 +190,7 @@ class OneAtATimeRow:
     diff_mean: float | None
     ci95: list[float] | None
     p_value: float | None
+    basis: str = ""
 
 
 @dataclass(frozen=True)
@@ -171,7 +206,10 @@ class Interaction:
     b: str
     means: dict[str, dict[str, float | None]]  # level of b -> level of a -> mean
     best_a_by_b: dict[str, str | None]
-    depends: bool
+    depends: bool  # claimed only when an interaction contrast's simultaneous interval excludes 0
+    p_value: float | None = None  # the A x B F test with seeds as blocks
+    largest: dict[str, Any] | None = None  # the largest 2 x 2 contrast: estimate, low, high, levels
+    note: str = ""
 
 
 @dataclass(frozen=True)
@@ -206,6 +244,7 @@ class Ablation:
     interactions: list[Interaction]
     regularization: list[RegularizationRow]
     optimization: list[OptimizationRow]
+    protocol: str = "fixed"  # the validation protocol behind the intervals and p-values
 
     def to_json(self) -> dict[str, Any]:
         return _plain(self)
@@ -225,7 +264,10 @@ class Leaderboard:
     seeds: list[int]
     factors: list[dict[str, Any]]  # name, paths, levels (labels)
     base_settings: dict[str, Any]
-    data: list[str]  # data fingerprints
+    data: dict[str, list[str]]  # fingerprints (the data), test_fingerprints (the test rows)
+    protocol: dict[str, Any]  # validation, n_val, n_train, folds, test_seed, variance
+    evidence: dict[str, Any]  # alpha, margin, method, matched seeds, critical constant, ...
+    monitor: str  # the metric early stopping watched (the recipe's rank_by)
     jobs: Counts
     rows: list[Row]
     ablation: Ablation | None
@@ -245,12 +287,18 @@ class Leaderboard:
                 continue
             doc[f.name] = _plain(getattr(self, f.name))
         doc["jobs"]["total"] = self.jobs.total
+        for row, raw in zip(self.rows, doc["rows"]):
+            raw["possibly_best"] = row.possibly_best
         return doc
 
     @classmethod
     def from_json(cls, doc: dict[str, Any], source: str | None = None) -> Leaderboard:
-        """Read an exported document back; a malformed one is a UserError naming ``source``."""
+        """Read an exported document back (version 1 documents read as far as they go: no
+        protocol, so a diff against one cannot pair by seed); a malformed one is a UserError
+        naming ``source``."""
         try:
+            if doc.get("version") == 1:
+                doc = _upgrade_v1(doc)
             return cls(
                 recipe=doc["recipe"],
                 recipe_hash=doc["recipe_hash"],
@@ -262,7 +310,10 @@ class Leaderboard:
                 seeds=list(doc["seeds"]),
                 factors=list(doc["factors"]),
                 base_settings=dict(doc["base_settings"]),
-                data=list(doc["data"]),
+                data=dict(doc["data"]),
+                protocol=dict(doc["protocol"]),
+                evidence=dict(doc["evidence"]),
+                monitor=doc["monitor"],
                 jobs=_counts(doc["jobs"]),
                 rows=[_row(r) for r in doc["rows"]],
                 ablation=None,
@@ -276,6 +327,15 @@ class Leaderboard:
                 where=source,
                 hint="Export one with: recipe board RECIPE --format json --out FILE",
             ) from None
+
+
+def _upgrade_v1(doc: dict[str, Any]) -> dict[str, Any]:
+    """A version-1 document in version 2's shape: what it lacks stays empty."""
+    rows = [{**{k: v for k, v in r.items() if k not in ("vs_best", "top_group")},
+             "flags": [{"code": "unknown", "text": f} if isinstance(f, str) else f for f in r["flags"]]}
+            for r in doc["rows"]]  # fmt: skip
+    return {**doc, "data": {"fingerprints": list(doc["data"]), "test_fingerprints": []}, "protocol": {},
+            "evidence": {}, "monitor": doc["metric"].split(".", 1)[1], "rows": rows}  # fmt: skip
 
 
 def _plain(value: Any) -> Any:
@@ -295,7 +355,7 @@ def _counts(raw: dict[str, int]) -> Counts:
 
 
 def _row(raw: dict[str, Any]) -> Row:
-    vs = raw.get("vs_best")
+    vs, verdict = raw.get("vs_best"), raw.get("verdict")
     return Row(
         config_id=raw["config_id"],
         levels=raw["levels"],
@@ -312,5 +372,7 @@ def _row(raw: dict[str, Any]) -> Row:
         flags=[Flag(**f) for f in raw["flags"]],
         rank=raw.get("rank"),
         vs_best=Comparison(**vs) if vs else None,
-        top_group=raw.get("top_group"),
+        verdict=Verdict(**verdict) if verdict else None,
+        complete=raw.get("complete", True),
+        best_epoch_median=raw.get("best_epoch_median"),
     )

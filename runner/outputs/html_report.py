@@ -16,7 +16,7 @@ import numpy as np
 
 from runner.evidence.document import Leaderboard
 from runner.evidence.leaderboard import leaderboard
-from runner.outputs.text import interval, number, versus
+from runner.outputs.text import STANDING_HEADER, interval, number, standing
 from runner.recipe.grid import Grid
 from runner.store.database import Store
 
@@ -65,18 +65,19 @@ def _table(doc: Leaderboard) -> str:
     names = doc.factor_names
     head = "".join(
         f"<th>{html.escape(h)}</th>"
-        for h in ["rank", *names, "n", "mean", "sd", "95% CI", "test", "vs best (Holm)", "flags"]
+        for h in ["rank", *names, "n", "mean", "sd", "95% CI", "test", STANDING_HEADER, "flags"]
     )
     body = []
     for row in doc.rows:
         cells = [str(row.rank or "-"), *[html.escape(row.labels[n]) for n in names], str(row.n)]
         nums = [number(row.mean), number(row.std), interval(row.ci95), number(row.test_mean)]
         flags = ", ".join(f.text for f in row.flags)
+        verdict = standing(row, doc.evidence.get("margin"))
         body.append(
-            f'<tr class="{"top" if row.top_group else ""}">'
+            f'<tr class="{"top" if row.possibly_best else ""}">'
             + "".join(f"<td>{c}</td>" for c in cells)
             + "".join(f'<td class="num">{c}</td>' for c in nums)
-            + f'<td class="vs">{html.escape(versus(row))}</td><td class="flag">{html.escape(flags)}</td></tr>'
+            + f'<td class="vs">{html.escape(verdict)}</td><td class="flag">{html.escape(flags)}</td></tr>'
         )
     return f'<table id="leaderboard"><thead><tr>{head}</tr></thead><tbody>{"".join(body)}</tbody></table>'
 

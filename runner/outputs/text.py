@@ -10,7 +10,7 @@ import json
 from runner.components.metrics import Goal
 from runner.evidence.document import Ablation, Leaderboard, Row
 
-__all__ = ["FORMATS", "grid_lines", "interval", "number", "p_text", "render", "render_ablation", "versus"]
+__all__ = ["FORMATS", "grid_lines", "interval", "number", "p_text", "render", "render_ablation", "signed", "standing"]
 
 FORMATS = ("csv", "json", "markdown", "table")
 
@@ -27,36 +27,42 @@ def interval(ci) -> str:
     return "-" if not ci else f"[{number(ci[0])}, {number(ci[1])}]"
 
 
-def versus(row: Row) -> str:
-    """The row's standing against the best, in words."""
-    if row.rank == 1:
-        return "best"
-    vs = row.vs_best
-    if vs is None:
+def signed(value: float | None) -> str:
+    if value is None:
         return "-"
-    mark = "~best" if row.top_group else "worse"
-    return f"{vs.diff_mean:+.4f} p={vs.p_holm:.2g} {mark}"
+    return "0" if value == 0 else f"{value:+.4f}"
+
+
+def standing(row: Row, margin: float | None = None) -> str:
+    """The row's verdict and the simultaneous interval it rests on (the gap to the best of the
+    other configurations; positive is better)."""
+    v = row.verdict
+    if v is None or v.kind == "no_verdict":
+        return "no verdict"
+    word = {"possibly_best": "possibly best", "behind": "behind",
+            "within_margin": f"within +-{margin:g}" if margin else "within margin"}[v.kind]  # fmt: skip
+    if v.low is None and v.high is None:
+        return f"{word} (not bounded)"
+    return f"{word} [{signed(v.low)}, {signed(v.high)}]"
+
+
+# What the verdict column means, for headers and legends.
+STANDING_HEADER = "verdict [gap to best, simultaneous]"
 
 
 def _columns(doc: Leaderboard) -> tuple[list[str], list[list[str]]]:
     factor_names = doc.factor_names
-    header = ["rank", *factor_names, "n", "mean", "sd", "95% CI", "test", "vs best (Holm)", "flags"]
+    early = any(r.best_epoch_median is not None for r in doc.rows)
+    ci_head = f"{1 - doc.evidence['alpha']:.0%} CI" if doc.evidence.get("alpha") else "95% CI"
+    header = ["rank", *factor_names, "n", "mean", "sd", ci_head, "test", *(["best ep."] if early else []),
+              STANDING_HEADER, "flags"]  # fmt: skip
     body = []
+    margin = doc.evidence.get("margin")
     for row in doc.rows:
-        n = f"{row.n}/{row.counts.total}"
-        body.append(
-            [
-                str(row.rank or "-"),
-                *[row.labels[f] for f in factor_names],
-                n,
-                number(row.mean),
-                number(row.std),
-                interval(row.ci95),
-                number(row.test_mean),
-                versus(row),
-                ", ".join(f.text for f in row.flags),
-            ]
-        )
+        epoch = ["-" if row.best_epoch_median is None else f"{row.best_epoch_median:g}"] if early else []
+        body.append([str(row.rank or "-"), *[row.labels[f] for f in factor_names], f"{row.n}/{row.counts.total}",
+                     number(row.mean), number(row.std), interval(row.ci95), number(row.test_mean), *epoch,
+                     standing(row, margin), ", ".join(f.text for f in row.flags)])  # fmt: skip
     return header, body
 
 
@@ -123,9 +129,11 @@ def _csv(doc: Leaderboard) -> str:
             "ci95_low",
             "ci95_high",
             "test_mean",
-            "diff_vs_best",
+            "verdict",
+            "gap_low",
+            "gap_high",
+            "diff_vs_top",
             "p_holm",
-            "top_group",
             "diverged",
             "failed",
             "flags",
@@ -146,9 +154,11 @@ def _csv(doc: Leaderboard) -> str:
                 ci[0],
                 ci[1],
                 row.test_mean,
+                row.verdict.kind if row.verdict else None,
+                row.verdict.low if row.verdict else None,
+                row.verdict.high if row.verdict else None,
                 vs.diff_mean if vs else None,
                 vs.p_holm if vs else None,
-                row.top_group,
                 row.counts.diverged,
                 row.counts.failed,
                 ";".join(f.code for f in row.flags),
@@ -179,21 +189,32 @@ def p_text(value) -> str:
     return "-" if value is None else f"{value:.2g}"
 
 
+def _basis(ab: Ablation) -> str:
+    """What the ablation's intervals and p-values are, for the tables' titles."""
+    if ab.protocol == "fixed":
+        return ("intervals: Student t; p: exact sign-flip test (never below 2/2^n with n seeds, so an interval "
+                "may exclude 0 while p stays above 0.05 with few seeds)")  # fmt: skip
+    return "intervals and p: Student t with the variance corrected for overlapping training sets"
+
+
 def _main_effects_lines(ab: Ablation, title, markdown: bool) -> list[str]:
-    body = []
+    body, notes = [], []
     for eff in ab.main_effects:
+        if eff.note:
+            notes.append(f"{eff.factor}: {eff.note}")
         for lvl in eff.levels:
             d = lvl.diff_vs_baseline
             label = lvl.label + (" (baseline)" if lvl.label == eff.baseline else "")
-            cells = ["-"] * 4 if d is None else [f"{d.diff_mean:+.4f}", interval(d.ci95), p_text(d.p_value),
-                                                  f"{d.n_pairs}/{d.n_seeds}"]  # fmt: skip
+            cells = ["-"] * 4 if d is None else [signed(d.diff_mean), interval(d.ci95), p_text(d.p_value),
+                                                  f"{d.n_contexts}/{d.n_seeds}"]  # fmt: skip
             body.append([eff.factor, label, number(lvl.mean), interval(lvl.ci95), *cells])
     if not body:
         return []
-    head = (f"Main effects on {ab.metric}: each level averaged over the other factors; "
-            "difference to the baseline paired over matched configurations and seeds")  # fmt: skip
-    header = ["factor", "level", "mean", "95% CI", "vs baseline", "95% CI", "p", "pairs/seeds"]
-    return ["", title(head), "", *grid_lines(header, body, markdown)]
+    head = (f"Main effects on {ab.metric}: each level over the contexts (other factors' levels) in which "
+            "every level finished, on matched seeds; difference to the baseline paired by seed; "
+            f"{_basis(ab)}")  # fmt: skip
+    header = ["factor", "level", "mean", "95% CI", "vs baseline", "95% CI", "p", "contexts/seeds"]
+    return ["", title(head), "", *grid_lines(header, body, markdown), *(["", *notes] if notes else [])]
 
 
 def _one_at_a_time_lines(ab: Ablation, title, markdown: bool) -> list[str]:
@@ -201,10 +222,10 @@ def _one_at_a_time_lines(ab: Ablation, title, markdown: bool) -> list[str]:
     if not ofat or not ofat.rows:
         return []
     base = ", ".join(f"{k} = {v}" for k, v in ofat.baseline.items())
-    body = [[r.factor, r.label, number(r.mean), "-" if r.diff_mean is None else f"{r.diff_mean:+.4f}",
-             interval(r.ci95), p_text(r.p_value), str(r.n_pairs)] for r in ofat.rows]  # fmt: skip
+    body = [[r.factor, r.label, number(r.mean), signed(r.diff_mean), interval(r.ci95), p_text(r.p_value),
+             str(r.n_pairs)] for r in ofat.rows]  # fmt: skip
     header = ["factor", "changed to", "mean", "vs baseline", "95% CI", "p", "seeds"]
-    head = f"One factor at a time from the baseline ({base}; mean {number(ofat.baseline_mean)})"
+    head = f"One factor at a time from the baseline ({base}; mean {number(ofat.baseline_mean)}); {_basis(ab)}"
     return ["", title(head), "", *grid_lines(header, body, markdown)]
 
 
@@ -214,8 +235,16 @@ def _interaction_lines(ab: Ablation, title, markdown: bool) -> list[str]:
         a_levels = list(next(iter(inter.means.values())).keys()) if inter.means else []
         rows = [[bl, *[number(row[a]) for a in a_levels], inter.best_a_by_b[bl] or "-"]
                 for bl, row in inter.means.items()]  # fmt: skip
-        verdict = "depends on" if inter.depends else "does not depend on"
-        out += ["", title(f"Interaction: the best {inter.a} {verdict} {inter.b} (means)"), ""]
+        if inter.largest is None:
+            verdict = f"cannot be assessed ({inter.note})"
+        else:
+            c = inter.largest
+            word = "depends on" if inter.depends else "is not shown to depend on"
+            where = f"; {inter.note}" if inter.note else ""
+            verdict = (f"the best {inter.a} {word} {inter.b} (largest contrast {signed(c['estimate'])}, "
+                       f"simultaneous 95% {interval([c['low'], c['high']]) if c['low'] is not None else '-'}; "
+                       f"F test p {p_text(inter.p_value)}{where})")  # fmt: skip
+        out += ["", title(f"Interaction of {inter.a} and {inter.b}: {verdict}"), ""]
         out += grid_lines([f"{inter.b} \\ {inter.a}", *a_levels, "best"], rows, markdown)
     return out
 

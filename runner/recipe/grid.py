@@ -6,6 +6,7 @@ runs: an impossible combination is a RecipeError, not a failed job.
 
 from __future__ import annotations
 
+import bisect
 import dataclasses
 import hashlib
 import itertools
@@ -25,7 +26,10 @@ from runner.training.job import JobSpec
 
 __all__ = ["Config", "Grid", "Job", "canonical", "expand"]
 
-KEY_VERSION = 1  # bump when a change to training makes old results incomparable
+# Bump when a change to training makes old results incomparable. 2: the test rows are drawn
+# once per recipe (data.split.test_seed) and the monitored metric is part of a job's identity
+# only when early stopping uses it.
+KEY_VERSION = 2
 
 
 def canonical(obj: Any) -> str:
@@ -56,6 +60,7 @@ class Job:
     config: Config
     seed: int
     monitor: str
+    fold: int | None = None  # under k-fold validation: which fold this job validates on
 
     def spec(self, checkpoint: str | None = None, time_limit: float | None = None) -> JobSpec:
         return JobSpec(
@@ -66,31 +71,54 @@ class Job:
             data_id=self.config.data_id,
             checkpoint=checkpoint,
             time_limit=time_limit,
+            fold=self.fold,
         )
 
 
 class Grid:
-    """Configurations times seeds; ``len`` and indexing do not build every job."""
+    """Configurations times seeds (times folds under k-fold validation); ``len`` and
+    indexing do not build every job.
 
-    def __init__(self, recipe: Recipe, configs: list[Config], datasets: dict[str, Dataset], rank_by: str, task: str):
+    ``monitor`` is the metric early stopping watches (the recipe's rank_by); ``rank_by``,
+    ``metric`` and ``goal`` are what the leaderboard ranks on, which ``recipe board
+    --rank-by`` may change without retraining."""
+
+    def __init__(self, recipe: Recipe, configs: list[Config], datasets: dict[str, Dataset], rank_by: str,
+                 task: Task, monitor: str | None = None):  # fmt: skip
         self.recipe = recipe
         self.configs = configs
         self.datasets = datasets
         self.rank_by = rank_by
         self.metric = rank_by.split(".", 1)[1]
-        self.goal = METRICS[self.metric][1]
+        self.goal = METRICS[self.metric].goal
+        self.monitor = monitor or self.metric
         self.task = task
+        sizes = [len(recipe.seeds) * c.settings.data.split.fold_count for c in configs]
+        self._starts = [sum(sizes[:i]) for i in range(len(sizes) + 1)]
 
     def __len__(self) -> int:
-        return len(self.configs) * len(self.recipe.seeds)
+        return self._starts[-1]
 
     def __getitem__(self, i: int) -> Job:
         if not -len(self) <= i < len(self):
             raise IndexError(i)
         i %= len(self)
-        config = self.configs[i // len(self.recipe.seeds)]
-        seed = self.recipe.seeds[i % len(self.recipe.seeds)]
-        return Job(key=job_key(config, seed, self.metric), config=config, seed=seed, monitor=self.metric)
+        c = bisect.bisect_right(self._starts, i) - 1
+        config = self.configs[c]
+        folds = config.settings.data.split.fold_count
+        seed_index, fold = divmod(i - self._starts[c], folds)
+        seed = self.recipe.seeds[seed_index]
+        fold_or_none = fold if config.settings.data.split.validation == "folds" else None
+        key = job_key(config, seed, self.monitor, fold_or_none)
+        return Job(key=key, config=config, seed=seed, monitor=self.monitor, fold=fold_or_none)
+
+    def with_rank_by(self, rank_by: str) -> Grid:
+        """The same jobs, ranked on another validation metric (no job key changes)."""
+        metric = rank_by.split(".", 1)[1]
+        if METRICS[metric].task is not self.task:
+            raise RecipeError(f"{metric} is not a {self.task} metric", key="--rank-by", value=rank_by,
+                              allowed=", ".join(f'"val.{m}"' for m in for_task(self.task)))  # fmt: skip
+        return Grid(self.recipe, self.configs, self.datasets, rank_by, self.task, monitor=self.monitor)
 
     def __iter__(self):
         return (self[i] for i in range(len(self)))
@@ -99,17 +127,14 @@ class Grid:
         return {f.name: f.label(i) for f, i in zip(self.recipe.factors, config.levels)}
 
 
-def job_key(config: Config, seed: int, monitor: str) -> str:
-    text = canonical(
-        {
-            "v": KEY_VERSION,
-            "settings": config.settings.identity(),
-            "data": config.data_id,
-            "seed": seed,
-            "monitor": monitor,
-        }
-    )
-    return hashlib.sha256(text.encode()).hexdigest()[:24]
+def job_key(config: Config, seed: int, monitor: str, fold: int | None = None) -> str:
+    """The job's identity: its resolved settings, data, seed and fold (k-fold validation),
+    and the monitored metric when early stopping watches it (otherwise the metric changes
+    nothing the job computes)."""
+    watched = monitor if config.settings.train.patience > 0 else None
+    ident = {"v": KEY_VERSION, "settings": config.settings.identity(), "data": config.data_id, "seed": seed,
+             "monitor": watched, "fold": fold}  # fmt: skip
+    return hashlib.sha256(canonical(ident).encode()).hexdigest()[:24]
 
 
 def _excluded(assign: Mapping[str, Any], rules) -> bool:
@@ -185,6 +210,7 @@ def _expand(recipe: Recipe) -> Grid:
             hint="Loosen or remove an [[exclude]] rule",
         )
     assert task is not None  # configs is not empty
+    _check_one_protocol(configs)
     rank_by = recipe.rank_by or ("val.accuracy" if task is Task.CLASSIFICATION else "val.rmse")
     metric = rank_by.split(".", 1)[1]
     if METRICS[metric][0] != task:
@@ -195,6 +221,24 @@ def _expand(recipe: Recipe) -> Grid:
             allowed=", ".join(f'"val.{m}"' for m in for_task(task)),
         )
     return Grid(recipe, configs, datasets, rank_by, task)
+
+
+PROTOCOL_PATHS = ("data.split.test", "data.split.test_seed", "data.split.stratify", "data.split.validation",
+                  "data.split.folds")  # fmt: skip
+
+
+def _check_one_protocol(configs: list[Config]) -> None:
+    """Every configuration must share the test rows and the validation protocol: comparing
+    configurations tested on different rows, or judged with different variances, means nothing."""
+    for path in PROTOCOL_PATHS:
+        values = {c.settings.flat()[path] for c in configs}
+        if len(values) > 1:
+            raise RecipeError(
+                "must be the same for every configuration (it decides the test rows or the validation protocol)",
+                key=f'factors."{path}"',
+                value=sorted(values, key=str),
+                hint="Set it once under [data.split] and run a second recipe to compare protocols",
+            )
 
 
 def _check_rules(settings: Settings) -> None:

@@ -40,6 +40,8 @@ __all__ = [
     "Recipe",
     "RunSettings",
     "TrackingSettings",
+    "VerdictSettings",
+    "check_rank_by",
     "load_recipe",
     "parse_recipe",
     "resolve",
@@ -59,6 +61,7 @@ TOP_LEVEL = (
     "seeds",
     "tracking",
     "train",
+    "verdicts",
 )
 
 # [run]: where and how wide the grid runs; command-line options override it. Not part of any
@@ -88,6 +91,26 @@ DIAGNOSTICS = {
     "saturated_above": Param(Real(0, 1), 0.5, "flag when the fraction of saturated units exceeds this"),
     "gap_above": Param(Real(0, None), 0.1, "flag overfitting when train minus val metric exceeds this"),
 }
+
+
+# [verdicts]: the level of the board's verdicts and an optional practical-equivalence margin.
+# They act on stored numbers: changing them needs no rerun.
+VERDICTS = {
+    "alpha": Param(Real(0, 0.5, low_open=True, high_open=True), 0.05,
+                   "error rate of the verdicts: the possibly-best set misses a truly best configuration "
+                   "with probability at most this"),
+    "margin": Param(Real(0, None), 0.0,
+                    "practical-equivalence margin in the rank metric's units: rows shown within +-margin of the "
+                    "best; 0 = off"),
+}  # fmt: skip
+
+
+@dataclass(frozen=True, slots=True)
+class VerdictSettings:
+    """The [verdicts] table."""
+
+    alpha: float = 0.05
+    margin: float = 0.0  # 0: no equivalence claims
 
 
 @dataclass(frozen=True, slots=True)
@@ -133,6 +156,7 @@ class Recipe:
     baseline_given: bool = False  # the recipe has a [baseline] table of its own
     run: RunSettings = RunSettings()
     tracking: TrackingSettings = TrackingSettings()
+    verdicts: VerdictSettings = VerdictSettings()
 
     @property
     def base_dir(self) -> Path:
@@ -203,13 +227,14 @@ def recipe_from_tables(raw: dict, text: str, path: Path) -> Recipe:
         validate_table(sections[section], table, section)
     rank_by = raw.get("rank_by")
     if rank_by is not None:
-        rank_by = _rank_by(rank_by)
+        rank_by = check_rank_by(rank_by)
     factors = parse_factors(raw.get("factors", {}), sections)
     exclude = parse_exclude(raw.get("exclude", []), factors)
     baseline = parse_baseline(raw.get("baseline", {}), factors)
     diagnostics = DiagnosticThresholds(**validate_table(raw.get("diagnostics", {}), DIAGNOSTICS, "diagnostics"))
     run = RunSettings(**validate_table(raw.get("run", {}), RUN, "run"))
     tracking = TrackingSettings(**validate_table(raw.get("tracking", {}), TRACKING, "tracking"))
+    verdicts = VerdictSettings(**validate_table(raw.get("verdicts", {}), VERDICTS, "verdicts"))
     return Recipe(
         path=path.resolve(),
         text=text,
@@ -226,6 +251,7 @@ def recipe_from_tables(raw: dict, text: str, path: Path) -> Recipe:
         baseline_given="baseline" in raw,
         run=run,
         tracking=tracking,
+        verdicts=verdicts,
     )
 
 
@@ -258,26 +284,27 @@ def _seeds(value: Any) -> tuple[int, ...]:
     return tuple(value)
 
 
-def _rank_by(value: Any) -> str:
+def check_rank_by(value: Any, key: str = "rank_by") -> str:
+    """A "val.<metric>" the leaderboard can rank on; ``key`` names where it was given."""
     allowed = ", ".join(f'"val.{m}"' for m in sorted(METRICS))
     if not isinstance(value, str) or "." not in value:
-        raise RecipeError('must be "<split>.<metric>"', key="rank_by", value=value, allowed=allowed)
+        raise RecipeError('must be "<split>.<metric>"', key=key, value=value, allowed=allowed)
     split, metric = value.split(".", 1)
     if split == "test":
         raise RecipeError(
             "ranking on the test split is refused: choosing on test makes the test score optimistic",
-            key="rank_by",
+            key=key,
             value=value,
             allowed=allowed,
             hint="Rank on val; the test score is shown beside it",
         )
     if split != "val":
-        raise RecipeError("the leaderboard ranks on the validation split", key="rank_by", value=value, allowed=allowed)
+        raise RecipeError("the leaderboard ranks on the validation split", key=key, value=value, allowed=allowed)
     if metric not in METRICS:
         near = suggest(metric, METRICS)
         raise RecipeError(
             "unknown metric",
-            key="rank_by",
+            key=key,
             value=value,
             allowed=allowed,
             hint=f'Did you mean "val.{near}"?' if near else None,

@@ -39,11 +39,22 @@ __all__ = [
 
 BUNDLED = ("breast_cancer", "circles", "diabetes", "digits", "iris", "moons", "wine")
 
+VALIDATION = ("fixed", "folds", "resample")
+
 SPLIT = {
-    "val": Param(Real(0, 1, low_open=True, high_open=True), 0.2, "fraction of rows held out for validation"),
-    "test": Param(Real(0, 1, high_open=True), 0.2, "fraction of rows held out for the final test"),
+    "val": Param(Real(0, 1, low_open=True, high_open=True), 0.2,
+                 "fraction of rows held out for validation (folds: each fold is 1/folds of the non-test rows)"),
+    "test": Param(Real(0, 1, high_open=True), 0.2,
+                  "fraction of rows held out for the final test: drawn once, the same rows for every job"),
     "stratify": Param(Boolean(), True, "keep class shares equal across splits (classification)"),
-}
+    "validation": Param(Choice(VALIDATION), "resample",
+                        "how seeds vary the validation rows: resample (each seed draws its own train/val split), "
+                        "fixed (one train/val split; seeds vary initialization, order and dropout), folds (each "
+                        "seed is one repetition of stratified k-fold cross-validation)"),
+    "folds": Param(Integer(2, 20), 5, "folds: the number of folds k (each seed trains k jobs)"),
+    "test_seed": Param(Integer(0, 2**31 - 1), 0,
+                       "seed of the one test split (and of the fixed train/val split), recorded with every job"),
+}  # fmt: skip
 
 DATA = {
     "source": Param(Text(), doc="CSV or NPZ path relative to the recipe, or a bundled name: " + ", ".join(BUNDLED)),
@@ -133,6 +144,14 @@ class SplitSettings:
     val: float
     test: float
     stratify: bool
+    validation: str  # "resample", "fixed" or "folds"
+    folds: int
+    test_seed: int
+
+    @property
+    def fold_count(self) -> int:
+        """Jobs per seed: the folds under k-fold validation, else one."""
+        return self.folds if self.validation == "folds" else 1
 
 
 @dataclass(frozen=True, slots=True)

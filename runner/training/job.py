@@ -41,6 +41,7 @@ class JobSpec:
     data_id: str  # the dataset's fingerprint
     checkpoint: str | None = None  # file for mid-job checkpoints (train.checkpoint_every)
     time_limit: float | None = None  # overrides train.time_limit when set (--time-limit)
+    fold: int | None = None  # k-fold validation: the fold this job validates on
 
 
 @dataclass

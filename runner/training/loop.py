@@ -41,6 +41,9 @@ class Backend(Protocol):
     steps_per_epoch: int
     stacked: bool  # the stacked path (a failure there is retried one job at a time)
 
+    def split_records(self) -> list[dict[str, Any]]:
+        """Per member: the sizes of its split and a fingerprint of its test rows."""
+
     def initial_diagnostics(self) -> list[dict[str, Any]]:
         """Per member: activation and gradient statistics at initialization (no random draw)."""
 
@@ -125,6 +128,8 @@ def train_members(
     every = train0.checkpoint_every if checkpoint else 0
     step, start_epoch = 0, 0
     saved = checkpoints.load(checkpoint) if every else None
+    for m, record in zip(members, backend.split_records()):
+        m.result.diagnostics["split"] = {**record, "fold": m.spec.fold}
     if saved is None:
         for m, diags in zip(members, backend.initial_diagnostics()):
             m.result.diagnostics.update(diags)
@@ -260,7 +265,7 @@ def _resume(backend: Backend, m: _Member, saved: dict[str, Any]) -> tuple[int, i
     m.curves = saved["curves"]
     m.best_value, m.best_epoch, m.best_state = saved["best_value"], saved["best_epoch"], saved["best_state"]
     m.since_best, m.first_loss = saved["since_best"], saved["first_loss"]
-    m.result.diagnostics = {**saved["diagnostics"], "resumed_from_epoch": saved["epoch"]}
+    m.result.diagnostics = {**m.result.diagnostics, **saved["diagnostics"], "resumed_from_epoch": saved["epoch"]}
     return saved["step"], saved["epoch"]
 
 

@@ -39,7 +39,7 @@ class SingleBackend:
     def __init__(self, spec: JobSpec, ds: Dataset):
         self.spec, self.ds = spec, ds
         self.train_s = spec.settings.train
-        self.sp = split_and_scale(ds, spec.settings.data, spec.seed)
+        self.sp = split_and_scale(ds, spec.settings.data, spec.seed, spec.fold)
         self.classify = ds.task is Task.CLASSIFICATION
         self.Xtr, self.ytr = self._tensors(self.sp.X_train, self.sp.y_train)
         self.Xva, _ = self._tensors(self.sp.X_val, self.sp.y_val)
@@ -63,6 +63,9 @@ class SingleBackend:
 
     def _loss_fn(self, out: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
         return F.cross_entropy(out, y) if self.classify else F.mse_loss(out.squeeze(1), y)
+
+    def split_records(self) -> list[dict[str, Any]]:
+        return [self.sp.rows.record()]
 
     def initial_diagnostics(self) -> list[dict[str, Any]]:
         return [diagnostics.at_init(self.net, self.Xtr[self.probe], self.ytr[self.probe], self._loss_fn)]
@@ -107,8 +110,7 @@ class SingleBackend:
         self.net.load_state_dict(state)
 
     def final_metrics(self) -> list[dict[str, dict[str, float]]]:
-        """val and test: every metric; train: the monitored metric only (it feeds the
-        overfitting gap)."""
+        """Every metric on every split (train's feed the overfitting gap of any rank metric)."""
         out = {}
         sp = self.sp
         for split, X, y in (
@@ -117,9 +119,7 @@ class SingleBackend:
             ("test", sp.X_test, sp.y_test),
         ):
             if X is not None:
-                metrics = self._evaluate(
-                    torch.from_numpy(np.ascontiguousarray(X)), y, only=self.spec.monitor if split == "train" else None
-                )
+                metrics = self._evaluate(torch.from_numpy(np.ascontiguousarray(X)), y)
                 metrics.pop("loss")
                 out[split] = metrics
         return [out]

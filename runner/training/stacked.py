@@ -56,12 +56,12 @@ def _splits(specs: list[JobSpec], ds: Dataset):
     configuration, and sklearn's stratified split costs a few milliseconds."""
     out = []
     for s in specs:
-        key = (ds.fingerprint, s.seed, canonical(s.settings.data))
+        key = (ds.fingerprint, s.seed, s.fold, canonical(s.settings.data))
         if key in _SPLIT_CACHE:
             _SPLIT_CACHE.move_to_end(key)
             out.append(_SPLIT_CACHE[key])
             continue
-        sp = split_and_scale(ds, s.settings.data, s.seed)
+        sp = split_and_scale(ds, s.settings.data, s.seed, s.fold)
         if ds.X.nbytes <= _SPLIT_CACHE_MAX_BYTES:
             _SPLIT_CACHE[key] = sp
             if len(_SPLIT_CACHE) > _SPLIT_CACHE_SIZE:
@@ -153,6 +153,9 @@ class StackedBackend:
         self.X_epoch, self.y_epoch = torch.empty_like(self.Xtr), torch.empty_like(self.ytr)
         self._dout: torch.Tensor | None = None
 
+    def split_records(self) -> list[dict[str, Any]]:
+        return [sp.rows.record() for sp in self.splits]
+
     def initial_diagnostics(self) -> list[dict[str, Any]]:
         """As diagnostics.at_init, on the probe rows (no dropout)."""
         net, K, probe = self.net, self.members, self.probe
@@ -201,19 +204,13 @@ class StackedBackend:
         self.net.load_member(k, state)
 
     def final_metrics(self) -> list[dict[str, dict[str, float]]]:
-        splits, monitor = self.splits, self.specs[0].monitor
+        splits = self.splits
         out: list[dict[str, dict[str, float]]] = [{} for _ in self.specs]
         for split in ("train", "val", "test"):
             if getattr(splits[0], f"X_{split}") is None:
                 continue
             logits = self.net.logits(_stacked_inputs([getattr(sp, f"X_{split}") for sp in splits]))
-            scores = score_members(
-                logits,
-                [getattr(sp, f"y_{split}") for sp in splits],
-                self.ds,
-                splits,
-                only=monitor if split == "train" else None,
-            )
+            scores = score_members(logits, [getattr(sp, f"y_{split}") for sp in splits], self.ds, splits)
             for k, per_member in enumerate(scores):
                 out[k][split] = {m: v for m, v in per_member.items() if m != "loss"}
         return out
