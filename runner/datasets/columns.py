@@ -13,6 +13,7 @@ jobs of one configuration keep sharing one stacked computation.
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 
 import numpy as np
@@ -167,7 +168,7 @@ def _refuse_first_bad_cell(table: Table, categorical: str, missing: str) -> None
     row, j, kind = first
     col = table.columns[j]
     at = table.at(row)
-    cell = "" if col.missing[row] else (str(col.texts[row]) if col.texts is not None else repr(col.numbers[row]))
+    cell = "" if col.missing[row] else (str(col.texts[row]) if col.texts is not None else str(float(col.numbers[row])))
     if kind == "missing":
         raise DataError(
             f'column "{col.name}" has a missing value (an empty cell)',
@@ -181,7 +182,11 @@ def _refuse_first_bad_cell(table: Table, categorical: str, missing: str) -> None
             **at,
             value=short_value(cell),
             allowed='numbers, or text categories with data.categorical = "onehot"',
-            hint='Set data.categorical = "onehot" to one-hot encode text columns, or drop the column',
+            hint=(
+                "Decimal commas are not read: write 1.5, not 1,5"
+                if re.fullmatch(r"[-+]?\d+,\d+", cell)
+                else 'Set data.categorical = "onehot" to one-hot encode text columns, or drop the column'
+            ),
         )
     if kind == "mixed":
         raise DataError(
@@ -230,7 +235,8 @@ def _bad_cells(col: RawColumn, categorical: str, missing: str):
     with np.errstate(over="ignore", invalid="ignore"):
         over = np.isfinite(values) & (np.abs(values) > _F32_MAX)
     # float32 rounds values just above its largest to it; only those that become inf overflow
-    over &= ~np.isfinite(values.astype(np.float32))
+    with np.errstate(over="ignore"):
+        over &= ~np.isfinite(values.astype(np.float32))
     if over.any():
         yield int(np.argmax(over)), "overflow"
 

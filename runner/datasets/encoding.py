@@ -146,7 +146,11 @@ def encode_split(X: np.ndarray, layout: Layout | None, train_idx: np.ndarray, wh
             X[X[:, col.indicator] == 1.0, s + best] = 1.0
             fill = col.categories[best]
         X[:, s : s + col.width][:, ~seen] = 0.0
-        out.append(ColumnEncoding(col.name, "categorical", col.categories, tuple(np.array(col.categories)[seen]), fill))
+        out.append(
+            ColumnEncoding(
+                col.name, "categorical", col.categories, tuple(str(v) for v in np.array(col.categories)[seen]), fill
+            )
+        )
     return X, tuple(out)
 
 

@@ -49,27 +49,31 @@ def describe_kind(mode: int) -> str:
 
 def read_limited(path: Path, limit: int, *, key: str | None, shown: str, error=DataError) -> bytes:
     """The bytes of the regular file at ``path``, refusing anything else or anything larger
-    than ``limit``. ``shown`` is how the path appears in messages (as the user wrote it)."""
+    than ``limit``. ``shown`` is how the path appears in messages (as the user wrote it): the
+    value of ``key``, or where the error is when there is no key. ``error``: the UserError
+    class to raise."""
+
+    def refuse(problem: str, **fields):
+        if key is None:
+            return error(problem, where=shown, **fields)
+        return error(problem, key=key, value=shown, **fields)
+
     try:
         # O_NONBLOCK: opening a FIFO for reading would otherwise wait for a writer forever.
         fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK | getattr(os, "O_CLOEXEC", 0))
     except FileNotFoundError:
-        raise error("file not found", key=key, value=shown) from None
+        raise refuse("file not found") from None
     except IsADirectoryError:
-        raise error("is a directory, not a file", key=key, value=shown) from None
+        raise refuse("is a directory, not a file") from None
     except OSError as exc:
-        raise error(f"cannot open the file ({exc.strerror})", key=key, value=shown) from None
+        raise refuse(f"cannot open the file ({exc.strerror})") from None
     try:
         info = os.fstat(fd)
         if not stat.S_ISREG(info.st_mode):
-            raise error(
-                f"is {describe_kind(info.st_mode)}, not a regular file", key=key, value=shown, allowed="a regular file"
-            )
+            raise refuse(f"is {describe_kind(info.st_mode)}, not a regular file", allowed="a regular file")
         if info.st_size > limit:
-            raise error(
+            raise refuse(
                 f"the file is {show_bytes(info.st_size)}, larger than the {show_bytes(limit)} this tool reads",
-                key=key,
-                value=shown,
                 hint="Use a smaller file (fewer rows or columns)",
             )
         chunks, total = [], 0
@@ -80,9 +84,9 @@ def read_limited(path: Path, limit: int, *, key: str | None, shown: str, error=D
             chunks.append(chunk)
             total += len(chunk)
             if total > limit:  # the file grew while being read
-                raise error(f"the file is larger than the {show_bytes(limit)} this tool reads", key=key, value=shown)
+                raise refuse(f"the file is larger than the {show_bytes(limit)} this tool reads")
         return b"".join(chunks)
     except OSError as exc:
-        raise error(f"cannot read the file ({exc.strerror})", key=key, value=shown) from None
+        raise refuse(f"cannot read the file ({exc.strerror})") from None
     finally:
         os.close(fd)
