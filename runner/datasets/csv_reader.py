@@ -51,28 +51,21 @@ class CsvFile:
 
 def find_delimiter(header: str, sample: list[str]) -> str:
     """The separator that splits the header and sample lines into one equal number (>= 2)
-    of fields; ',' when several do or none does."""
+    of fields (the first of ',' ';' tab '|' when several do); when none does, the one that
+    splits the header into the most fields, so a ragged row is reported by its line."""
     fits = []
     for d in DELIMITERS:
         widths = {len(r) for r in csv.reader([header, *sample], delimiter=d)}
         if len(widths) == 1 and widths.pop() >= 2:
             fits.append(d)
-    return fits[0] if fits else ","
+    if fits:
+        return fits[0]
+    return max(DELIMITERS, key=lambda d: (len(next(csv.reader([header], delimiter=d))), -DELIMITERS.index(d)))
 
 
 def _header(line: str, delimiter: str, where: str, line_no: int) -> list[str]:
     names = [h.strip() for h in next(csv.reader([line], delimiter=delimiter))]
     if len(names) == 1:
-        split = [d for d in DELIMITERS if len(next(csv.reader([line], delimiter=d))) > 1]
-        if split:
-            seps = " or ".join(_NAMES[d] for d in split)
-            raise DataError(
-                f'the header has one column "{short_value(names[0])}"; it splits at {seps}, '
-                "but the rows do not split into as many fields",
-                where=where,
-                line=line_no,
-                hint="Give every row the header's number of fields",
-            )
         # Not a table at all (e.g. some other text file): say so without printing it.
         raise DataError(
             "the first line has no ',', ';', tab or '|' separator: this is not a CSV table",
@@ -145,7 +138,11 @@ def _parse_cells(f: CsvFile, t: int) -> tuple[Table, list[str]]:
     width = len(f.header)
     for r, row in enumerate(rows):
         if len(row) != width:
-            raise DataError(f"row has {len(row)} fields, the header has {width}", where=f.where, line=int(f.lines[r]))
+            raise DataError(
+                f"row has {len(row)} fields, the header has {width} (separated by {_NAMES[f.delimiter]})",
+                where=f.where,
+                line=int(f.lines[r]),
+            )
     cells = np.array(rows, dtype=object).reshape(len(rows), width)
     cols = []
     for j, name in enumerate(f.header):
