@@ -56,13 +56,33 @@ def check_splits(ds: Dataset, data: DataSettings, seeds) -> None:
     proxy = ds if ds.layout is not None else dataclasses.replace(ds, X=np.zeros((len(ds.y), 1), np.float32))
     for seed in seeds:
         try:
-            split_and_scale(proxy, data, seed)
+            sp = split_and_scale(proxy, data, seed)
         except DataError as err:
             if err.key == "data.split":
                 raise _explain(ds, data, seed) from None
             err.problem += f" (seed {seed})"
             err.args = (err.message(),)
             raise
+        _check_training_rows(ds, data, seed, sp.y_train)
+
+
+def _check_training_rows(ds: Dataset, data: DataSettings, seed: int, y_train: np.ndarray) -> None:
+    """A split that can be made may still leave nothing to learn from."""
+    split = data.split
+    asked = f"val = {split.val}, test = {split.test}"
+    if len(y_train) < 2:
+        raise DataError(
+            f"with {len(ds.y)} rows, the training split of seed {seed} ({asked}) would have {len(y_train)} row",
+            key="data.split",
+            hint="Add rows (a study needs far more than a handful), or set test = 0",
+        )
+    if ds.task is Task.CLASSIFICATION and len(np.unique(y_train)) < 2:
+        only = ds.classes[int(y_train[0])]
+        raise DataError(
+            f'the training split of seed {seed} ({asked}) would hold only class "{only}": nothing to learn',
+            key="data.split",
+            hint="Add rows of the other classes, or stratify = true",
+        )
 
 
 def _explain(ds: Dataset, data: DataSettings, seed: int) -> DataError:

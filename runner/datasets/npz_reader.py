@@ -92,4 +92,4 @@ def _check_X(X: np.ndarray, n_y: int, where: str, y: np.ndarray) -> np.ndarray:
             where=where,
             hint="Rescale X (the tool trains in float32)",
         )
-    return X32
+    return X32[:, None] if X32.ndim == 3 else X32  # (N, H, W): one channel
