@@ -69,6 +69,13 @@ def load_dataset(data: DataSettings, base_dir: Path) -> Dataset:
     paths as they are) once, checked: every refusal is a DataError naming the cell or array."""
     source = data.source
     layout = None
+    if source in BUNDLED and (base_dir / source).exists():
+        raise DataError(
+            "names both a bundled data set and a file or folder beside the recipe",
+            key="data.source",
+            value=source,
+            hint=f'Write "./{source}" for the file or folder',
+        )
     if source in BUNDLED:
         X, y, names, classes, task, fp = _bundled(source, data)
         label = source
