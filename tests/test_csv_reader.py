@@ -204,3 +204,11 @@ def test_long_cells_are_not_echoed(tmp_path):
     recipe = recipe_for(tmp_path, "long.csv")
     message = refused(tmp_path, recipe, 'column "b" is not numeric', "140-character text")
     assert "s3cr3t" not in message
+
+
+def test_recipe_new_reads_a_semicolon_file(tmp_path):
+    (tmp_path / "semi.csv").write_text((DATA / "iris_sample.csv").read_text().replace(",", ";"))
+    out = tmp_path / "semi.toml"
+    result = invoke("new", tmp_path / "semi.csv", "--out", out)
+    assert result.exit_code == 0, result.output
+    assert 'target = "species"' in out.read_text()

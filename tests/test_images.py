@@ -219,3 +219,12 @@ def test_image_size_is_validated(tmp_path, size):
     rgb_folder(tmp_path / "rgb", [(4, 4)] * 4)
     message = check_message(image_recipe(tmp_path, f"image_size = {size}"))
     assert "data.image_size" in message
+
+
+def test_recipe_new_for_an_image_folder_writes_a_cnn_that_checks(tmp_path):
+    rgb_folder(tmp_path / "rgb", [(6, 6)] * 20)
+    out = tmp_path / "rgb.toml"
+    result = invoke("new", tmp_path / "rgb", "--out", out)
+    assert result.exit_code == 0, result.output
+    assert 'kind = "cnn"' in out.read_text()
+    assert invoke("check", out, "--no-probe").exit_code == 0

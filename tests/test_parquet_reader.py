@@ -108,3 +108,11 @@ def test_missing_pyarrow_gives_the_install_hint(tmp_path, monkeypatch):
     result = invoke("check", parquet_recipe(tmp_path), "--no-probe")
     assert result.exit_code == 2
     assert "needs pyarrow, which is not installed" in result.stderr and '".[parquet]"' in result.stderr
+
+
+def test_recipe_new_guesses_the_target_of_a_parquet_file(tmp_path):
+    pq.write_table(iris_table(), tmp_path / "iris.parquet")
+    out = tmp_path / "iris.toml"
+    result = invoke("new", tmp_path / "iris.parquet", "--out", out)
+    assert result.exit_code == 0, result.output
+    assert 'target = "species"' in out.read_text()

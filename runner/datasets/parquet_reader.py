@@ -13,7 +13,7 @@ from runner.datasets.columns import RawColumn, Table, check_target_name
 from runner.datasets.files import MAX_DATA_BYTES, show_bytes
 from runner.errors import DataError
 
-__all__ = ["read_parquet"]
+__all__ = ["parquet_cells", "read_parquet"]
 
 
 def _pyarrow():
@@ -29,8 +29,20 @@ def _pyarrow():
     return pa, pq
 
 
-def read_parquet(raw: bytes, where: str, target: str | None) -> tuple[Table, np.ndarray]:
-    """The feature columns and the target column (numbers as float64, or text) of a Parquet file."""
+def parquet_cells(raw: bytes, where: str) -> dict[str, list[str]]:
+    """Each column's cells as text ("" for null), by name."""
+    pa, _ = _pyarrow()
+    table = _read(raw, where)
+    out = {}
+    for name, column in zip(table.column_names, table.columns):
+        values, missing = _column(pa, column, str(name), where)
+        out[str(name)] = [
+            "" if m else (repr(float(v)) if values.dtype.kind == "f" else str(v)) for v, m in zip(values, missing)
+        ]
+    return out
+
+
+def _read(raw: bytes, where: str):
     pa, pq = _pyarrow()
     try:
         pf = pq.ParquetFile(pa.BufferReader(raw))
@@ -42,11 +54,17 @@ def read_parquet(raw: bytes, where: str, target: str | None) -> tuple[Table, np.
                 f"{show_bytes(MAX_DATA_BYTES)} this tool reads",
                 where=where,
             )
-        table = pf.read()
+        return pf.read()
     except DataError:
         raise
     except Exception:  # pyarrow raises several kinds for a damaged file
         raise DataError("not a readable Parquet file", where=where) from None
+
+
+def read_parquet(raw: bytes, where: str, target: str | None) -> tuple[Table, np.ndarray]:
+    """The feature columns and the target column (numbers as float64, or text) of a Parquet file."""
+    pa, _ = _pyarrow()
+    table = _read(raw, where)
     names = [str(n) for n in table.column_names]
     dups = sorted({n for n in names if names.count(n) > 1})
     if dups:

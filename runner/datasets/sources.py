@@ -9,6 +9,7 @@ targets.py.
 
 from __future__ import annotations
 
+import csv
 import hashlib
 from dataclasses import dataclass
 from pathlib import Path
@@ -28,7 +29,7 @@ from runner.recipe.settings import BUNDLED
 if TYPE_CHECKING:
     from runner.recipe.settings import DataSettings
 
-__all__ = ["MAX_CLASSES_AUTO", "Dataset", "load_dataset", "source_key"]
+__all__ = ["MAX_CLASSES_AUTO", "Dataset", "column_cells", "is_image_source", "load_dataset", "source_key"]
 
 PARQUET_SUFFIXES = (".parquet", ".pq")
 
@@ -136,6 +137,30 @@ def _read_file(path: Path, label: str, data: DataSettings):
         # Options that can change what is read make another dataset of the same bytes.
         fp = hashlib.sha256(f"{fp}|{data.categorical}|{data.missing}".encode()).hexdigest()
     return X, y, names, task, classes, layout, fp
+
+
+def column_cells(path: Path, shown: str) -> dict[str, list[str]]:
+    """Each column's cells as text, by name, of a CSV or Parquet file (for `recipe new`'s
+    guess of the target), read and checked as load_dataset reads it."""
+    raw = read_limited(path, MAX_DATA_BYTES, key=None, shown=shown)
+    if path.suffix.lower() in PARQUET_SUFFIXES:
+        from runner.datasets.parquet_reader import parquet_cells
+
+        return parquet_cells(raw, shown)
+    f = CsvFile(raw, shown)
+    rows = list(csv.reader(f.rows_text, delimiter=f.delimiter))
+    return {h: [r[i].strip() for r in rows if i < len(r)] for i, h in enumerate(f.header)}
+
+
+def is_image_source(path: Path) -> bool:
+    """Whether a data file or folder holds images (a folder, or an NPZ whose X has 3 or 4
+    axes), for `recipe new`'s choice of model."""
+    if path.is_dir():
+        return True
+    if path.suffix.lower() != ".npz":
+        return False
+    X, _ = read_npz(read_limited(path, MAX_DATA_BYTES, key=None, shown=str(path)), str(path))
+    return X.ndim == 4
 
 
 def _refuse_image_options(data: DataSettings) -> None:
