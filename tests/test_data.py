@@ -100,3 +100,37 @@ def test_csv_errors_name_the_column_and_line(tmp_path):
     short.write_text("a,b,y\n1,2\n")
     with pytest.raises(DataError, match="row has 2 fields"):
         load_dataset(settings(source="short.csv", target="y"), tmp_path)
+
+
+def test_a_factor_over_the_target_gives_each_level_its_own_rows(tmp_path):
+    """Two targets of one file are two datasets: each configuration's stored jobs trained
+    on its own target (before, both got the rows of whichever was read last)."""
+    from conftest import invoke, write_recipe
+
+    from runner.recipe.grid import expand
+    from runner.recipe.loader import load_recipe
+
+    rng = np.random.default_rng(0)
+    rows = ["a,b,u,v"] + [f"{x:.3f},{z:.3f},{int(x > 0)},{int(z > 0)}" for x, z in rng.normal(size=(80, 2))]
+    (tmp_path / "two.csv").write_text("\n".join(rows) + "\n")
+    recipe = write_recipe(
+        tmp_path,
+        """
+        name = "two-targets"
+        seeds = [1]
+        [data]
+        source = "two.csv"
+        target = "u"
+        [model]
+        hidden = [4]
+        [train]
+        epochs = 1
+        [factors]
+        "data.target" = ["u", "v"]
+        """,
+    )
+    grid = expand(load_recipe(recipe))
+    first, second = (grid.datasets[c.data_id] for c in grid.configs)
+    assert first.fingerprint != second.fingerprint
+    assert first.feature_names == ("a", "b", "v") and second.feature_names == ("a", "b", "u")
+    assert invoke("run", recipe, "--workers", "1", "-q").exit_code == 0

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import csv
 import io
+import re
 
 import numpy as np
 
@@ -24,6 +25,7 @@ __all__ = ["DELIMITERS", "CsvFile", "find_delimiter", "split_csv"]
 DELIMITERS = (",", ";", "\t", "|")
 _NAMES = {",": "','", ";": "';'", "\t": "tab", "|": "'|'"}
 _SNIFF_LINES = 20
+_SKIPPED = re.compile(r"\s*(#|$)")  # blank lines and comment lines (matched at a line's start)
 
 
 class CsvFile:
@@ -34,19 +36,16 @@ class CsvFile:
             text = raw.decode("utf-8-sig")
         except UnicodeDecodeError:
             raise DataError("data file is not UTF-8 text", where=where) from None
-        numbered = [
-            (n, line)
-            for n, line in enumerate(text.splitlines(), 1)
-            if line.strip() and not line.lstrip().startswith("#")
-        ]
-        if len(numbered) < 2:
+        lines = text.splitlines()
+        kept = [i for i, line in enumerate(lines) if not _SKIPPED.match(line)]
+        if len(kept) < 2:
             raise DataError("CSV needs a header row and at least one data row", where=where)
         self.where = where
-        self.header_line = numbered[0][0]
-        self.lines = np.array([n for n, _ in numbered[1:]])
-        self.rows_text = [line for _, line in numbered[1:]]
-        self.delimiter = find_delimiter(numbered[0][1], self.rows_text[:_SNIFF_LINES])
-        self.header = _header(numbered[0][1], self.delimiter, where, self.header_line)
+        self.header_line = kept[0] + 1
+        self.lines = np.array(kept[1:]) + 1  # line numbers, from 1
+        self.rows_text = [lines[i] for i in kept[1:]]
+        self.delimiter = find_delimiter(lines[kept[0]], self.rows_text[:_SNIFF_LINES])
+        self.header = _header(lines[kept[0]], self.delimiter, where, self.header_line)
 
 
 def find_delimiter(header: str, sample: list[str]) -> str:

@@ -10,6 +10,7 @@ targets.py.
 from __future__ import annotations
 
 import csv
+import dataclasses
 import hashlib
 from dataclasses import dataclass
 from pathlib import Path
@@ -29,7 +30,15 @@ from runner.recipe.settings import BUNDLED
 if TYPE_CHECKING:
     from runner.recipe.settings import DataSettings
 
-__all__ = ["MAX_CLASSES_AUTO", "Dataset", "column_cells", "is_image_source", "load_dataset", "source_key"]
+__all__ = [
+    "MAX_CLASSES_AUTO",
+    "Dataset",
+    "column_cells",
+    "is_image_source",
+    "load_dataset",
+    "same_bytes_other_reading",
+    "source_key",
+]
 
 PARQUET_SUFFIXES = (".parquet", ".pq")
 
@@ -137,6 +146,13 @@ def _read_file(path: Path, label: str, data: DataSettings):
         # Options that can change what is read make another dataset of the same bytes.
         fp = hashlib.sha256(f"{fp}|{data.categorical}|{data.missing}".encode()).hexdigest()
     return X, y, names, task, classes, layout, fp
+
+
+def same_bytes_other_reading(ds: Dataset, key: tuple) -> Dataset:
+    """``ds`` with a fingerprint of its bytes and of how they were read (``source_key``),
+    for a grid that reads one file in two ways."""
+    fp = hashlib.sha256(f"{ds.fingerprint}|{key!r}".encode()).hexdigest()
+    return dataclasses.replace(ds, fingerprint=fp)
 
 
 def column_cells(path: Path, shown: str) -> dict[str, list[str]]:
