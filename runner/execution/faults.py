@@ -1,7 +1,8 @@
 """Fault injection for the robustness tests: make a worker die the way real ones do.
 
-Set ``RECIPE_FAULT="MODE@EPOCH"`` (MODE: exit, segv, kill, hang; or stacked, an exception
-raised in the stacked backend only, to test its visible fall-back) and optionally
+Set ``RECIPE_FAULT="MODE@EPOCH"`` (MODE: exit, segv, kill, hang; raise, an exception in
+the job as a bug would raise; or stacked, an exception raised in the stacked backend only,
+to test its visible fall-back) and optionally
 ``RECIPE_FAULT_ONCE=/path/marker``: then the fault fires only while the marker file does not
 exist, and creates it, so the retry succeeds. Unset in normal use; costs one lookup per job.
 """
@@ -33,6 +34,8 @@ class Fault:
                 return
         if self.mode == "stacked":
             raise RuntimeError("fault injected into the stacked path")
+        if self.mode == "raise":
+            raise RuntimeError("fault injected into the job")
         if self.mode == "exit":
             os._exit(3)
         if self.mode == "segv":
