@@ -183,12 +183,19 @@ def test_cli_defaults_name_the_column_and_the_option(tmp_path):
 
 
 def test_cli_runs_the_encoded_table_to_a_board(tmp_path):
+    """Both seeds train in one stacked group (their widths agree), none falls back."""
+    import sqlite3
+
     greenhouse(tmp_path / "g.csv")
     recipe = recipe_for(tmp_path, 'categorical = "onehot"\nmissing = "impute"')
-    result = invoke("run", recipe, "--workers", "1", "-q", "--format", "json")
+    result = invoke("run", recipe, "--workers", "1", "--format", "json")
     assert result.exit_code == 0, result.output
+    assert "training 1 stacked group of 2 jobs" in result.stderr
     board = json.loads(result.stdout)
     assert board["rows"][0]["n"] == 2
+    with sqlite3.connect(tmp_path / "runs" / "greenhouse.sqlite") as c:
+        rows = c.execute("SELECT status, diagnostics FROM jobs").fetchall()
+    assert [s for s, _ in rows] == ["done", "done"] and not any("notes" in json.loads(d) for _, d in rows)
 
 
 def test_a_column_empty_in_some_training_split_is_refused_up_front(tmp_path):

@@ -96,3 +96,12 @@ def test_pickled_arrays_are_not_loaded(tmp_path):
     np.savez(tmp_path / "o.npz", X=np.array([{"a": 1}] * 4, dtype=object), y=np.arange(4))
     result = invoke("check", recipe_for(tmp_path, "o.npz"), "--no-probe")
     assert result.exit_code == 2 and "pickled" in result.stderr
+
+
+def test_recipe_new_for_tabular_npz_writes_an_mlp(tmp_path):
+    rng = np.random.default_rng(1)
+    np.savez(tmp_path / "t.npz", X=rng.normal(size=(60, 3)), y=np.arange(60) % 3)
+    out = tmp_path / "t.toml"
+    result = invoke("new", tmp_path / "t.npz", "--out", out)
+    assert result.exit_code == 0, result.output
+    assert 'kind = "cnn"' not in out.read_text()
