@@ -86,6 +86,9 @@ def load_dataset(data: DataSettings, base_dir: Path) -> Dataset:
             value=source,
             hint=f'Write "./{source}" for the file or folder',
         )
+    folder = source not in BUNDLED and (base_dir / source).is_dir()
+    if not folder:
+        _refuse_image_options(data)
     if source in BUNDLED:
         X, y, names, classes, task, fp = _bundled(source, data)
         label = source
@@ -100,15 +103,20 @@ def load_dataset(data: DataSettings, base_dir: Path) -> Dataset:
                 allowed="a CSV, Parquet or NPZ file or an image folder, relative to the recipe, or "
                 + ", ".join(BUNDLED),
             )
-        if path.is_dir():
+        if folder:
             from runner.datasets.images import read_image_folder
 
+            if data.task == "regression":
+                raise DataError(
+                    "an image folder's labels are classes (its subfolders)",
+                    key="data.task",
+                    value="regression",
+                    allowed='"auto" or "classification"',
+                )
             X, y, classes, fp = read_image_folder(path, label, data.image_size, data.color)
             task, names = Task.CLASSIFICATION, tuple(f"pixel{i}" for i in range(int(np.prod(X.shape[1:]))))
         else:
             X, y, names, task, classes, layout, fp = _read_file(path, label, data)
-    if source in BUNDLED or not (base_dir / source).is_dir():
-        _refuse_image_options(data)
     if task is Task.CLASSIFICATION and len(classes) < 2:
         raise DataError(
             "the target has only one class",
