@@ -135,3 +135,50 @@ def test_fixed_validation_is_one_split_and_folds_are_sklearn_stratified_kfold():
     for got, (train, val) in zip(rows, ref):
         assert np.array_equal(got.val, rest[val]) and np.array_equal(got.train, rest[train])
     assert np.array_equal(np.sort(np.concatenate([r.val for r in rows])), rest)
+
+
+def test_a_factor_over_the_target_gives_each_level_its_own_rows(tmp_path):
+    """Two targets of one file are two datasets: each configuration's stored jobs trained
+    on its own target (before, both got the rows of whichever was read last)."""
+    from conftest import invoke, write_recipe
+
+    from runner.recipe.grid import expand
+    from runner.recipe.loader import load_recipe
+
+    rng = np.random.default_rng(0)
+    rows = ["a,b,u,v"] + [f"{x:.3f},{z:.3f},{int(x > 0)},{int(z > 0)}" for x, z in rng.normal(size=(80, 2))]
+    (tmp_path / "two.csv").write_text("\n".join(rows) + "\n")
+    recipe = write_recipe(
+        tmp_path,
+        """
+        name = "two-targets"
+        seeds = [1]
+        [data]
+        source = "two.csv"
+        target = "u"
+        [model]
+        hidden = [4]
+        [train]
+        epochs = 1
+        [factors]
+        "data.target" = ["u", "v"]
+        """,
+    )
+    grid = expand(load_recipe(recipe))
+    first, second = (grid.datasets[c.data_id] for c in grid.configs)
+    assert first.fingerprint != second.fingerprint
+    assert first.feature_names == ("a", "b", "v") and second.feature_names == ("a", "b", "u")
+    assert invoke("run", recipe, "--workers", "1", "-q").exit_code == 0
+
+
+def test_new_data_settings_join_the_identity_only_when_set():
+    """categorical, missing, image_size and color at their defaults are left out of a
+    job's identity (results stored before they existed keep their keys); set to anything
+    else, they are in it."""
+    from runner.recipe.settings import IDENTITY_FROM
+
+    base = resolve({"data": {"source": "iris"}}, {})
+    assert not set(IDENTITY_FROM["data"]) & set(base.identity()["data"])
+    for key, value in (("categorical", "onehot"), ("missing", "impute"), ("color", "rgb"), ("image_size", [4, 4])):
+        changed = resolve({"data": {"source": "iris", key: value}}, {})
+        assert key in changed.identity()["data"] and changed.identity() != base.identity()

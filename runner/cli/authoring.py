@@ -20,6 +20,9 @@ def check(recipe_path, store, workers, no_probe, no_stack):
     """Validate RECIPE and print its plan: factors, jobs, what is stored, a time estimate."""
     try:
         recipe, grid = load_grid(recipe_path)
+        from runner.datasets.feasibility import check_grid_splits
+
+        check_grid_splits(grid)  # every split the run would make, before any probe trains
         from runner.execution.estimate import plan_report
         from runner.execution.executors import default_workers
         from runner.store.database import Store

@@ -131,6 +131,7 @@ def _run(
         fail(err)
     if wants_workers(workers, on, recipe.run):
         start_early()  # its imports overlap with this process's from here on (see forkserver.py)
+    from runner.datasets.feasibility import check_grid_splits
     from runner.evidence.leaderboard import leaderboard
     from runner.execution.executors import default_workers
     from runner.execution.planning import execute, make_executor, plan
@@ -142,6 +143,7 @@ def _run(
 
     try:
         grid = expand(recipe)
+        check_grid_splits(grid)  # every split the jobs will make, before any job trains
         where = on or recipe.run.on
         workers = workers or recipe.run.workers or default_workers()
         with Store(store_path(recipe, store)) as db:

@@ -1,14 +1,17 @@
-"""Datasets: CSV and NPZ files, scikit-learn's bundled sets, moons and circles.
+"""Datasets: CSV, Parquet and NPZ files, image folders, scikit-learn's bundled sets, moons
+and circles.
 
 ``load_dataset`` reads a source once (in the main process) into a ``Dataset`` with a
-fingerprint of its bytes; splits.py cuts it per seed.
+fingerprint of its bytes; splits.py cuts it per seed. The readers live beside this module
+(csv_reader, parquet_reader, npz_reader, images) and share the checks of columns.py and
+targets.py.
 """
 
 from __future__ import annotations
 
 import csv
+import dataclasses
 import hashlib
-import io
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -16,15 +19,28 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from runner.components.metrics import Task
+from runner.datasets.columns import Layout, build_features, check_target_name
+from runner.datasets.csv_reader import CsvFile, split_csv
+from runner.datasets.files import MAX_DATA_BYTES, read_limited
+from runner.datasets.npz_reader import read_npz
+from runner.datasets.targets import MAX_CLASSES_AUTO, target_from_array, target_from_cells
 from runner.errors import DataError
 from runner.recipe.settings import BUNDLED
 
 if TYPE_CHECKING:
     from runner.recipe.settings import DataSettings
 
-__all__ = ["MAX_CLASSES_AUTO", "Dataset", "load_dataset", "source_key"]
+__all__ = [
+    "MAX_CLASSES_AUTO",
+    "Dataset",
+    "column_cells",
+    "is_image_source",
+    "load_dataset",
+    "same_bytes_other_reading",
+    "source_key",
+]
 
-MAX_CLASSES_AUTO = 20  # whole-number targets with at most this many values count as classes
+PARQUET_SUFFIXES = (".parquet", ".pq")
 
 
 @dataclass(frozen=True)
@@ -36,6 +52,7 @@ class Dataset:
     feature_names: tuple[str, ...]
     fingerprint: str  # sha256 of the bytes (files) or of the generator's settings
     label: str  # where it came from, for messages
+    layout: Layout | None = None  # text or empty cells accepted: X's columns (encoded per split)
 
     @property
     def image_shape(self) -> tuple[int, ...] | None:
@@ -43,37 +60,63 @@ class Dataset:
 
 
 def source_key(data: DataSettings) -> tuple:
-    """The settings that decide which rows are loaded (not how they are split)."""
-    return (data.source, data.target, data.task, data.n_samples, data.noise)
+    """The settings that decide which rows are loaded and how (not how they are split)."""
+    return (
+        data.source,
+        data.target,
+        data.task,
+        data.n_samples,
+        data.noise,
+        data.categorical,
+        data.missing,
+        data.image_size,
+        data.color,
+    )
 
 
 def load_dataset(data: DataSettings, base_dir: Path) -> Dataset:
+    """Read ``data.source`` (a bundled name, or a path relative to ``base_dir``; absolute
+    paths as they are) once, checked: every refusal is a DataError naming the cell or array."""
     source = data.source
+    layout = None
+    if source in BUNDLED and (base_dir / source).exists():
+        raise DataError(
+            "names both a bundled data set and a file or folder beside the recipe",
+            key="data.source",
+            value=source,
+            hint=f'Write "./{source}" for the file or folder',
+        )
+    folder = source not in BUNDLED and (base_dir / source).is_dir()
+    if not folder:
+        _refuse_image_options(data)
     if source in BUNDLED:
         X, y, names, classes, task, fp = _bundled(source, data)
         label = source
     else:
-        path = (base_dir / source).resolve()
+        path = base_dir / source
         label = str(source)
-        try:
-            raw = path.read_bytes()
-        except FileNotFoundError:
+        if not path.exists():
             raise DataError(
                 "data file not found",
                 key="data.source",
                 value=source,
-                allowed="a CSV or NPZ path relative to the recipe, or " + ", ".join(BUNDLED),
-            ) from None
-        except OSError as exc:
-            raise DataError(f"cannot read data file ({exc.strerror})", key="data.source", value=source) from None
-        fp = hashlib.sha256(raw).hexdigest()
-        if path.suffix.lower() == ".npz":
-            X, y = _npz(raw, label)
-            names = tuple(f"pixel{i}" for i in range(int(np.prod(X.shape[1:]))))
-            task, y, classes = _target(y, data.task, label, is_text=False)
+                allowed="a CSV, Parquet or NPZ file or an image folder, relative to the recipe, or "
+                + ", ".join(BUNDLED),
+            )
+        if folder:
+            from runner.datasets.images import read_image_folder
+
+            if data.task == "regression":
+                raise DataError(
+                    "an image folder's labels are classes (its subfolders)",
+                    key="data.task",
+                    value="regression",
+                    allowed='"auto" or "classification"',
+                )
+            X, y, classes, fp = read_image_folder(path, label, data.image_size, data.color)
+            task, names = Task.CLASSIFICATION, tuple(f"pixel{i}" for i in range(int(np.prod(X.shape[1:]))))
         else:
-            X, y_raw, names, is_text = _csv(raw, label, data.target)
-            task, y, classes = _target(y_raw, data.task, label, is_text)
+            X, y, names, task, classes, layout, fp = _read_file(path, label, data)
     if task is Task.CLASSIFICATION and len(classes) < 2:
         raise DataError(
             "the target has only one class",
@@ -81,7 +124,78 @@ def load_dataset(data: DataSettings, base_dir: Path) -> Dataset:
             value=data.target,
             hint="A classifier needs at least two classes",
         )
-    return Dataset(X=X, y=y, task=task, classes=classes, feature_names=names, fingerprint=fp, label=label)
+    return Dataset(
+        X=X, y=y, task=task, classes=classes, feature_names=names, fingerprint=fp, label=label, layout=layout
+    )
+
+
+def _read_file(path: Path, label: str, data: DataSettings):
+    raw = read_limited(path, MAX_DATA_BYTES, key="data.source", shown=label)
+    fp = hashlib.sha256(raw).hexdigest()
+    suffix = path.suffix.lower()
+    if suffix == ".npz":
+        X, y_arr = read_npz(raw, label)
+        names = tuple(f"pixel{i}" if X.ndim > 2 else f"x{i}" for i in range(int(np.prod(X.shape[1:]))))
+        task, y, classes = target_from_array(y_arr, label, data.task)
+        return X, y, names, task, classes, None, fp
+    if suffix in PARQUET_SUFFIXES:
+        from runner.datasets.parquet_reader import read_parquet
+
+        table, target = read_parquet(raw, label, data.target)
+        task, y, classes = target_from_array(target, label, data.task, name=data.target)
+    else:
+        csv_file = CsvFile(raw, label)
+        check_target_name(data.target, csv_file.header, label)
+        table, cells = split_csv(csv_file, data.target)
+        task, y, classes = target_from_cells(cells, data.target, data.task, table.at, label)
+    X, layout = build_features(table, data.categorical, data.missing)
+    names = layout.feature_names() if layout is not None else tuple(c.name for c in table.columns)
+    if (data.categorical, data.missing) != ("error", "error"):
+        # Options that can change what is read make another dataset of the same bytes.
+        fp = hashlib.sha256(f"{fp}|{data.categorical}|{data.missing}".encode()).hexdigest()
+    return X, y, names, task, classes, layout, fp
+
+
+def same_bytes_other_reading(ds: Dataset, key: tuple) -> Dataset:
+    """``ds`` with a fingerprint of its bytes and of how they were read (``source_key``),
+    for a grid that reads one file in two ways."""
+    fp = hashlib.sha256(f"{ds.fingerprint}|{key!r}".encode()).hexdigest()
+    return dataclasses.replace(ds, fingerprint=fp)
+
+
+def column_cells(path: Path, shown: str) -> dict[str, list[str]]:
+    """Each column's cells as text, by name, of a CSV or Parquet file (for `recipe new`'s
+    guess of the target), read and checked as load_dataset reads it."""
+    raw = read_limited(path, MAX_DATA_BYTES, key=None, shown=shown)
+    if path.suffix.lower() in PARQUET_SUFFIXES:
+        from runner.datasets.parquet_reader import parquet_cells
+
+        return parquet_cells(raw, shown)
+    f = CsvFile(raw, shown)
+    rows = list(csv.reader(f.rows_text, delimiter=f.delimiter))
+    return {h: [r[i].strip() for r in rows if i < len(r)] for i, h in enumerate(f.header)}
+
+
+def is_image_source(path: Path) -> bool:
+    """Whether a data file or folder holds images (a folder, or an NPZ whose X has 3 or 4
+    axes), for `recipe new`'s choice of model."""
+    if path.is_dir():
+        return True
+    if path.suffix.lower() != ".npz":
+        return False
+    X, _ = read_npz(read_limited(path, MAX_DATA_BYTES, key=None, shown=str(path)), str(path))
+    return X.ndim == 4
+
+
+def _refuse_image_options(data: DataSettings) -> None:
+    for key, value, default in (("image_size", data.image_size, None), ("color", data.color, "auto")):
+        if value != default:
+            raise DataError(
+                "applies to image folders only",
+                key=f"data.{key}",
+                value=list(value) if isinstance(value, tuple) else value,
+                hint="Remove it, or point data.source at a folder with one subfolder of images per class",
+            )
 
 
 def _bundled(name: str, data: DataSettings):
@@ -116,124 +230,3 @@ def _bundled(name: str, data: DataSettings):
         names = tuple(bunch.feature_names)
     classes = tuple(str(c) for c in bunch.target_names)
     return X, bunch.target.astype(np.int64), names, classes, Task.CLASSIFICATION, fp
-
-
-def _csv(raw: bytes, label: str, target: str | None):
-    try:
-        text = raw.decode("utf-8-sig")
-    except UnicodeDecodeError:
-        raise DataError("data file is not UTF-8 text", where=label) from None
-    numbered = [
-        (n, line) for n, line in enumerate(text.splitlines(), 1) if line.strip() and not line.lstrip().startswith("#")
-    ]
-    if len(numbered) < 2:
-        raise DataError("CSV needs a header row and at least one data row", where=label)
-    rows = list(csv.reader(io.StringIO("\n".join(line for _, line in numbered))))
-    header = [h.strip() for h in rows[0]]
-    if target is None:
-        raise DataError(
-            "a CSV source needs the target column named", key="data.target", allowed=", ".join(f'"{h}"' for h in header)
-        )
-    if target not in header:
-        from runner.recipe.constraints import suggest
-
-        near = suggest(target, header)
-        raise DataError(
-            "target column not in the CSV header",
-            where=label,
-            line=numbered[0][0],
-            key="data.target",
-            value=target,
-            allowed=", ".join(f'"{h}"' for h in header),
-            hint=f'Did you mean "{near}"?' if near else None,
-        )
-    t = header.index(target)
-    names = tuple(h for i, h in enumerate(header) if i != t)
-    if not names:
-        raise DataError("the CSV has no feature columns besides the target", where=label)
-    X = np.empty((len(rows) - 1, len(names)), dtype=np.float32)
-    y_raw = []
-    for r, row in enumerate(rows[1:]):
-        line = numbered[r + 1][0]
-        if len(row) != len(header):
-            raise DataError(f"row has {len(row)} fields, the header has {len(header)}", where=label, line=line)
-        y_raw.append(row[t].strip())
-        c = 0
-        for i, cell in enumerate(row):
-            if i == t:
-                continue
-            if not cell.strip():
-                raise DataError(
-                    f'column "{header[i]}" has a missing value',
-                    where=label,
-                    line=line,
-                    allowed="numbers (missing values are not accepted)",
-                    hint="Fill or drop rows with missing values",
-                )
-            try:
-                X[r, c] = float(cell)
-            except ValueError:
-                raise DataError(
-                    f'column "{header[i]}" is not numeric',
-                    where=label,
-                    line=line,
-                    value=cell.strip(),
-                    allowed="numbers (missing values are not accepted)",
-                    hint="Encode categories as numbers or drop the column",
-                ) from None
-            if not np.isfinite(X[r, c]):
-                raise DataError(
-                    f'column "{header[i]}" has an infinite or NaN value', where=label, line=line, value=cell.strip()
-                )
-            c += 1
-    if any(v == "" for v in y_raw):
-        line = numbered[1 + y_raw.index("")][0]
-        raise DataError(f'target column "{target}" has an empty value', where=label, line=line)
-    try:
-        y = np.array([float(v) for v in y_raw])
-        is_text = False
-    except ValueError:
-        y = np.array(y_raw, dtype=object)
-        is_text = True
-    return X, y, names, is_text
-
-
-def _npz(raw: bytes, label: str):
-    try:
-        with np.load(io.BytesIO(raw), allow_pickle=False) as z:
-            if "X" not in z or "y" not in z:
-                raise DataError("an NPZ source needs arrays named X and y", where=label, value=sorted(z.keys()))
-            X, y = z["X"], z["y"]
-    except DataError:
-        raise
-    except Exception as exc:  # numpy raises several kinds for a bad archive
-        raise DataError(f"not a readable NPZ archive ({exc})", where=label) from None
-    if X.ndim == 3:
-        X = X[:, None]
-    if X.ndim != 4 or len(X) != len(y) or y.ndim != 1:
-        raise DataError(
-            "NPZ needs X of shape (N, H, W) or (N, C, H, W) and y of shape (N,)",
-            where=label,
-            value=f"X{tuple(X.shape)}, y{tuple(y.shape)}",
-        )
-    return X.astype(np.float32), y
-
-
-def _target(y: np.ndarray, task: str, label: str, is_text: bool):
-    if task == "auto":
-        whole = not is_text and np.all(np.mod(y.astype(float), 1) == 0)
-        task = "classification" if is_text or (whole and len(np.unique(y)) <= MAX_CLASSES_AUTO) else "regression"
-    if task == Task.REGRESSION:
-        if is_text:
-            raise DataError(
-                "a text target cannot be a regression target",
-                where=label,
-                key="data.task",
-                value="regression",
-                allowed='"classification"',
-            )
-        return Task.REGRESSION, y.astype(np.float64), ()
-    values = sorted(set(y.tolist()), key=lambda v: (isinstance(v, str), v))
-    index = {v: i for i, v in enumerate(values)}
-    classes = tuple(str(int(v)) if isinstance(v, float) and v.is_integer() else str(v) for v in values)
-    return Task.CLASSIFICATION, np.array([index[v] for v in y.tolist()], dtype=np.int64), classes

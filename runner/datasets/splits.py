@@ -16,6 +16,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from runner.components.metrics import Task
+from runner.datasets.encoding import Preprocessing, describe_preprocessing, encode_split
 from runner.datasets.sources import Dataset
 from runner.errors import DataError
 
@@ -54,6 +55,9 @@ class Splits:
     y_std: float = 1.0
     scaler_mean: np.ndarray | None = None
     rows: SplitRows | None = None
+    # How the features were made, every statistic from the training rows: what an exported
+    # model needs to prepare new rows as these were (encoding.Preprocessing.to_json).
+    preprocessing: Preprocessing | None = None
 
 
 def _split_off(idx: np.ndarray, share: float, seed: int, strat: np.ndarray | None):
@@ -108,7 +112,7 @@ def split_and_scale(ds: Dataset, data: DataSettings, seed: int, fold: int | None
     """One job's split. Scaling statistics come from the training rows only."""
     rows = split_rows(ds, data, seed, fold)
     train_idx, val_idx, test_idx = rows.train, rows.val, rows.test
-    X = ds.X.reshape(len(ds.X), -1)
+    X, encodings = encode_split(ds.X.reshape(len(ds.X), -1), ds.layout, train_idx, ds.label)
     mean = np.zeros(X.shape[1], np.float32)
     scale = np.ones(X.shape[1], np.float32)
     if data.scale == "standard":
@@ -125,4 +129,5 @@ def split_and_scale(ds: Dataset, data: DataSettings, seed: int, fold: int | None
         y_mean = float(y[train_idx].mean())
         y_std = float(y[train_idx].std()) or 1.0
     Xte, yte = (Xs[test_idx], y[test_idx]) if test_idx is not None else (None, None)
-    return Splits(Xs[train_idx], y[train_idx], Xs[val_idx], y[val_idx], Xte, yte, y_mean, y_std, mean, rows)
+    pre = describe_preprocessing(ds.feature_names, encodings, ds.layout, data.scale, mean, scale, ds.image_shape)
+    return Splits(Xs[train_idx], y[train_idx], Xs[val_idx], y[val_idx], Xte, yte, y_mean, y_std, mean, rows, pre)

@@ -18,7 +18,7 @@ from typing import Any
 from runner.components.lr_schedules import check_schedule
 from runner.components.metrics import METRICS, Task, for_task
 from runner.components.optimizers import check_optimizer
-from runner.datasets.sources import Dataset, load_dataset, source_key
+from runner.datasets.sources import Dataset, load_dataset, same_bytes_other_reading, source_key
 from runner.errors import DataError, RecipeError, UserError
 from runner.recipe.loader import Recipe, resolve
 from runner.recipe.settings import Settings
@@ -176,6 +176,10 @@ def _expand(recipe: Recipe) -> Grid:
             except DataError as err:
                 raise err.located(where=err.where or recipe.path.name) from None
         ds = by_source[skey]
+        if datasets.get(ds.fingerprint, ds) is not ds:
+            # The same bytes read another way (e.g. a factor over data.target): another
+            # dataset, so another id, or its jobs would be handed the first one's rows.
+            ds = by_source[skey] = same_bytes_other_reading(ds, skey)
         datasets[ds.fingerprint] = ds
         if task is None:
             task = ds.task

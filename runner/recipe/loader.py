@@ -167,13 +167,13 @@ class Recipe:
 
 
 def load_recipe(path: str | Path) -> Recipe:
+    from runner.datasets.files import MAX_RECIPE_BYTES, read_limited
+
     path = Path(path)
-    try:
-        data = path.read_bytes()
-    except FileNotFoundError:
-        raise RecipeError("recipe file not found", where=str(path), hint="Give the path of a .toml recipe") from None
-    except OSError as exc:
-        raise RecipeError(f"cannot read recipe ({exc.strerror})", where=str(path)) from None
+    if not path.exists():
+        raise RecipeError("recipe file not found", where=str(path), hint="Give the path of a .toml recipe")
+    # Regular files only, bounded: a recipe path may name /dev/zero, a FIFO or a huge file.
+    data = read_limited(path, MAX_RECIPE_BYTES, key=None, shown=str(path), error=RecipeError)
     try:
         text = data.decode("utf-8")
     except UnicodeDecodeError:

@@ -24,6 +24,7 @@ from runner.recipe.constraints import Boolean, Choice, Either, Integer, IntList,
 __all__ = [
     "BUNDLED",
     "DATA",
+    "IDENTITY_FROM",
     "MODEL",
     "NOT_IDENTITY",
     "SECTIONS",
@@ -57,8 +58,12 @@ SPLIT = {
 }  # fmt: skip
 
 DATA = {
-    "source": Param(Text(), doc="CSV or NPZ path relative to the recipe, or a bundled name: " + ", ".join(BUNDLED)),
-    "target": Param(Text(), None, "name of the target column (CSV only)"),
+    "source": Param(
+        Text(),
+        doc="a CSV, Parquet or NPZ file or an image folder, relative to the recipe, or a bundled name: "
+        + ", ".join(BUNDLED),
+    ),
+    "target": Param(Text(), None, "name of the target column (CSV and Parquet)"),
     "task": Param(
         Choice(("auto", "classification", "regression")),
         "auto",
@@ -70,6 +75,26 @@ DATA = {
     ),
     "n_samples": Param(Integer(20, 1_000_000), 1000, "rows generated for moons and circles"),
     "noise": Param(Real(0, None), 0.1, "noise level for moons and circles"),
+    "categorical": Param(
+        Choice(("error", "onehot")),
+        "error",
+        "text feature columns: error, or onehot (categories fitted on the training split; unseen ones all zero)",
+    ),
+    "missing": Param(
+        Choice(("error", "impute")),
+        "error",
+        "empty feature cells: error, or impute (training-split mean or most frequent value, plus an indicator column)",
+    ),
+    "image_size": Param(
+        IntList(low=1, min_len=2, max_len=2),
+        None,
+        "image folders: resize every image to [H, W]; unset: keep their size (all must agree)",
+    ),
+    "color": Param(
+        Choice(("auto", "grayscale", "rgb")),
+        "auto",
+        "image folders: channels; auto is grayscale when every image is, else rgb",
+    ),
 }
 
 MODEL = {
@@ -106,7 +131,12 @@ TRAIN = {
 }
 
 # Settings that change how a job is run but not what it computes: left out of its identity.
-NOT_IDENTITY = {"train": ("time_limit", "checkpoint_every")}
+NOT_IDENTITY: dict[str, tuple[str, ...]] = {"train": ("time_limit", "checkpoint_every")}
+
+# Settings added after results were stored, left out of a job's identity while at their
+# default: the default computes exactly what the tool computed before the setting existed,
+# so results stored then keep their keys and are not rerun.
+IDENTITY_FROM: dict[str, tuple[str, ...]] = {"data": ("categorical", "missing", "image_size", "color")}
 
 SECTIONS = {"data": DATA, "model": MODEL, "train": TRAIN}
 
@@ -163,6 +193,10 @@ class DataSettings:
     scale: str
     n_samples: int
     noise: float
+    categorical: str  # "error" or "onehot"
+    missing: str  # "error" or "impute"
+    image_size: tuple[int, int] | None
+    color: str  # "auto", "grayscale" or "rgb"
 
 
 @dataclass(frozen=True, slots=True)
@@ -235,6 +269,8 @@ class Settings:
         """From the validated tables (``constraints.validate_table`` output)."""
         data = dict(raw["data"])
         data["split"] = SplitSettings(**data["split"])
+        if data.get("image_size") is not None:
+            data["image_size"] = tuple(data["image_size"])
         model: dict[str, Any] = {k: tuple(v) if isinstance(v, list) else v for k, v in raw["model"].items()}
         return cls(DataSettings(**data), ModelSettings(**model), TrainSettings(**raw["train"]))
 
@@ -247,11 +283,16 @@ class Settings:
         }
 
     def identity(self) -> dict[str, dict[str, Any]]:
-        """``to_dict`` without NOT_IDENTITY: what a job's key is hashed from."""
+        """``to_dict`` without NOT_IDENTITY, and without IDENTITY_FROM settings at their
+        default: what a job's key is hashed from."""
         out = self.to_dict()
         for section, keys in NOT_IDENTITY.items():
             for key in keys:
                 out[section].pop(key)
+        for section, keys in IDENTITY_FROM.items():
+            for key in keys:
+                if out[section][key] == SECTIONS[section][key].default:
+                    out[section].pop(key)
         return out
 
     def flat(self) -> dict[str, Any]:

@@ -2,13 +2,11 @@
 
 from __future__ import annotations
 
-import csv
-import io
 import os
 import re
 from pathlib import Path
 
-from runner.datasets.sources import MAX_CLASSES_AUTO
+from runner.datasets.sources import MAX_CLASSES_AUTO, column_cells, is_image_source
 from runner.errors import DataError
 from runner.recipe.settings import BUNDLED
 
@@ -18,18 +16,9 @@ _LIKELY = ("target", "label", "class", "y", "outcome", "species", "result")
 
 
 def _read_columns(path: Path) -> dict[str, list[str]]:
-    try:
-        text = path.read_text(encoding="utf-8-sig")
-    except FileNotFoundError:
-        raise DataError("data file not found", where=str(path)) from None
-    except UnicodeDecodeError:
-        raise DataError("data file is not UTF-8 text", where=str(path)) from None
-    lines = [l for l in text.splitlines() if l.strip() and not l.lstrip().startswith("#")]
-    rows = list(csv.reader(io.StringIO("\n".join(lines))))
-    if len(rows) < 2:
-        raise DataError("CSV needs a header row and at least one data row", where=str(path))
-    header = [h.strip() for h in rows[0]]
-    return {h: [r[i].strip() for r in rows[1:] if i < len(r)] for i, h in enumerate(header)}
+    if not path.exists():
+        raise DataError("data file not found", where=str(path))
+    return column_cells(path, str(path))
 
 
 def _kind(values: list[str]) -> tuple[str, int]:
@@ -78,8 +67,8 @@ def starter_recipe(source: str, out: Path, target: str | None = None) -> str:
         path = Path(source)
         rel = os.path.relpath(path.resolve(), out.resolve().parent)
         data.append(f'source = "{rel}"                # relative to this recipe')
-        if path.suffix.lower() == ".npz":
-            image = True
+        if path.is_dir() or path.suffix.lower() == ".npz":
+            image = is_image_source(path)
         else:
             candidates = target_candidates(path)
             if target is None:
