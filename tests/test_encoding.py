@@ -45,7 +45,7 @@ def data_settings(**extra):
 
 def sklearn_rows(ds, seed, val=0.2, test=0.2):
     idx = np.arange(len(ds.y))
-    rest, test_idx = train_test_split(idx, test_size=test, random_state=seed, stratify=ds.y)
+    rest, test_idx = train_test_split(idx, test_size=test, random_state=0, stratify=ds.y)  # test_seed 0
     train_idx, val_idx = train_test_split(rest, test_size=val / (1 - test), random_state=seed, stratify=ds.y[rest])
     return train_idx, val_idx, test_idx
 

@@ -69,12 +69,11 @@ def test_three_rows_in_all(tmp_path):
 
 
 def test_infeasible_level_of_a_factor_names_its_configuration(tmp_path):
-    """Only one level of "data.split.stratify" fails: the message names that configuration."""
-    write_csv(tmp_path / "d.csv", ["a", "b"] * 20 + ["rare"])
-    recipe = recipe_for(
-        tmp_path, "{ val = 0.2, test = 0.2 }", factors='[factors]\n"data.split.stratify" = [false, true]'
-    )
-    refused(tmp_path, recipe, 'class "rare"', "in the configuration data.split.stratify = true")
+    """Only one level of "data.split.val" fails (too few validation rows for three classes
+    under stratification): the message names that configuration."""
+    write_csv(tmp_path / "d.csv", ["a", "b"] * 20 + ["rare"] * 3)
+    recipe = recipe_for(tmp_path, "{ val = 0.2, test = 0.2 }", factors='[factors]\n"data.split.val" = [0.2, 0.04]')
+    refused(tmp_path, recipe, "fewer rows than the 3 classes", "in the configuration data.split.val = 0.04")
 
 
 def test_feasible_grid_passes_and_runs(tmp_path):

@@ -115,9 +115,14 @@ def starter_recipe(source: str, out: Path, target: str | None = None) -> str:
     ]
     factors = [
         "# Every combination of levels is one configuration. A linked factor moves several",
-        "# settings together: [factors.NAME] with equal-length lists (and optional labels).",
+        "# settings together, position by position: here each optimizer gets learning rates",
+        "# suited to it (plain SGD at Adam's rate would only show that the rate is too small).",
+        "[factors.optimizer]",
+        'labels           = ["sgd 0.03", "sgd 0.1", "momentum 0.01", "adam 0.001", "adam 0.003"]',
+        '"train.optimizer" = ["sgd", "sgd", "momentum", "adam", "adam"]',
+        '"train.lr"        = [0.03, 0.1, 0.01, 0.001, 0.003]',
+        "",
         "[factors]",
-        '"train.optimizer" = ["sgd", "momentum", "adam"]',
         '"train.l2" = [0.0, 1e-4]',
         "",
     ]
