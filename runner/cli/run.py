@@ -135,6 +135,7 @@ def _run(
     from runner.execution.executors import default_workers
     from runner.execution.planning import execute, make_executor, plan
     from runner.execution.progress import Progress
+    from runner.execution.retention import retain
     from runner.outputs.mlflow_export import RunLogger
     from runner.outputs.text import render
     from runner.recipe.grid import expand
@@ -157,10 +158,19 @@ def _run(
             tracker = RunLogger(mlflow_uri or recipe.tracking.mlflow, grid, db)
             try:
                 execute(
-                    grid, db, todo.to_run, executor, progress, time_limit, on_stored=tracker.stored, stack=not no_stack
+                    grid,
+                    db,
+                    todo.to_run,
+                    executor,
+                    progress,
+                    time_limit,
+                    on_stored=tracker.stored,
+                    stack=not no_stack,
+                    keep_weights=recipe.run.keep_weights != "none",
                 )
                 _report_tracking(tracker.finish(), tracker.uri, recipe_path, quiet)
             except KeyboardInterrupt:
+                tracker.interrupted()
                 done = len(db.finished_keys() & {j.key for j in grid})
                 click.echo(
                     f"\nInterrupted: {done} of {todo.total} jobs are stored. Run the same "
@@ -168,7 +178,11 @@ def _run(
                     err=True,
                 )
                 sys.exit(130)
-            click.echo(render(leaderboard(grid, db), fmt or "table"), nl=False)
+            doc = leaderboard(grid, db)
+            retained = retain(grid, db, doc, recipe.run.keep_weights)
+            if not quiet and (retained.jobs or retained.dropped):
+                click.echo(retained.describe(), err=True)
+            click.echo(render(doc, fmt or "table"), nl=False)
     except UserError as err:
         fail(err)
 

@@ -162,6 +162,9 @@ class RunLogger:
         except Exception:
             self.failed = True
 
+    def interrupted(self) -> None:
+        """The run was stopped part-way."""
+
     def finish(self) -> list[str] | None:
         """Log whatever is still missing; the errors (empty: all logged), None without MLflow."""
         if self.exporter is None:

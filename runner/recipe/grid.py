@@ -57,7 +57,9 @@ class Job:
     seed: int
     monitor: str
 
-    def spec(self, checkpoint: str | None = None, time_limit: float | None = None) -> JobSpec:
+    def spec(
+        self, checkpoint: str | None = None, time_limit: float | None = None, keep_weights: bool = False
+    ) -> JobSpec:
         return JobSpec(
             key=self.key,
             seed=self.seed,
@@ -66,6 +68,7 @@ class Job:
             data_id=self.config.data_id,
             checkpoint=checkpoint,
             time_limit=time_limit,
+            keep_weights=keep_weights,
         )
 
 
