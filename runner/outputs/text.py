@@ -10,7 +10,18 @@ import json
 from runner.components.metrics import Goal
 from runner.evidence.document import Ablation, Leaderboard, Row
 
-__all__ = ["FORMATS", "grid_lines", "interval", "number", "p_text", "render", "render_ablation", "versus"]
+__all__ = [
+    "FORMATS",
+    "ablation_tables",
+    "columns",
+    "grid_lines",
+    "interval",
+    "number",
+    "p_text",
+    "render",
+    "render_ablation",
+    "versus",
+]
 
 FORMATS = ("csv", "json", "markdown", "table")
 
@@ -38,7 +49,7 @@ def versus(row: Row) -> str:
     return f"{vs.diff_mean:+.4f} p={vs.p_holm:.2g} {mark}"
 
 
-def _columns(doc: Leaderboard) -> tuple[list[str], list[list[str]]]:
+def columns(doc: Leaderboard) -> tuple[list[str], list[list[str]]]:
     factor_names = doc.factor_names
     header = ["rank", *factor_names, "n", "mean", "sd", "95% CI", "test", "vs best (Holm)", "flags"]
     body = []
@@ -80,7 +91,7 @@ def _head(doc: Leaderboard) -> list[str]:
 
 
 def _table(doc: Leaderboard) -> str:
-    header, body = _columns(doc)
+    header, body = columns(doc)
     widths = [max(len(r[i]) for r in [header, *body]) for i in range(len(header))]
     fmt = lambda cells: "  ".join(
         c.rjust(w) if i == 0 else c.ljust(w) for i, (c, w) in enumerate(zip(cells, widths))
@@ -92,7 +103,7 @@ def _table(doc: Leaderboard) -> str:
 
 
 def _markdown(doc: Leaderboard) -> str:
-    header, body = _columns(doc)
+    header, body = columns(doc)
     esc = lambda s: s.replace("|", "\\|")
     lines = [
         f"### {doc.recipe}",
@@ -179,10 +190,9 @@ def p_text(value) -> str:
     return "-" if value is None else f"{value:.2g}"
 
 
-def render_ablation(ab: Ablation, markdown: bool = False) -> str:
-    """The ablation tables of a leaderboard, as text or markdown."""
-    title = (lambda t: f"#### {t}") if markdown else (lambda t: t)
-    out: list[str] = []
+def ablation_tables(ab: Ablation) -> list[tuple[str, list[str], list[list[str]]]]:
+    """The ablation tables as (title, header, rows of text cells), for every renderer."""
+    out: list[tuple[str, list[str], list[list[str]]]] = []
     body = []
     for eff in ab.main_effects:
         for lvl in eff.levels:
@@ -201,36 +211,34 @@ def render_ablation(ab: Ablation, markdown: bool = False) -> str:
                 ]
             )
     if body:
-        out += [
-            "",
-            title(
+        out.append(
+            (
                 f"Main effects on {ab.metric}: each level averaged over the other factors; "
-                "difference to the baseline paired over matched configurations and seeds"
-            ),
-            "",
-        ]
-        out += grid_lines(
-            ["factor", "level", "mean", "95% CI", "vs baseline", "95% CI", "p", "pairs/seeds"], body, markdown
+                "difference to the baseline paired over matched configurations and seeds",
+                ["factor", "level", "mean", "95% CI", "vs baseline", "95% CI", "p", "pairs/seeds"],
+                body,
+            )
         )
     ofat = ab.one_at_a_time
     if ofat and ofat.rows:
         base = ", ".join(f"{k} = {v}" for k, v in ofat.baseline.items())
-        out += ["", title(f"One factor at a time from the baseline ({base}; mean {number(ofat.baseline_mean)})"), ""]
-        out += grid_lines(
-            ["factor", "changed to", "mean", "vs baseline", "95% CI", "p", "seeds"],
-            [
+        out.append(
+            (
+                f"One factor at a time from the baseline ({base}; mean {number(ofat.baseline_mean)})",
+                ["factor", "changed to", "mean", "vs baseline", "95% CI", "p", "seeds"],
                 [
-                    r.factor,
-                    r.label,
-                    number(r.mean),
-                    "-" if r.diff_mean is None else f"{r.diff_mean:+.4f}",
-                    interval(r.ci95),
-                    p_text(r.p_value),
-                    str(r.n_pairs),
-                ]
-                for r in ofat.rows
-            ],
-            markdown,
+                    [
+                        r.factor,
+                        r.label,
+                        number(r.mean),
+                        "-" if r.diff_mean is None else f"{r.diff_mean:+.4f}",
+                        interval(r.ci95),
+                        p_text(r.p_value),
+                        str(r.n_pairs),
+                    ]
+                    for r in ofat.rows
+                ],
+            )
         )
     for inter in ab.interactions:
         a_levels = list(next(iter(inter.means.values())).keys()) if inter.means else []
@@ -238,46 +246,58 @@ def render_ablation(ab: Ablation, markdown: bool = False) -> str:
             [bl, *[number(row[a]) for a in a_levels], inter.best_a_by_b[bl] or "-"] for bl, row in inter.means.items()
         ]
         verdict = "depends on" if inter.depends else "does not depend on"
-        out += ["", title(f"Interaction: the best {inter.a} {verdict} {inter.b} (means)"), ""]
-        out += grid_lines([f"{inter.b} \\ {inter.a}", *a_levels, "best"], rows, markdown)
+        out.append(
+            (
+                f"Interaction: the best {inter.a} {verdict} {inter.b} (means)",
+                [f"{inter.b} \\ {inter.a}", *a_levels, "best"],
+                rows,
+            )
+        )
     if ab.regularization:
-        out += ["", title("Regularization: val metric, train-val gap and weight sparsity"), ""]
-        out += grid_lines(
-            ["factor", "level", "n", "mean", "gap", "zero w", "near-zero w"],
-            [
+        out.append(
+            (
+                "Regularization: val metric, train-val gap and weight sparsity",
+                ["factor", "level", "n", "mean", "gap", "zero w", "near-zero w"],
                 [
-                    r.factor,
-                    r.label,
-                    str(r.n),
-                    number(r.mean),
-                    number(r.gap),
-                    number(r.zero_fraction, 3),
-                    number(r.near_zero_fraction, 3),
-                ]
-                for r in ab.regularization
-            ],
-            markdown,
+                    [
+                        r.factor,
+                        r.label,
+                        str(r.n),
+                        number(r.mean),
+                        number(r.gap),
+                        number(r.zero_fraction, 3),
+                        number(r.near_zero_fraction, 3),
+                    ]
+                    for r in ab.regularization
+                ],
+            )
         )
     if ab.optimization:
-        out += [
-            "",
-            title("Optimization: epochs to reach 95% of each job's best val metric, final train loss, divergences"),
-            "",
-        ]
-        out += grid_lines(
-            ["factor", "level", "n", "mean", "epochs to 95%", "final loss", "diverged"],
-            [
+        out.append(
+            (
+                "Optimization: epochs to reach 95% of each job's best val metric, final train loss, divergences",
+                ["factor", "level", "n", "mean", "epochs to 95%", "final loss", "diverged"],
                 [
-                    r.factor,
-                    r.label,
-                    str(r.n),
-                    number(r.mean),
-                    number(r.epochs_to_95pct, 1),
-                    number(r.final_train_loss),
-                    str(r.diverged),
-                ]
-                for r in ab.optimization
-            ],
-            markdown,
+                    [
+                        r.factor,
+                        r.label,
+                        str(r.n),
+                        number(r.mean),
+                        number(r.epochs_to_95pct, 1),
+                        number(r.final_train_loss),
+                        str(r.diverged),
+                    ]
+                    for r in ab.optimization
+                ],
+            )
         )
+    return out
+
+
+def render_ablation(ab: Ablation, markdown: bool = False) -> str:
+    """The ablation tables of a leaderboard, as text or markdown."""
+    out: list[str] = []
+    for title, header, body in ablation_tables(ab):
+        out += ["", f"#### {title}" if markdown else title, ""]
+        out += grid_lines(header, body, markdown)
     return "\n".join(out) + ("\n" if out else "")
