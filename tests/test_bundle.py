@@ -241,3 +241,66 @@ def test_possibly_best_keeps_only_those_configurations_weights(tmp_path):
         count = c.execute("SELECT count(*) FROM weights").fetchone()[0]
     assert kept == wanted and count == 3 * len(wanted)
     assert f"weights kept for {count} jobs" in result.stderr
+
+
+def test_damaged_kept_weights_are_not_trusted_but_retrained(tmp_path):
+    """A kept blob whose bytes no longer match their hash is never used: the export retrains
+    the job, and gets the very weights that were kept."""
+    path = write_recipe(tmp_path, RECIPE)
+    store = tmp_path / "s.sqlite"
+    assert invoke("run", path, "--store", store, "--workers", 1, "-q").exit_code == 0
+    out = tmp_path / "kept"
+    assert invoke("export", path, "--store", store, "--seed", 2, "--out", out).exit_code == 0
+    key = json.loads((out / "model.json").read_text())["source"]["job_key"]
+    with sqlite3.connect(store) as c:
+        c.execute("UPDATE weights SET data = substr(data, 1, length(data) - 8) WHERE job_key = ?", (key,))
+    again = tmp_path / "again"
+    result = invoke("export", path, "--store", store, "--seed", 2, "--out", again)
+    assert result.exit_code == 0 and "retrained" in result.stdout and "every stored metric reproduced" in result.stdout
+    assert (again / "weights.safetensors").read_bytes() == (out / "weights.safetensors").read_bytes()
+
+
+@pytest.mark.slow
+def test_killed_run_leaves_only_whole_weights(tmp_path):
+    """SIGKILL part-way: every stored weights blob belongs to a stored job and matches its
+    hash (the blob is written in the job's own transaction); the resumed run completes."""
+    import hashlib
+    import os
+    import signal
+    import subprocess
+    import time
+
+    from conftest import PYTHON, subprocess_env
+    from safetensors.numpy import load
+
+    path = write_recipe(
+        tmp_path, RECIPE.replace("epochs = 6", "epochs = 300").replace("seeds = [1, 2, 3]", "seeds = [1, 2, 3, 4]")
+    )
+    store = tmp_path / "s.sqlite"
+    args = [PYTHON, "-m", "runner", "run", str(path), "--store", str(store), "--workers", "2", "--no-stack", "-q"]
+    proc = subprocess.Popen(
+        args, env=subprocess_env(), stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True
+    )
+    deadline = time.monotonic() + 300
+    while time.monotonic() < deadline:
+        try:
+            with sqlite3.connect(store, timeout=1) as c:
+                if c.execute("SELECT count(*) FROM weights").fetchone()[0] >= 2:
+                    break
+        except sqlite3.OperationalError:
+            pass
+        time.sleep(0.05)
+    os.killpg(proc.pid, signal.SIGKILL)
+    proc.wait(timeout=60)
+    with sqlite3.connect(store) as c:
+        assert c.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+        rows = c.execute(
+            "SELECT w.job_key, w.sha256, w.data, j.key FROM weights w LEFT JOIN jobs j ON j.key = w.job_key"
+        ).fetchall()
+    assert rows and all(job is not None for _, _, _, job in rows)
+    for _, sha, data, _ in rows:
+        assert hashlib.sha256(data).hexdigest() == sha and load(bytes(data))
+    resumed = subprocess.run(args, env=subprocess_env(), capture_output=True, timeout=900)
+    assert resumed.returncode == 0
+    with sqlite3.connect(store) as c:
+        assert c.execute("SELECT count(*) FROM weights").fetchone()[0] == 8
