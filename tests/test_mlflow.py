@@ -15,7 +15,7 @@ pytest.importorskip("sqlalchemy")
 from conftest import PYTHON, invoke, subprocess_env, write_recipe
 from mlflow.tracking import MlflowClient
 
-from runner.outputs.mlflow_export import metric_name
+from runner.outputs.mlflow_export import metric_name, recorded_complete
 
 RECIPE = """
     name = "track"
@@ -78,6 +78,17 @@ def test_round_trip_through_a_sqlite_mlflow_store(tmp_path):
             assert [m.value for m in history] == pytest.approx(values, rel=1e-12)
     again = invoke("export-mlflow", path, "--store", store, "--uri", uri)
     assert again.exit_code == 0 and "0 jobs logged" in again.stdout and "4 were already there" in again.stdout
+    # nothing to send is known from the store's own record, without importing MLflow; a
+    # tracking file that is gone is never taken as holding the runs
+    from runner.recipe.grid import expand
+    from runner.recipe.loader import load_recipe
+    from runner.store.database import Store
+
+    grid = expand(load_recipe(path))
+    with Store(store) as db:
+        assert recorded_complete(uri, grid, db) == 4
+        (tmp_path / "mlflow.db").rename(tmp_path / "moved.db")
+        assert recorded_complete(uri, grid, db) is None
 
 
 def test_unusable_tracking_store_loses_nothing_and_can_be_retried(tmp_path):

@@ -18,8 +18,11 @@ exported, KILLED when the run that logged it was interrupted, RUNNING while a ru
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
+import signal
+import threading
 import time
 
 from runner.errors import UserError
@@ -28,7 +31,7 @@ from runner.recipe.settings import Settings
 from runner.store.database import Store
 from runner.training.job import Status
 
-__all__ = ["Exporter", "RunLogger", "export_all", "metric_name"]
+__all__ = ["Exporter", "RunLogger", "export_all", "metric_name", "recorded_complete"]
 
 _BATCH = 1000  # MLflow's limit on values in one log_batch call
 _SPLITS = ("train", "val", "test")
@@ -184,6 +187,45 @@ class Exporter:
         parent = self._parent or self.store.meta(key)
         if parent is not None:
             self.client.set_terminated(parent, status=status)
+            self.store.set_meta(_closed_key(self.uri, self.grid), status)
+
+
+def _closed_key(uri: str, grid: Grid) -> str:
+    return f"mlflow_parent_status:{uri}:{grid.recipe.name}"
+
+
+def recorded_complete(uri: str, grid: Grid, store: Store) -> int | None:
+    """The number of jobs when this store's own record says every job of the grid reached
+    ``uri`` and its parent run was closed FINISHED (then an export has nothing to send and
+    need not import MLflow, whose import and store set-up take most of such a call); else None.
+    A sqlite tracking file that no longer exists is never taken as holding anything."""
+    keys = {j.key for j in grid}
+    stored = {r.key for r in store.jobs(keys)}
+    if stored != keys or not keys <= store.exported_keys(uri) or store.meta(_closed_key(uri, grid)) != "FINISHED":
+        return None
+    if uri.startswith("sqlite:///"):
+        from pathlib import Path
+
+        if not Path(uri[len("sqlite:///") :]).exists():
+            return None
+    return len(keys)
+
+
+@contextlib.contextmanager
+def _interrupt_after():
+    """Hold a Ctrl-C (SIGINT) until the block ends, then raise it: an MLflow call cut short
+    leaves a half-made run or a parent whose id was never recorded."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    caught = []
+    previous = signal.signal(signal.SIGINT, lambda *_: caught.append(True))
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
+    if caught:
+        raise KeyboardInterrupt
 
 
 def export_all(uri: str, grid: Grid, store: Store, exporter: Exporter | None = None) -> tuple[int, int, list[str]]:
@@ -191,6 +233,8 @@ def export_all(uri: str, grid: Grid, store: Store, exporter: Exporter | None = N
     The parent run is closed FINISHED when every job of the grid is then exported."""
     from runner.store.lock import RunnerLock
 
+    if exporter is None and (known := recorded_complete(uri, grid, store)) is not None:
+        return 0, known, []
     exporter = exporter or Exporter(uri, grid, store)
     done = exporter.exported()
     stored = {r.key: r for r in store.jobs({j.key for j in grid})}
@@ -238,23 +282,26 @@ class RunLogger:
             self._flush()
 
     def _flush(self) -> None:
-        waiting, self._waiting = self._waiting, []
+        """Log the waiting jobs, each whole: a Ctrl-C during one takes effect after it."""
         self._since = time.monotonic()
-        try:
-            for job, r in waiting:
-                if job.key not in self.exporter.exported():
-                    self.exporter.export(job, Status(r.status), r.error, r.metrics, r.curves, r.epochs_run)
-        except Exception:
-            self.failed = True
+        while self._waiting and not self.failed:
+            job, r = self._waiting[0]
+            try:
+                with _interrupt_after():
+                    if job.key not in self.exporter.exported():
+                        self.exporter.export(job, Status(r.status), r.error, r.metrics, r.curves, r.epochs_run)
+                    self._waiting.pop(0)
+            except Exception:
+                self.failed = True
 
     def interrupted(self) -> None:
-        """The run was stopped part-way: log what is in hand and close the parent KILLED."""
+        """The run was stopped part-way: close the parent KILLED. Jobs not yet logged stay in
+        the store for the next run or `recipe export-mlflow`; a Ctrl-C is not kept waiting."""
         if self.exporter is None:
             return
         try:
-            if not self.failed:
-                self._flush()
-            self.exporter.close_parent("KILLED")
+            with _interrupt_after():
+                self.exporter.close_parent("KILLED")
         except Exception:  # the results are safe in the store; export-mlflow can catch up
             pass
 
