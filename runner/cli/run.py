@@ -135,7 +135,6 @@ def _run(
     from runner.execution.executors import default_workers
     from runner.execution.planning import execute, make_executor, plan
     from runner.execution.progress import Progress
-    from runner.execution.retention import retain
     from runner.outputs.mlflow_export import RunLogger
     from runner.outputs.text import render
     from runner.recipe.grid import expand
@@ -179,12 +178,19 @@ def _run(
                 )
                 sys.exit(130)
             doc = leaderboard(grid, db)
-            retained = retain(grid, db, doc, recipe.run.keep_weights)
-            if not quiet and (retained.jobs or retained.dropped):
-                click.echo(retained.describe(), err=True)
+            _retain(grid, db, doc, recipe.run.keep_weights, quiet)
             click.echo(render(doc, fmt or "table"), nl=False)
     except UserError as err:
         fail(err)
+
+
+def _retain(grid, db, doc, keep: str, quiet: bool) -> None:
+    """Apply [run] keep_weights to the stored weights and say what is kept."""
+    from runner.execution.retention import retain
+
+    retained = retain(grid, db, doc, keep)
+    if not quiet and (retained.jobs or retained.dropped):
+        click.echo(retained.describe(), err=True)
 
 
 def _report_tracking(errors, uri, recipe_path, quiet: bool) -> None:

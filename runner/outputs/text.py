@@ -190,18 +190,18 @@ def p_text(value) -> str:
     return "-" if value is None else f"{value:.2g}"
 
 
-def ablation_tables(ab: Ablation) -> list[tuple[str, list[str], list[list[str]]]]:
-    """The ablation tables as (title, header, rows of text cells), for every renderer."""
-    out: list[tuple[str, list[str], list[list[str]]]] = []
+Table = tuple[str, list[str], list[list[str]]]  # title, header, rows of text cells
+
+
+def _main_effects(ab: Ablation) -> list[Table]:
     body = []
     for eff in ab.main_effects:
         for lvl in eff.levels:
             d = lvl.diff_vs_baseline
-            is_base = lvl.label == eff.baseline
             body.append(
                 [
                     eff.factor,
-                    lvl.label + (" (baseline)" if is_base else ""),
+                    lvl.label + (" (baseline)" if lvl.label == eff.baseline else ""),
                     number(lvl.mean),
                     interval(lvl.ci95),
                     "-" if d is None else f"{d.diff_mean:+.4f}",
@@ -210,88 +210,88 @@ def ablation_tables(ab: Ablation) -> list[tuple[str, list[str], list[list[str]]]
                     "-" if d is None else f"{d.n_pairs}/{d.n_seeds}",
                 ]
             )
-    if body:
-        out.append(
-            (
-                f"Main effects on {ab.metric}: each level averaged over the other factors; "
-                "difference to the baseline paired over matched configurations and seeds",
-                ["factor", "level", "mean", "95% CI", "vs baseline", "95% CI", "p", "pairs/seeds"],
-                body,
-            )
-        )
+    if not body:
+        return []
+    title = (
+        f"Main effects on {ab.metric}: each level averaged over the other factors; "
+        "difference to the baseline paired over matched configurations and seeds"
+    )
+    return [(title, ["factor", "level", "mean", "95% CI", "vs baseline", "95% CI", "p", "pairs/seeds"], body)]
+
+
+def _one_at_a_time(ab: Ablation) -> list[Table]:
     ofat = ab.one_at_a_time
-    if ofat and ofat.rows:
-        base = ", ".join(f"{k} = {v}" for k, v in ofat.baseline.items())
-        out.append(
-            (
-                f"One factor at a time from the baseline ({base}; mean {number(ofat.baseline_mean)})",
-                ["factor", "changed to", "mean", "vs baseline", "95% CI", "p", "seeds"],
-                [
-                    [
-                        r.factor,
-                        r.label,
-                        number(r.mean),
-                        "-" if r.diff_mean is None else f"{r.diff_mean:+.4f}",
-                        interval(r.ci95),
-                        p_text(r.p_value),
-                        str(r.n_pairs),
-                    ]
-                    for r in ofat.rows
-                ],
-            )
-        )
+    if not (ofat and ofat.rows):
+        return []
+    base = ", ".join(f"{k} = {v}" for k, v in ofat.baseline.items())
+    rows = [
+        [
+            r.factor,
+            r.label,
+            number(r.mean),
+            "-" if r.diff_mean is None else f"{r.diff_mean:+.4f}",
+            interval(r.ci95),
+            p_text(r.p_value),
+            str(r.n_pairs),
+        ]
+        for r in ofat.rows
+    ]
+    title = f"One factor at a time from the baseline ({base}; mean {number(ofat.baseline_mean)})"
+    return [(title, ["factor", "changed to", "mean", "vs baseline", "95% CI", "p", "seeds"], rows)]
+
+
+def _interactions(ab: Ablation) -> list[Table]:
+    out = []
     for inter in ab.interactions:
         a_levels = list(next(iter(inter.means.values())).keys()) if inter.means else []
         rows = [
             [bl, *[number(row[a]) for a in a_levels], inter.best_a_by_b[bl] or "-"] for bl, row in inter.means.items()
         ]
         verdict = "depends on" if inter.depends else "does not depend on"
-        out.append(
-            (
-                f"Interaction: the best {inter.a} {verdict} {inter.b} (means)",
-                [f"{inter.b} \\ {inter.a}", *a_levels, "best"],
-                rows,
-            )
-        )
-    if ab.regularization:
-        out.append(
-            (
-                "Regularization: val metric, train-val gap and weight sparsity",
-                ["factor", "level", "n", "mean", "gap", "zero w", "near-zero w"],
-                [
-                    [
-                        r.factor,
-                        r.label,
-                        str(r.n),
-                        number(r.mean),
-                        number(r.gap),
-                        number(r.zero_fraction, 3),
-                        number(r.near_zero_fraction, 3),
-                    ]
-                    for r in ab.regularization
-                ],
-            )
-        )
-    if ab.optimization:
-        out.append(
-            (
-                "Optimization: epochs to reach 95% of each job's best val metric, final train loss, divergences",
-                ["factor", "level", "n", "mean", "epochs to 95%", "final loss", "diverged"],
-                [
-                    [
-                        r.factor,
-                        r.label,
-                        str(r.n),
-                        number(r.mean),
-                        number(r.epochs_to_95pct, 1),
-                        number(r.final_train_loss),
-                        str(r.diverged),
-                    ]
-                    for r in ab.optimization
-                ],
-            )
-        )
+        title = f"Interaction: the best {inter.a} {verdict} {inter.b} (means)"
+        out.append((title, [f"{inter.b} \\ {inter.a}", *a_levels, "best"], rows))
     return out
+
+
+def _views(ab: Ablation) -> list[Table]:
+    out = []
+    if ab.regularization:
+        rows = [
+            [
+                r.factor,
+                r.label,
+                str(r.n),
+                number(r.mean),
+                number(r.gap),
+                number(r.zero_fraction, 3),
+                number(r.near_zero_fraction, 3),
+            ]
+            for r in ab.regularization
+        ]
+        header = ["factor", "level", "n", "mean", "gap", "zero w", "near-zero w"]
+        out.append(("Regularization: val metric, train-val gap and weight sparsity", header, rows))
+    if ab.optimization:
+        rows = [
+            [
+                r.factor,
+                r.label,
+                str(r.n),
+                number(r.mean),
+                number(r.epochs_to_95pct, 1),
+                number(r.final_train_loss),
+                str(r.diverged),
+            ]
+            for r in ab.optimization
+        ]
+        header = ["factor", "level", "n", "mean", "epochs to 95%", "final loss", "diverged"]
+        title = "Optimization: epochs to reach 95% of each job's best val metric, final train loss, divergences"
+        out.append((title, header, rows))
+    return out
+
+
+def ablation_tables(ab: Ablation) -> list[Table]:
+    """The ablation tables as (title, header, rows of text cells), for every renderer."""
+    return _main_effects(ab) + _one_at_a_time(ab) + _interactions(ab) + _views(ab)
 
 
 def render_ablation(ab: Ablation, markdown: bool = False) -> str:

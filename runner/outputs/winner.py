@@ -172,7 +172,8 @@ def export_bundle(
             raise UserError(f"the refit did not finish ({done.result.status}: {done.result.error})", key="--refit")
         weights, how = done.result.weights, "refit"
         inputs = _inputs(job, grid, np.concatenate([rows["train"], rows["val"]]), done.mean, done.scale)
-        metrics = {s: v for s, v in done.result.metrics.items() if s != "val"}  # val rows were trained on
+        # val rows were trained on; the training metric is over train+val rows
+        metrics = {("train+val" if s == "train" else s): v for s, v in done.result.metrics.items() if s != "val"}
         source |= {"trained_on": ["train", "val"], "epochs": epochs, "environment": done.result.env}
     else:
         weights, how, reproduced, group = _weights(job, grid, store)
