@@ -147,7 +147,7 @@ def gradients_figure(series: list[tuple[str, list[float]]], plt):
     ax.set_ylabel("weight-gradient norm at init", color=INK)
     _axes_look(ax)
     ax.grid(color=GRIDLINE, linewidth=0.5, which="minor", axis="y")
-    ax.legend(fontsize=7, ncol=2, frameon=False)
+    ax.legend(fontsize=7, frameon=False, loc="upper left", bbox_to_anchor=(1.01, 1.0))  # beside, never over lines
     return fig
 
 
