@@ -1,14 +1,21 @@
 """mlflow_export: runs read back from a real sqlite-backed MLflow store equal the store's."""
 
 import json
+import os
+import re
+import signal
 import sqlite3
+import subprocess
+import time
 
 import pytest
 
 pytest.importorskip("mlflow")
 pytest.importorskip("sqlalchemy")
-from conftest import invoke, write_recipe
+from conftest import PYTHON, invoke, subprocess_env, write_recipe
 from mlflow.tracking import MlflowClient
+
+from runner.outputs.mlflow_export import metric_name, recorded_complete
 
 pytestmark = pytest.mark.slow  # starts processes, sends signals, or starts Dask, MLflow or a browser
 
@@ -52,6 +59,7 @@ def test_round_trip_through_a_sqlite_mlflow_store(tmp_path):
     parents = [r for r in runs if r.data.tags.get("recipe.kind") == "grid"]
     children = [r for r in runs if "recipe.job_key" in r.data.tags]
     assert len(parents) == 1 and len(children) == 4
+    assert parents[0].info.status == "FINISHED" and {r.info.status for r in children} == {"FINISHED"}
     jobs, metrics, curves = store_rows(store)
     for run in children:
         tags = run.data.tags
@@ -62,14 +70,27 @@ def test_round_trip_through_a_sqlite_mlflow_store(tmp_path):
         assert run.data.params["train.optimizer"] == settings["train"]["optimizer"]
         assert float(run.data.params["train.lr"]) == settings["train"]["lr"]
         assert run.data.params["seed"] == str(seed)
+        # one naming: <split>.<name> for curves and finals alike (and the learning rate)
+        assert all(re.fullmatch(r"(train|val|test)\.[a-z0-9_]+|lr", name) for name in run.data.metrics)
         for name, value in metrics[key].items():
-            assert run.data.metrics[name] == pytest.approx(value, rel=1e-12)
+            assert run.data.metrics[name] == pytest.approx(value, rel=1e-12)  # the latest value is the final
         for name, values in curves[key].items():
-            history = client.get_metric_history(run.info.run_id, name)
+            history = client.get_metric_history(run.info.run_id, metric_name(name))
             assert [m.step for m in history] == list(range(1, len(values) + 1))
             assert [m.value for m in history] == pytest.approx(values, rel=1e-12)
     again = invoke("export-mlflow", path, "--store", store, "--uri", uri)
     assert again.exit_code == 0 and "0 jobs logged" in again.stdout and "4 were already there" in again.stdout
+    # nothing to send is known from the store's own record, without importing MLflow; a
+    # tracking file that is gone is never taken as holding the runs
+    from runner.recipe.grid import expand
+    from runner.recipe.loader import load_recipe
+    from runner.store.database import Store
+
+    grid = expand(load_recipe(path))
+    with Store(store) as db:
+        assert recorded_complete(uri, grid, db) == 4
+        (tmp_path / "mlflow.db").rename(tmp_path / "moved.db")
+        assert recorded_complete(uri, grid, db) is None
 
 
 def test_unusable_tracking_store_loses_nothing_and_can_be_retried(tmp_path):
@@ -85,3 +106,48 @@ def test_unusable_tracking_store_loses_nothing_and_can_be_retried(tmp_path):
     good = f"sqlite:///{tmp_path / 'good.db'}"
     retried = invoke("export-mlflow", path, "--store", store, "--uri", good)
     assert retried.exit_code == 0 and "4 jobs logged" in retried.stdout
+
+
+def test_curve_names_take_the_final_metrics_spelling():
+    assert metric_name("val_f1_macro") == "val.f1_macro"
+    assert metric_name("train_loss") == "train.loss" and metric_name("lr") == "lr"
+
+
+@pytest.mark.slow
+def test_interrupted_run_leaves_its_parent_killed_and_a_resumed_one_finished(tmp_path):
+    """Ctrl-C (SIGINT to the process group) part-way: the parent run reads back KILLED, the
+    jobs logged so far FINISHED; running again completes the grid and the parent FINISHED."""
+    slow = RECIPE.replace("epochs = 4", "epochs = 400").replace("seeds = [1, 2]", "seeds = [1, 2, 3, 4]")
+    path = write_recipe(tmp_path, slow)
+    store = tmp_path / "s.sqlite"
+    uri = f"sqlite:///{tmp_path / 'mlflow.db'}"
+    args = [PYTHON, "-m", "runner", "run", str(path), "--store", str(store), "--workers", "1", "--no-stack"]
+    proc = subprocess.Popen(
+        [*args, "--mlflow", uri],
+        env=subprocess_env(),
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        start_new_session=True,
+    )
+    deadline = time.monotonic() + 300
+    while time.monotonic() < deadline:
+        try:
+            with sqlite3.connect(store, timeout=1) as c:
+                if c.execute("SELECT count(*) FROM jobs").fetchone()[0] >= 1:
+                    break
+        except sqlite3.OperationalError:
+            pass
+        time.sleep(0.2)
+    os.killpg(proc.pid, signal.SIGINT)
+    assert proc.wait(timeout=120) == 130
+    client = MlflowClient(tracking_uri=uri)
+    exp = client.get_experiment_by_name("recipe/track")
+    runs = client.search_runs([exp.experiment_id])
+    parent = next(r for r in runs if r.data.tags.get("recipe.kind") == "grid")
+    assert parent.info.status == "KILLED"
+    assert all(r.info.status == "FINISHED" for r in runs if r.data.tags.get("recipe.kind") == "job")
+    resumed = subprocess.run([*args, "--mlflow", uri, "-q"], env=subprocess_env(), capture_output=True, timeout=900)
+    assert resumed.returncode == 0, resumed.stderr
+    runs = client.search_runs([exp.experiment_id])
+    assert client.get_run(parent.info.run_id).info.status == "FINISHED"
+    assert sum(r.data.tags.get("recipe.kind") == "job" for r in runs) == 8

@@ -49,6 +49,7 @@ def chromium():
     return CHROMIUM
 
 
+@pytest.mark.slow
 def test_report_renders_table_and_every_figure(tmp_path):
     browser = chromium()
     path = write_recipe(tmp_path, RECIPE)
@@ -67,24 +68,39 @@ def test_report_renders_table_and_every_figure(tmp_path):
     ).stdout
     figures = int(re.search(r'data-figures="(\d+)"', dom).group(1))
     drawn = int(re.search(r'data-figures-drawn="(\d+)"', dom).group(1))
-    # curves, main effects, gradient norms, sparsity (proximal L1), dead units (ReLU)
-    assert figures == drawn == 5
-    for name in ("curves", "effects", "gradients", "sparsity", "dead"):
+    # intervals, curves, main effects, gradient norms, sparsity (proximal L1), dead units (ReLU)
+    assert figures == drawn == 6
+    for name in ("intervals", "curves", "effects", "gradients", "sparsity", "dead"):
         assert f'id="fig-{name}"' in dom
-    assert len(re.findall(r"<tr class=", dom)) == 4  # one leaderboard row per configuration
+    board = re.search(r'<table id="leaderboard">.*?</table>', dom, re.S).group(0)
+    assert len(re.findall(r"<tr class=", board)) == 4  # one leaderboard row per configuration
+    for section in ("ablation", "settings", "environment", "cautions"):
+        assert f'id="{section}"' in dom
+    assert "Main effects on val.accuracy" in dom and "Interaction: the best model.init" in dom
+    assert "train.l1_mode" in dom and "proximal" in dom  # the resolved settings every configuration shares
+    assert "glorot_uniform | zeros" in dom  # what varies, level by level
+    assert "sha256" in dom and "torch" in dom  # data and recipe fingerprints, the environment
     shot = tmp_path / "shot.png"
     subprocess.run(
         [
             browser,
             *FLAGS,
             f"--user-data-dir={profile}",
-            "--window-size=1200,2400",
+            "--window-size=1200,5200",
             f"--screenshot={shot}",
             out.as_uri(),
         ],
         capture_output=True,
         timeout=120,
     )
-    pixels = np.asarray(Image.open(shot).convert("L"), dtype=float)
+    rgb = np.asarray(Image.open(shot).convert("RGB"), dtype=float)
+    pixels = rgb.mean(axis=2)
     assert pixels.std() > 10  # not a blank page
     assert (pixels < 100).mean() > 0.005  # dark text and plot lines are present
+
+    def share(hex_color):
+        target = np.array([int(hex_color[i : i + 2], 16) for i in (1, 3, 5)], dtype=float)
+        return (np.abs(rgb - target).max(axis=2) < 12).mean()
+
+    assert share("#23577a") > 1e-4 and share("#d1782c") > 1e-5  # the tool's own palette is drawn
+    assert share("#1f77b4") < 1e-5 and share("#ff7f0e") < 1e-5  # matplotlib's default blue and orange are not

@@ -6,6 +6,7 @@ from __future__ import annotations
 import click
 
 from runner.cli.authoring import check, new, schema
+from runner.cli.model import export, predict
 from runner.cli.results import board, diff, export_mlflow, report, status
 from runner.cli.run import run
 
@@ -18,7 +19,7 @@ def cli():
     """Turn a TOML recipe into a seeded, resumable training ablation on the CPU."""
 
 
-for command in (run, board, status, check, report, diff, export_mlflow, schema, new):
+for command in (run, board, status, check, report, diff, export_mlflow, export, predict, schema, new):
     cli.add_command(command)
 
 

@@ -159,10 +159,19 @@ def _run(
             tracker = RunLogger(mlflow_uri or recipe.tracking.mlflow, grid, db)
             try:
                 execute(
-                    grid, db, todo.to_run, executor, progress, time_limit, on_stored=tracker.stored, stack=not no_stack
+                    grid,
+                    db,
+                    todo.to_run,
+                    executor,
+                    progress,
+                    time_limit,
+                    on_stored=tracker.stored,
+                    stack=not no_stack,
+                    keep_weights=recipe.run.keep_weights != "none",
                 )
                 _report_tracking(tracker.finish(), tracker.uri, recipe_path, quiet)
             except KeyboardInterrupt:
+                tracker.interrupted()
                 done = len(db.finished_keys() & {j.key for j in grid})
                 click.echo(
                     f"\nInterrupted: {done} of {todo.total} jobs are stored. Run the same "
@@ -170,9 +179,20 @@ def _run(
                     err=True,
                 )
                 sys.exit(130)
-            click.echo(render(leaderboard(grid, db), fmt or "table"), nl=False)
+            doc = leaderboard(grid, db)
+            _retain(grid, db, doc, recipe.run.keep_weights, quiet)
+            click.echo(render(doc, fmt or "table"), nl=False)
     except UserError as err:
         fail(err)
+
+
+def _retain(grid, db, doc, keep: str, quiet: bool) -> None:
+    """Apply [run] keep_weights to the stored weights and say what is kept."""
+    from runner.execution.retention import retain
+
+    retained = retain(grid, db, doc, keep)
+    if not quiet and (retained.jobs or retained.dropped):
+        click.echo(retained.describe(), err=True)
 
 
 def _report_tracking(errors, uri, recipe_path, quiet: bool) -> None:

@@ -73,11 +73,15 @@ def execute(
     time_limit: float | None = None,
     on_stored=None,
     stack: bool = True,
+    keep_weights: bool = True,
 ) -> None:
     """Run ``todo``; each result is committed to the store as soon as it arrives. With
-    ``stack``, same-shaped jobs train together as one stacked computation (training/stacked.py)."""
+    ``stack``, same-shaped jobs train together as one stacked computation (training/stacked.py).
+    With ``keep_weights``, each done job's trained weights come back with its result and
+    are stored beside it, in the same transaction."""
     from runner.training import checkpoints as checkpoint
     from runner.training.grouping import group_specs, training_note
+    from runner.training.weights import encode
 
     if not todo:
         return
@@ -94,7 +98,8 @@ def execute(
             return  # a stacked group's member that is already stored: written once, never again
         job = by_key[spec.key]
         labels = grid.labels(job.config)
-        store.write_result(job, labels, grid.recipe.hash, result, attempts)
+        blob = encode(result.weights) if result.weights is not None else None
+        store.write_result(job, labels, grid.recipe.hash, result, attempts, weights=blob)
         checkpoint.remove(spec.checkpoint)  # the result is safe: its checkpoint is not needed
         if progress is not None:
             for note in result.notes:
@@ -107,7 +112,7 @@ def execute(
 
     def spec_of(j):
         ckpt = ckpt_dir / f"{j.key}.pt" if j.config.settings.train.checkpoint_every else None
-        return j.spec(checkpoint=str(ckpt) if ckpt else None, time_limit=time_limit)
+        return j.spec(checkpoint=str(ckpt) if ckpt else None, time_limit=time_limit, keep_weights=keep_weights)
 
     # Groups are formed over the whole grid (see stack.group_specs); a group with any job to run
     # runs whole, and only its unfinished members' results are written.

@@ -10,7 +10,19 @@ import json
 from runner.components.metrics import Goal
 from runner.evidence.document import Ablation, Leaderboard, Row
 
-__all__ = ["FORMATS", "grid_lines", "interval", "number", "p_text", "render", "render_ablation", "signed", "standing"]
+__all__ = [
+    "FORMATS",
+    "ablation_tables",
+    "columns",
+    "grid_lines",
+    "interval",
+    "number",
+    "p_text",
+    "render",
+    "render_ablation",
+    "signed",
+    "standing",
+]
 
 FORMATS = ("csv", "json", "markdown", "table")
 
@@ -50,7 +62,7 @@ def standing(row: Row, margin: float | None = None) -> str:
 STANDING_HEADER = "verdict [gap to best, simultaneous]"
 
 
-def _columns(doc: Leaderboard) -> tuple[list[str], list[list[str]]]:
+def columns(doc: Leaderboard) -> tuple[list[str], list[list[str]]]:
     factor_names = doc.factor_names
     early = any(r.best_epoch_median is not None for r in doc.rows)
     ci_head = f"{1 - doc.evidence['alpha']:.0%} CI" if doc.evidence.get("alpha") else "95% CI"
@@ -86,7 +98,7 @@ def _head(doc: Leaderboard) -> list[str]:
 
 
 def _table(doc: Leaderboard) -> str:
-    header, body = _columns(doc)
+    header, body = columns(doc)
     widths = [max(len(r[i]) for r in [header, *body]) for i in range(len(header))]
     fmt = lambda cells: "  ".join(
         c.rjust(w) if i == 0 else c.ljust(w) for i, (c, w) in enumerate(zip(cells, widths))
@@ -98,7 +110,7 @@ def _table(doc: Leaderboard) -> str:
 
 
 def _markdown(doc: Leaderboard) -> str:
-    header, body = _columns(doc)
+    header, body = columns(doc)
     esc = lambda s: s.replace("|", "\\|")
     lines = [
         f"### {doc.recipe}",
@@ -197,7 +209,10 @@ def _basis(ab: Ablation) -> str:
     return "intervals and p: Student t with the variance corrected for overlapping training sets"
 
 
-def _main_effects_lines(ab: Ablation, title, markdown: bool) -> list[str]:
+Table = tuple[str, list[str], list[list[str]]]  # title, header, rows of text cells
+
+
+def _main_effects(ab: Ablation) -> list[Table]:
     body, notes = [], []
     for eff in ab.main_effects:
         if eff.note:
@@ -210,14 +225,14 @@ def _main_effects_lines(ab: Ablation, title, markdown: bool) -> list[str]:
             body.append([eff.factor, label, number(lvl.mean), interval(lvl.ci95), *cells])
     if not body:
         return []
-    head = (f"Main effects on {ab.metric}: each level over the contexts (other factors' levels) in which "
-            "every level finished, on matched seeds; difference to the baseline paired by seed; "
-            f"{_basis(ab)}")  # fmt: skip
+    title = (f"Main effects on {ab.metric}: each level over the contexts (other factors' levels) in which "
+             "every level finished, on matched seeds; difference to the baseline paired by seed; "
+             f"{_basis(ab)}" + "".join(f". {n}" for n in notes))  # fmt: skip
     header = ["factor", "level", "mean", "95% CI", "vs baseline", "95% CI", "p", "contexts/seeds"]
-    return ["", title(head), "", *grid_lines(header, body, markdown), *(["", *notes] if notes else [])]
+    return [(title, header, body)]
 
 
-def _one_at_a_time_lines(ab: Ablation, title, markdown: bool) -> list[str]:
+def _one_at_a_time(ab: Ablation) -> list[Table]:
     ofat = ab.one_at_a_time
     if not ofat or not ofat.rows:
         return []
@@ -225,12 +240,12 @@ def _one_at_a_time_lines(ab: Ablation, title, markdown: bool) -> list[str]:
     body = [[r.factor, r.label, number(r.mean), signed(r.diff_mean), interval(r.ci95), p_text(r.p_value),
              str(r.n_pairs)] for r in ofat.rows]  # fmt: skip
     header = ["factor", "changed to", "mean", "vs baseline", "95% CI", "p", "seeds"]
-    head = f"One factor at a time from the baseline ({base}; mean {number(ofat.baseline_mean)}); {_basis(ab)}"
-    return ["", title(head), "", *grid_lines(header, body, markdown)]
+    title = f"One factor at a time from the baseline ({base}; mean {number(ofat.baseline_mean)}); {_basis(ab)}"
+    return [(title, header, body)]
 
 
-def _interaction_lines(ab: Ablation, title, markdown: bool) -> list[str]:
-    out: list[str] = []
+def _interactions(ab: Ablation) -> list[Table]:
+    out: list[Table] = []
     for inter in ab.interactions:
         a_levels = list(next(iter(inter.means.values())).keys()) if inter.means else []
         rows = [[bl, *[number(row[a]) for a in a_levels], inter.best_a_by_b[bl] or "-"]
@@ -244,32 +259,36 @@ def _interaction_lines(ab: Ablation, title, markdown: bool) -> list[str]:
             verdict = (f"the best {inter.a} {word} {inter.b} (largest contrast {signed(c['estimate'])}, "
                        f"simultaneous 95% {interval([c['low'], c['high']]) if c['low'] is not None else '-'}; "
                        f"F test p {p_text(inter.p_value)}{where})")  # fmt: skip
-        out += ["", title(f"Interaction of {inter.a} and {inter.b}: {verdict}"), ""]
-        out += grid_lines([f"{inter.b} \\ {inter.a}", *a_levels, "best"], rows, markdown)
+        out.append((f"Interaction of {inter.a} and {inter.b}: {verdict}",
+                    [f"{inter.b} \\ {inter.a}", *a_levels, "best"], rows))  # fmt: skip
     return out
 
 
-def _views_lines(ab: Ablation, title, markdown: bool) -> list[str]:
-    out: list[str] = []
+def _views(ab: Ablation) -> list[Table]:
+    out: list[Table] = []
     if ab.regularization:
-        out += ["", title("Regularization: val metric, train-val gap and weight sparsity"), ""]
-        out += grid_lines(["factor", "level", "n", "mean", "gap", "zero w", "near-zero w"],
-                          [[r.factor, r.label, str(r.n), number(r.mean), number(r.gap),
-                            number(r.zero_fraction, 3), number(r.near_zero_fraction, 3)]
-                           for r in ab.regularization], markdown)  # fmt: skip
+        rows = [[r.factor, r.label, str(r.n), number(r.mean), number(r.gap), number(r.zero_fraction, 3),
+                 number(r.near_zero_fraction, 3)] for r in ab.regularization]  # fmt: skip
+        header = ["factor", "level", "n", "mean", "gap", "zero w", "near-zero w"]
+        out.append(("Regularization: val metric, train-val gap and weight sparsity", header, rows))
     if ab.optimization:
-        out += ["", title("Optimization: epochs to reach 95% of each job's best val metric, final train loss, "
-                          "divergences"), ""]  # fmt: skip
-        out += grid_lines(["factor", "level", "n", "mean", "epochs to 95%", "final loss", "diverged"],
-                          [[r.factor, r.label, str(r.n), number(r.mean), number(r.epochs_to_95pct, 1),
-                            number(r.final_train_loss), str(r.diverged)] for r in ab.optimization],
-                          markdown)  # fmt: skip
+        rows = [[r.factor, r.label, str(r.n), number(r.mean), number(r.epochs_to_95pct, 1),
+                 number(r.final_train_loss), str(r.diverged)] for r in ab.optimization]  # fmt: skip
+        header = ["factor", "level", "n", "mean", "epochs to 95%", "final loss", "diverged"]
+        title = "Optimization: epochs to reach 95% of each job's best val metric, final train loss, divergences"
+        out.append((title, header, rows))
     return out
+
+
+def ablation_tables(ab: Ablation) -> list[Table]:
+    """The ablation tables as (title, header, rows of text cells), for every renderer."""
+    return _main_effects(ab) + _one_at_a_time(ab) + _interactions(ab) + _views(ab)
 
 
 def render_ablation(ab: Ablation, markdown: bool = False) -> str:
     """The ablation tables of a leaderboard, as text or markdown."""
-    title = (lambda t: f"#### {t}") if markdown else (lambda t: t)
-    out = [*_main_effects_lines(ab, title, markdown), *_one_at_a_time_lines(ab, title, markdown),
-           *_interaction_lines(ab, title, markdown), *_views_lines(ab, title, markdown)]  # fmt: skip
+    out: list[str] = []
+    for title, header, body in ablation_tables(ab):
+        out += ["", f"#### {title}" if markdown else title, ""]
+        out += grid_lines(header, body, markdown)
     return "\n".join(out) + ("\n" if out else "")

@@ -62,7 +62,9 @@ class Job:
     monitor: str
     fold: int | None = None  # under k-fold validation: which fold this job validates on
 
-    def spec(self, checkpoint: str | None = None, time_limit: float | None = None) -> JobSpec:
+    def spec(
+        self, checkpoint: str | None = None, time_limit: float | None = None, keep_weights: bool = False
+    ) -> JobSpec:
         return JobSpec(
             key=self.key,
             seed=self.seed,
@@ -72,6 +74,7 @@ class Job:
             checkpoint=checkpoint,
             time_limit=time_limit,
             fold=self.fold,
+            keep_weights=keep_weights,
         )
 
 

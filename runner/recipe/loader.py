@@ -73,6 +73,12 @@ RUN = {
         'where jobs run: "local", "dask-local" or "dask://HOST:PORT"',
     ),
     "workers": Param(Integer(1, 4096), 0, "worker processes (0 = the number of cores)"),
+    "keep_weights": Param(
+        Choice(("all", "none", "possibly_best")),
+        "possibly_best",
+        "trained weights kept in the store: every done job's, only the possibly-best "
+        "configurations' (the rest dropped when a run ends), or none (export retrains)",
+    ),
 }
 TRACKING = {
     "mlflow": Param(Text(), None, "MLflow tracking URI to log every finished job to, e.g. sqlite:///mlflow.db"),
@@ -119,6 +125,7 @@ class RunSettings:
 
     on: str = "local"
     workers: int = 0  # 0: chosen by the tool
+    keep_weights: str = "possibly_best"  # "all", "possibly_best" or "none"
 
 
 @dataclass(frozen=True, slots=True)

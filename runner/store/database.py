@@ -1,13 +1,17 @@
 """The results store: one SQLite file per recipe.
 
 Tables: recipes (each recipe text seen), jobs (identity, settings, status, timings, error,
-environment, diagnostics), metrics (final metric per split), curves (per-epoch values).
-A job's whole result is written in one transaction when it finishes, so a killed process
-leaves either the complete result or none of it. Only finished jobs are stored.
+environment, diagnostics), metrics (final metric per split), curves (per-epoch values),
+weights (a finished job's trained weights as safetensors bytes, when kept), trained_as
+(the keys of the stacked group a job trained in, in order; [] for a job trained alone).
+A job's whole result, its weights included, is written in one transaction when it
+finishes, so a killed process leaves either the complete result or none of it: never a
+half-written weights blob. Only finished jobs are stored.
 """
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import socket
@@ -44,6 +48,11 @@ CREATE TABLE IF NOT EXISTS running (
 CREATE TABLE IF NOT EXISTS curves (
     job_key TEXT NOT NULL REFERENCES jobs(key) ON DELETE CASCADE, name TEXT NOT NULL,
     epoch INTEGER NOT NULL, value REAL, PRIMARY KEY (job_key, name, epoch));
+CREATE TABLE IF NOT EXISTS weights (
+    job_key TEXT PRIMARY KEY REFERENCES jobs(key) ON DELETE CASCADE, format TEXT NOT NULL,
+    sha256 TEXT NOT NULL, data BLOB NOT NULL);
+CREATE TABLE IF NOT EXISTS trained_as (
+    job_key TEXT PRIMARY KEY REFERENCES jobs(key) ON DELETE CASCADE, members TEXT NOT NULL);
 CREATE TABLE IF NOT EXISTS exports (
     uri TEXT NOT NULL, job_key TEXT NOT NULL, run_id TEXT NOT NULL, exported REAL NOT NULL,
     PRIMARY KEY (uri, job_key));
@@ -121,8 +130,11 @@ class Store:
         rows = self.conn.execute(f"SELECT key FROM jobs WHERE status IN ({marks})", statuses)
         return {r[0] for r in rows}
 
-    def write_result(self, job, labels: dict, recipe_hash: str, result: JobResult, attempts: int = 1) -> None:
-        """The whole result in one transaction (metrics and curves replace any earlier try)."""
+    def write_result(
+        self, job, labels: dict, recipe_hash: str, result: JobResult, attempts: int = 1, weights: bytes | None = None
+    ) -> None:
+        """The whole result in one transaction (metrics and curves replace any earlier try);
+        ``weights``: the trained weights as safetensors bytes, kept beside it."""
         c = self.conn
         diagnostics = {**result.diagnostics, "notes": result.notes} if result.notes else result.diagnostics
         c.execute("BEGIN IMMEDIATE")
@@ -159,6 +171,12 @@ class Store:
                 "INSERT INTO curves VALUES (?,?,?,?)",
                 [(job.key, name, e + 1, _num(v)) for name, vals in result.curves.items() for e, v in enumerate(vals)],
             )
+            c.execute("INSERT INTO trained_as VALUES (?, ?)", (job.key, json.dumps(list(result.group))))
+            if weights is not None:
+                c.execute(
+                    "INSERT INTO weights VALUES (?, 'safetensors', ?, ?)",
+                    (job.key, hashlib.sha256(weights).hexdigest(), weights),
+                )
             c.execute("COMMIT")
         except BaseException:
             c.execute("ROLLBACK")
@@ -261,6 +279,41 @@ class Store:
             c.execute("ROLLBACK")
             raise
         return n
+
+    def weights(self, key: str) -> bytes | None:
+        """The kept weights of a job (safetensors bytes), or None when none are kept or the
+        bytes do not match the hash written with them (then the job is retrained)."""
+        row = self.conn.execute("SELECT sha256, data FROM weights WHERE job_key = ?", (key,)).fetchone()
+        if row is None or hashlib.sha256(row[1]).hexdigest() != row[0]:
+            return None
+        return bytes(row[1])
+
+    def weights_kept(self, keys: Iterable[str] | None = None) -> dict[str, int]:
+        """Job key -> bytes of its kept weights (of these keys, or all)."""
+        rows = self.conn.execute("SELECT job_key, length(data) FROM weights").fetchall()
+        wanted = set(keys) if keys is not None else None
+        return {k: n for k, n in rows if wanted is None or k in wanted}
+
+    def drop_weights(self, keys: Iterable[str]) -> int:
+        """Delete the kept weights of these jobs (their results stay); how many were kept."""
+        keys = list(keys)
+        n = 0
+        for i in range(0, len(keys), 500):
+            chunk = keys[i : i + 500]
+            marks = ",".join("?" * len(chunk))
+            n += self.conn.execute(f"DELETE FROM weights WHERE job_key IN ({marks})", chunk).rowcount
+        return n
+
+    def trained_as(self, key: str) -> tuple[str, ...] | None:
+        """The keys of the stacked group this job trained in, in order (() when it trained
+        alone), or None when the store does not know (stored before this was recorded)."""
+        row = self.conn.execute("SELECT members FROM trained_as WHERE job_key = ?", (key,)).fetchone()
+        return None if row is None else tuple(json.loads(row[0]))
+
+    def settings_of(self, key: str) -> tuple[dict[str, Any], int] | None:
+        """(resolved settings in their plain form, seed) of a stored job, or None."""
+        row = self.conn.execute("SELECT settings, seed FROM jobs WHERE key = ?", (key,)).fetchone()
+        return None if row is None else (json.loads(row[0]), row[1])
 
     def integrity(self) -> str:
         return self.conn.execute("PRAGMA integrity_check").fetchone()[0]

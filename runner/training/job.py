@@ -42,6 +42,7 @@ class JobSpec:
     checkpoint: str | None = None  # file for mid-job checkpoints (train.checkpoint_every)
     time_limit: float | None = None  # overrides train.time_limit when set (--time-limit)
     fold: int | None = None  # k-fold validation: the fold this job validates on
+    keep_weights: bool = False  # send the trained weights back with the result
 
 
 @dataclass
@@ -57,3 +58,10 @@ class JobResult:
     duration: float = 0.0
     env: dict[str, Any] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)  # what the user should know of how it ran
+    # The trained network's state (final or early-stopping weights) by the single-job
+    # network's state_dict names, when the spec asked for it and the job is done.
+    weights: dict[str, Any] | None = None
+    # How it trained: the keys of its stacked group in order (its own among them), or ()
+    # for a job trained on its own. A stacked member's last bits depend on its group, so a
+    # bitwise retrain must train the same group again.
+    group: tuple[str, ...] = ()

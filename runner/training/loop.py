@@ -72,6 +72,10 @@ class Backend(Protocol):
     def end_diagnostics(self) -> list[dict[str, Any]]:
         """Per member: dead and saturated units, weight sparsity."""
 
+    def member_state(self, k: int) -> dict[str, Any]:
+        """Member k's weights and buffers as numpy arrays, named as the single-job
+        network's state_dict names them (what a bundle rebuilds with models.build_model)."""
+
     def checkpoint_state(self) -> dict[str, Any]:
         """Model, optimizer and random streams of a single job, for a mid-job checkpoint."""
 
@@ -228,7 +232,7 @@ def _finish(backend: Backend, members: list[_Member]) -> None:
         return
     metrics = backend.final_metrics()
     ends = backend.end_diagnostics()
-    for m, per_split, end in zip(members, metrics, ends):
+    for k, (m, per_split, end) in enumerate(zip(members, metrics, ends)):
         r = m.result
         if r.status is not Status.DONE:
             continue
@@ -236,6 +240,8 @@ def _finish(backend: Backend, members: list[_Member]) -> None:
         r.best_epoch = m.best_epoch if m.spec.settings.train.patience > 0 else r.epochs_run
         r.metrics.update(per_split)
         r.diagnostics.update(end)
+        if m.spec.keep_weights:
+            r.weights = backend.member_state(k)
         if r.metrics.get("train") and r.metrics.get("val"):
             tr, va = r.metrics["train"][monitor], r.metrics["val"][monitor]
             r.diagnostics["gap"] = (tr - va) if METRICS[monitor].goal is Goal.MAX else (va - tr)
@@ -299,7 +305,10 @@ def train_group(specs: Sequence[JobSpec], ds: Dataset) -> list[JobResult]:
     start = time.perf_counter()
     try:
         backend = StackedBackend(specs, ds)
-        return train_members(backend, new_members(specs, environment()), start)
+        results = train_members(backend, new_members(specs, environment()), start)
+        for r in results:
+            r.group = tuple(s.key for s in specs)
+        return results
     except Exception as exc:
         note = (
             f"the stacked path failed for its group of {len(specs)} ({type(exc).__name__}: {exc}); "

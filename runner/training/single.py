@@ -20,7 +20,7 @@ from runner.components import regularizers
 from runner.components.metrics import Task
 from runner.components.optimizers import build_optimizer
 from runner.datasets.sources import Dataset
-from runner.datasets.splits import split_and_scale
+from runner.datasets.splits import Splits, split_and_scale
 from runner.training import diagnostics
 from runner.training.job import JobSpec
 from runner.training.models import build_model, weight_tensors
@@ -36,10 +36,12 @@ class SingleBackend:
     members = 1
     stacked = False
 
-    def __init__(self, spec: JobSpec, ds: Dataset):
+    def __init__(self, spec: JobSpec, ds: Dataset, splits: Splits | None = None):
+        """``splits``: rows to train on other than the seed's own split (a refit on
+        train+val, training/replay.py)."""
         self.spec, self.ds = spec, ds
         self.train_s = spec.settings.train
-        self.sp = split_and_scale(ds, spec.settings.data, spec.seed, spec.fold)
+        self.sp = splits if splits is not None else split_and_scale(ds, spec.settings.data, spec.seed, spec.fold)
         self.classify = ds.task is Task.CLASSIFICATION
         self.Xtr, self.ytr = self._tensors(self.sp.X_train, self.sp.y_train)
         self.Xva, _ = self._tensors(self.sp.X_val, self.sp.y_val)
@@ -127,6 +129,9 @@ class SingleBackend:
     def end_diagnostics(self) -> list[dict[str, Any]]:
         ends = diagnostics.at_end(self.net, self.Xtr[self.probe], self.spec.settings.model.activation)
         return [{**ends, **regularizers.sparsity(self.weights, self.train_s.sparsity_tol)}]
+
+    def member_state(self, k: int) -> dict[str, np.ndarray]:
+        return {name: t.detach().numpy().copy() for name, t in self.net.state_dict().items()}
 
     def checkpoint_state(self) -> dict[str, Any]:
         return {

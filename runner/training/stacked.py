@@ -34,6 +34,7 @@ from runner.datasets.splits import split_and_scale
 from runner.recipe.grid import canonical
 from runner.training import diagnostics
 from runner.training.job import JobSpec
+from runner.training.models import build_model
 from runner.training.scoring import score_members
 from runner.training.stacked_network import StackedMLP, cross_entropy_grad, mse_grad
 from runner.training.streams import streams
@@ -152,6 +153,7 @@ class StackedBackend:
         self._offsets = (torch.arange(K) * n).unsqueeze(1)  # member k's rows start at k * n
         self.X_epoch, self.y_epoch = torch.empty_like(self.Xtr), torch.empty_like(self.ytr)
         self._dout: torch.Tensor | None = None
+        self._state_names: dict = {}  # model settings -> the single network's state_dict names
 
     def split_records(self) -> list[dict[str, Any]]:
         return [sp.rows.record() for sp in self.splits]
@@ -223,6 +225,20 @@ class StackedBackend:
             {**ends[k], **regularizers.sparsity([w[k] for w in net.weights], t.sparsity_tol), "stacked": K}
             for k, t in enumerate(self.trains)
         ]
+
+    def member_state(self, k: int) -> dict[str, np.ndarray]:
+        """Member k's layers under the names the single-job network gives them (its
+        nn.Linear layers in order, weight then bias; the same (out, in) layout)."""
+        model_s = self.specs[k].settings.model  # members' dropout rates (and so layer indices) may differ
+        if model_s not in self._state_names:
+            g = torch.Generator()
+            skeleton = build_model(model_s, (self.widths[0],), self.widths[-1], g, g)
+            self._state_names[model_s] = list(skeleton.state_dict())
+        names = self._state_names[model_s]
+        tensors = [t[k] for pair in zip(self.net.weights, self.net.biases) for t in pair]
+        if len(tensors) != len(names):
+            raise RuntimeError(f"stacked layers {len(tensors)} do not match the network's {names}")
+        return {name: t.numpy().copy() for name, t in zip(names, tensors)}
 
     def checkpoint_state(self) -> dict[str, Any]:
         raise NotImplementedError("stacked groups take no mid-job checkpoints (grouping.stack_key)")

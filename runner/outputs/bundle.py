@@ -1,0 +1,223 @@
+"""The model bundle: one trained network and everything needed to use it, in a directory.
+
+- ``weights.safetensors``: the network's state_dict (safetensors: a JSON header and raw
+  numbers; reading it cannot run code);
+- ``model.json``: the network (``model`` settings, input shape, outputs: enough for
+  ``models.build_model`` to rebuild it), the preprocessing (feature names in order, the
+  scaler fitted on the rows it trained on, class labels, target standardization, image
+  shape; ``encodings`` is where a CSV's category codes and imputed values go once the
+  data stage records them), where it came from (recipe, job, seed, data fingerprint) and
+  the metrics this exact network scored;
+- ``card.md``: the same for a person, with the leaderboard's evidence and the cautions.
+
+Reading validates ``model.json`` field by field (a bad bundle is a ``BundleError`` naming
+the file and key) and never executes anything from the directory.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from runner.errors import UserError
+from runner.recipe.constraints import validate_table
+from runner.recipe.settings import MODEL, ModelSettings
+
+__all__ = [
+    "CARD",
+    "DESCRIPTION",
+    "FORMAT",
+    "FORMAT_VERSION",
+    "WEIGHTS",
+    "Bundle",
+    "BundleError",
+    "Inputs",
+    "read_bundle",
+    "write_bundle",
+]
+
+FORMAT = "recipe-bundle"
+FORMAT_VERSION = 1
+WEIGHTS = "weights.safetensors"
+DESCRIPTION = "model.json"
+CARD = "card.md"
+
+
+class BundleError(UserError):
+    """A bundle directory that cannot be read as one."""
+
+
+@dataclass(frozen=True)
+class Inputs:
+    """How raw input rows become the network's input, and its outputs answers."""
+
+    task: str  # "classification" or "regression"
+    features: tuple[str, ...]  # names, in the order the network takes them
+    input_shape: tuple[int, ...]  # one row's shape: (features,) or (channels, height, width)
+    scale: str  # "standard", "minmax" or "none"
+    subtract: tuple[float, ...]  # per flattened feature, fitted on the training rows
+    divide_by: tuple[float, ...]
+    classes: tuple[str, ...]  # class labels by output index (classification)
+    target: str | None  # the target column's name (CSV data)
+    target_mean: float = 0.0  # regression: outputs are standardized targets
+    target_std: float = 1.0
+    encodings: Mapping[str, Any] | None = None  # category codes / imputation, when the data stage has them
+
+    @property
+    def image_shape(self) -> tuple[int, ...] | None:
+        return self.input_shape if len(self.input_shape) == 3 else None
+
+
+@dataclass(frozen=True)
+class Bundle:
+    model: ModelSettings
+    n_out: int
+    inputs: Inputs
+    source: dict[str, Any]  # recipe, job, seed, data fingerprint, how the weights were obtained
+    metrics: dict[str, dict[str, float | None]]  # split -> metric -> value of this network
+    path: Path | None = field(default=None, compare=False)
+
+    def description(self) -> dict[str, Any]:
+        return {
+            "format": FORMAT,
+            "version": FORMAT_VERSION,
+            "network": {
+                "model": _plain(self.model),
+                "input_shape": list(self.inputs.input_shape),
+                "outputs": self.n_out,
+            },
+            "preprocessing": _plain(self.inputs),
+            "source": self.source,
+            "metrics": self.metrics,
+        }
+
+
+def _plain(obj: Any) -> dict[str, Any]:
+    fields = getattr(obj, "__dataclass_fields__")  # noqa: B009  (slots dataclasses have no __dict__)
+    return {name: list(v) if isinstance(v, tuple) else v for name in fields for v in [getattr(obj, name)]}
+
+
+def write_bundle(out: Path, bundle: Bundle, weights: dict[str, np.ndarray], card: str) -> None:
+    """Write the bundle's files into ``out`` (created if missing). Each file goes to a
+    temporary name first and is renamed into place, the weights last but one and the
+    description last: a directory with a description always has its weights."""
+    from runner.training.weights import encode
+
+    out.mkdir(parents=True, exist_ok=True)
+    blob = encode(weights)
+    desc = bundle.description()
+    desc["weights_sha256"] = hashlib.sha256(blob).hexdigest()
+    for name, data in ((CARD, card.encode()), (WEIGHTS, blob), (DESCRIPTION, _json(desc))):
+        tmp = out / f".{name}.tmp"
+        tmp.write_bytes(data)
+        tmp.replace(out / name)
+
+
+def _json(doc: dict[str, Any]) -> bytes:
+    return (json.dumps(doc, indent=2, allow_nan=False) + "\n").encode()
+
+
+def _need(doc: Mapping[str, Any], key: str, kind: type | tuple[type, ...], where: str) -> Any:
+    value = doc.get(key) if isinstance(doc, Mapping) else None
+    if not isinstance(value, kind) or (isinstance(value, bool) and kind is not bool):
+        raise BundleError(
+            "missing or of the wrong type",
+            where=where,
+            key=key,
+            value=value,
+            hint="Export the bundle again with 'recipe export'",
+        )
+    return value
+
+
+def read_bundle(path: str | Path) -> tuple[Bundle, dict[str, np.ndarray]]:
+    """The bundle in directory ``path`` and its weights (name -> numpy array)."""
+    from runner.training.weights import decode
+
+    root = Path(path)
+    where = str(root / DESCRIPTION)
+    try:
+        doc = json.loads((root / DESCRIPTION).read_text(encoding="utf-8"))
+        blob = (root / WEIGHTS).read_bytes()
+    except FileNotFoundError as exc:
+        raise BundleError(
+            "not a model bundle: a file is missing",
+            where=str(root),
+            value=Path(exc.filename).name,
+            allowed=f"a directory written by 'recipe export' ({DESCRIPTION}, {WEIGHTS}, {CARD})",
+        ) from None
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise BundleError(f"cannot read the bundle ({exc})", where=where) from None
+    if not isinstance(doc, dict) or doc.get("format") != FORMAT:
+        raise BundleError("not a model bundle description", where=where, key="format", allowed=f'"{FORMAT}"')
+    if doc.get("version") != FORMAT_VERSION:
+        raise BundleError("unsupported bundle version", where=where, key="version", value=doc.get("version"))
+    if hashlib.sha256(blob).hexdigest() != doc.get("weights_sha256"):
+        raise BundleError(
+            "the weights file does not match the description (changed or damaged)",
+            where=str(root / WEIGHTS),
+            hint="Export the bundle again with 'recipe export'",
+        )
+    network = _need(doc, "network", dict, where)
+    try:
+        model = validate_table(_need(network, "model", dict, where), MODEL, "network.model")
+    except UserError as err:
+        raise BundleError(err.problem, where=where, key=err.key, value=err.value, allowed=err.allowed) from None
+    settings = ModelSettings(**{k: tuple(v) if isinstance(v, list) else v for k, v in model.items()})
+    inputs = _inputs(_need(doc, "preprocessing", dict, where), where)
+    bundle = Bundle(
+        model=settings,
+        n_out=_need(network, "outputs", int, where),
+        inputs=inputs,
+        source=_need(doc, "source", dict, where),
+        metrics=_need(doc, "metrics", dict, where),
+        path=root,
+    )
+    try:
+        weights = decode(blob)
+    except Exception as exc:  # safetensors raises its own error kinds for a bad header
+        raise BundleError(f"cannot read the weights ({exc})", where=str(root / WEIGHTS)) from None
+    return bundle, weights
+
+
+def _inputs(raw: dict[str, Any], where: str) -> Inputs:
+    def numbers(key: str) -> tuple[float, ...]:
+        values = _need(raw, key, list, where)
+        if not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in values):
+            raise BundleError("must be a list of numbers", where=where, key=f"preprocessing.{key}")
+        return tuple(float(v) for v in values)
+
+    shape = tuple(int(v) for v in _need(raw, "input_shape", list, where))
+    features = tuple(str(v) for v in _need(raw, "features", list, where))
+    subtract, divide_by = numbers("subtract"), numbers("divide_by")
+    width = int(np.prod(shape))
+    if not (len(features) == len(subtract) == len(divide_by) == width):
+        raise BundleError(
+            "features, subtract and divide_by must each have one entry per input value",
+            where=where,
+            key="preprocessing",
+            value=f"{len(features)}, {len(subtract)}, {len(divide_by)} for input shape {list(shape)}",
+        )
+    task = _need(raw, "task", str, where)
+    if task not in ("classification", "regression"):
+        raise BundleError("unknown task", where=where, key="preprocessing.task", value=task)
+    target = raw.get("target")
+    return Inputs(
+        task=task,
+        features=features,
+        input_shape=shape,
+        scale=_need(raw, "scale", str, where),
+        subtract=subtract,
+        divide_by=divide_by,
+        classes=tuple(str(c) for c in _need(raw, "classes", list, where)),
+        target=str(target) if target is not None else None,
+        target_mean=float(_need(raw, "target_mean", (int, float), where)),
+        target_std=float(_need(raw, "target_std", (int, float), where)),
+        encodings=raw.get("encodings"),
+    )
