@@ -9,13 +9,12 @@ split_and_scale's formulas in its order of rows, so the statistics are the same 
 
 from __future__ import annotations
 
-import dataclasses
 from typing import TYPE_CHECKING
 
 import numpy as np
 
-from runner.datasets.sources import Dataset
 from runner.datasets import splits
+from runner.datasets.sources import Dataset
 
 if TYPE_CHECKING:
     from runner.recipe.settings import DataSettings
