@@ -53,7 +53,7 @@ def _flatten(prefix: str, value: Any, out: dict[str, Any]) -> None:
         low, high = value if value else (None, None)
         out[f"{prefix}_low"], out[f"{prefix}_high"] = low, high
     elif isinstance(value, list):
-        out[prefix] = "; ".join(map(str, value))
+        out[prefix] = "; ".join(getattr(v, "text", str(v)) for v in value)  # a flag by what the board prints
     else:
         out[prefix] = value
 

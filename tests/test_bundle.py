@@ -119,7 +119,7 @@ def test_loaded_bundle_is_an_ordinary_module_matching_its_weights(tmp_path):
 
 def _split_rows_by_sklearn(y, seed, val=0.2, test=0.2):
     idx = np.arange(len(y))
-    rest, test_idx = train_test_split(idx, test_size=test, random_state=seed, stratify=y)
+    rest, test_idx = train_test_split(idx, test_size=test, random_state=0, stratify=y)  # data.split.test_seed 0
     train, val_idx = train_test_split(rest, test_size=val / (1 - test), random_state=seed, stratify=y[rest])
     return train, val_idx, test_idx
 
@@ -307,3 +307,43 @@ def test_killed_run_leaves_only_whole_weights(tmp_path):
     assert resumed.returncode == 0
     with sqlite3.connect(store) as c:
         assert c.execute("SELECT count(*) FROM weights").fetchone()[0] == 8
+
+
+def test_bundle_encodes_text_and_empty_cells_as_training_did(tmp_path):
+    """A table with text and empty cells: the bundle carries the training split's fills and
+    one-hot columns, so predicting the raw CSV gives the stored test accuracy exactly
+    (counted by sklearn.metrics from the predictions file)."""
+    from test_encoding import greenhouse
+
+    greenhouse(tmp_path / "g.csv", n=240)
+    path = write_recipe(
+        tmp_path,
+        """
+        name = "greenhouse-export"
+        seeds = [1, 2]
+        [data]
+        source = "g.csv"
+        target = "state"
+        categorical = "onehot"
+        missing = "impute"
+        [model]
+        hidden = [8]
+        [train]
+        epochs = 4
+        [run]
+        keep_weights = "all"
+        """,
+    )
+    store = tmp_path / "s.sqlite"
+    assert invoke("run", path, "--store", store, "--workers", 1, "-q").exit_code == 0
+    out = tmp_path / "bundle"
+    assert invoke("export", path, "--store", store, "--out", out).exit_code == 0
+    desc = json.loads((out / "model.json").read_text())
+    assert [c["name"] for c in desc["preprocessing"]["encodings"]["columns"]] == ["temp", "humidity", "soil", "vent"]
+    preds = tmp_path / "preds.csv"
+    predicted = invoke("predict", out, tmp_path / "g.csv", "--out", preds)
+    assert predicted.exit_code == 0, predicted.stderr
+    test = [r for r in read_preds(preds) if r["split"] == "test"]
+    got = accuracy_score([r["state"] for r in test], [r["predicted"] for r in test])
+    assert got == desc["metrics"]["test"]["accuracy"]
+    assert "(stored: the same)" in next(ln for ln in predicted.stdout.splitlines() if ln.startswith("test,"))

@@ -76,7 +76,7 @@ def test_report_renders_table_and_every_figure(tmp_path):
     assert len(re.findall(r"<tr class=", board)) == 4  # one leaderboard row per configuration
     for section in ("ablation", "settings", "environment", "cautions"):
         assert f'id="{section}"' in dom
-    assert "Main effects on val.accuracy" in dom and "Interaction: the best model.init" in dom
+    assert "Main effects on val.accuracy" in dom and "Interaction of model.init and model.activation" in dom
     assert "train.l1_mode" in dom and "proximal" in dom  # the resolved settings every configuration shares
     assert "glorot_uniform | zeros" in dom  # what varies, level by level
     assert "sha256" in dom and "torch" in dom  # data and recipe fingerprints, the environment

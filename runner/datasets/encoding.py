@@ -90,8 +90,12 @@ class Preprocessing:
     def transform(self, cells: Mapping[str, Sequence[Any]]) -> np.ndarray:
         """Features for new rows, given each input column's cells (numbers or text; "" or
         None is an empty cell), encoded and scaled as this split's rows were."""
+        return self.apply(self.encode(cells))
+
+    def encode(self, cells: Mapping[str, Sequence[Any]]) -> np.ndarray:
+        """Features for new rows, encoded (fills, one-hot, indicators) but not yet scaled."""
         blocks = [_encode_column(c, cells) for c in self.columns]
-        return self.apply(np.concatenate(blocks, axis=1).astype(np.float32))
+        return np.concatenate(blocks, axis=1).astype(np.float32)
 
     def apply(self, X: np.ndarray) -> np.ndarray:
         """Scale already-encoded features (N, F), or images (N, C, H, W), as this split's were."""

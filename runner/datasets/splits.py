@@ -23,7 +23,7 @@ from runner.errors import DataError
 if TYPE_CHECKING:
     from runner.recipe.settings import DataSettings
 
-__all__ = ["SplitRows", "Splits", "split_and_scale", "split_rows"]
+__all__ = ["SplitRows", "Splits", "prepare_rows", "split_and_scale", "split_rows"]
 
 
 @dataclass(frozen=True)
@@ -110,7 +110,12 @@ def split_rows(ds: Dataset, data: DataSettings, seed: int, fold: int | None = No
 
 def split_and_scale(ds: Dataset, data: DataSettings, seed: int, fold: int | None = None) -> Splits:
     """One job's split. Scaling statistics come from the training rows only."""
-    rows = split_rows(ds, data, seed, fold)
+    return prepare_rows(ds, data, split_rows(ds, data, seed, fold))
+
+
+def prepare_rows(ds: Dataset, data: DataSettings, rows: SplitRows) -> Splits:
+    """The features of ``rows`` encoded and scaled with statistics of ``rows.train`` only
+    (a refit passes train+val as its training rows)."""
     train_idx, val_idx, test_idx = rows.train, rows.val, rows.test
     X, encodings = encode_split(ds.X.reshape(len(ds.X), -1), ds.layout, train_idx, ds.label)
     mean = np.zeros(X.shape[1], np.float32)

@@ -5,8 +5,8 @@
 - ``model.json``: the network (``model`` settings, input shape, outputs: enough for
   ``models.build_model`` to rebuild it), the preprocessing (feature names in order, the
   scaler fitted on the rows it trained on, class labels, target standardization, image
-  shape; ``encodings`` is where a CSV's category codes and imputed values go once the
-  data stage records them), where it came from (recipe, job, seed, data fingerprint) and
+  shape; for a table with text or empty cells, ``encodings``: the training split's
+  ``encoding.Preprocessing`` record, and ``features`` names the raw input columns), where it came from (recipe, job, seed, data fingerprint) and
   the metrics this exact network scored;
 - ``card.md``: the same for a person, with the leaderboard's evidence and the cautions.
 
@@ -197,6 +197,19 @@ def _inputs(raw: dict[str, Any], where: str) -> Inputs:
     features = tuple(str(v) for v in _need(raw, "features", list, where))
     subtract, divide_by = numbers("subtract"), numbers("divide_by")
     width = int(np.prod(shape))
+    encodings = raw.get("encodings")
+    if encodings is not None:  # raw columns in, encoded features (one-hot, indicators) to the network
+        from runner.datasets.encoding import Preprocessing
+
+        try:
+            pre = Preprocessing.from_json(encodings)
+        except (KeyError, TypeError, ValueError) as exc:
+            raise BundleError(f"not a readable encoding record ({exc})", where=where, key="preprocessing.encodings")
+        if tuple(c.name for c in pre.columns) != features or len(pre.feature_names) != width:
+            raise BundleError(
+                "the encoding record does not match features and input_shape", where=where, key="preprocessing"
+            )
+        features = tuple(pre.feature_names)  # the width checked below is the network's
     if not (len(features) == len(subtract) == len(divide_by) == width):
         raise BundleError(
             "features, subtract and divide_by must each have one entry per input value",
@@ -210,7 +223,7 @@ def _inputs(raw: dict[str, Any], where: str) -> Inputs:
     target = raw.get("target")
     return Inputs(
         task=task,
-        features=features,
+        features=tuple(str(v) for v in raw["features"]),
         input_shape=shape,
         scale=_need(raw, "scale", str, where),
         subtract=subtract,
@@ -219,5 +232,5 @@ def _inputs(raw: dict[str, Any], where: str) -> Inputs:
         target=str(target) if target is not None else None,
         target_mean=float(_need(raw, "target_mean", (int, float), where)),
         target_std=float(_need(raw, "target_std", (int, float), where)),
-        encodings=raw.get("encodings"),
+        encodings=encodings,
     )

@@ -114,6 +114,10 @@ class Exporter:
         self._parent = known
         return known
 
+    def begin(self) -> None:
+        """Open (or reopen as RUNNING) the grid's parent run."""
+        self._parent_run()
+
     def there(self) -> dict[str, tuple[str, str]]:
         """Job runs the tracking store holds for this recipe: key -> (run id, status); read once."""
         if self._there is None:
@@ -273,6 +277,11 @@ class RunLogger:
         self.every, self.seconds = every, seconds
         self._waiting: list = []
         self._since = time.monotonic()
+        if self.exporter is not None:  # the grid's run is there from the start, so a stop can close it
+            try:
+                self.exporter.begin()
+            except Exception:
+                self.failed = True
 
     def stored(self, job, result) -> None:
         if self.exporter is None or self.failed:

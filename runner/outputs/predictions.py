@@ -23,7 +23,7 @@ import numpy as np
 
 from runner.components.metrics import evaluate
 from runner.datasets.rows import split_rows
-from runner.errors import DataError
+from runner.errors import DataError, UserError
 from runner.outputs.predict import Predictor
 
 __all__ = ["Scored", "predict_file", "read_rows"]
@@ -67,6 +67,34 @@ def _csv(raw: bytes, label: str, predictor: Predictor) -> Rows:
             allowed="a header naming every feature: " + ", ".join(inputs.features),
         )
     cols = [header.index(f) for f in inputs.features]
+    if inputs.encodings is not None:  # text and empty cells: encoded as the training split's were
+        X = _encoded([rows[1:][r] for r in range(len(rows) - 1)], header, cols, inputs, label, numbered)
+    else:
+        X = _numeric(rows, header, cols, label, numbered)
+    y = None
+    if inputs.target and inputs.target in header:
+        t = header.index(inputs.target)
+        y = _targets([row[t] for row in rows[1:]], predictor)
+    return Rows(X, y, hashlib.sha256(raw).hexdigest(), label)
+
+
+def _encoded(rows: list[list[str]], header: list[str], cols: list[int], inputs, label: str, numbered) -> np.ndarray:
+    from runner.datasets.encoding import Preprocessing
+
+    for r, row in enumerate(rows):
+        if len(row) != len(header):
+            line = numbered[r + 1][0]
+            raise DataError(f"row has {len(row)} fields, the header has {len(header)}", where=label, line=line)
+    cells = {header[i]: [row[i] for row in rows] for i in cols}
+    try:
+        return Preprocessing.from_json(inputs.encodings).encode(cells)
+    except DataError as exc:
+        raise exc.located(where=label) from None
+    except ValueError as exc:
+        raise DataError(f"a numeric column has a value that is not a number ({exc})", where=label) from None
+
+
+def _numeric(rows: list[list[str]], header: list[str], cols: list[int], label: str, numbered) -> np.ndarray:
     X = np.empty((len(rows) - 1, len(cols)), dtype=np.float32)
     for r, row in enumerate(rows[1:]):
         line = numbered[r + 1][0]
@@ -83,11 +111,7 @@ def _csv(raw: bytes, label: str, predictor: Predictor) -> Rows:
                     value=row[i].strip(),
                     allowed="numbers, as in the data the bundle was trained on",
                 ) from None
-    y = None
-    if inputs.target and inputs.target in header:
-        t = header.index(inputs.target)
-        y = _targets([row[t] for row in rows[1:]], predictor)
-    return Rows(X, y, hashlib.sha256(raw).hexdigest(), label)
+    return X
 
 
 def _targets(cells: list, predictor: Predictor) -> np.ndarray:
@@ -135,7 +159,10 @@ def _training_dataset(data: str, predictor: Predictor):
     source = predictor.bundle.source
     settings = Settings.from_dict(source["settings"])
     d = dataclasses.replace(settings.data, source=str(Path(data).resolve()) if Path(data).exists() else data)
-    ds = load_dataset(d, Path.cwd())
+    try:
+        ds = load_dataset(d, Path.cwd())
+    except UserError:
+        return None  # not readable as the training data was: not the training data
     return ds if ds.fingerprint == source.get("data_fingerprint") else None
 
 
@@ -165,7 +192,9 @@ def predict_file(predictor: Predictor, data: str, out: Path) -> Scored:
     groups: dict[str, np.ndarray] = {"all": np.arange(n)}
     split_of = None
     source = predictor.bundle.source
-    if rows.fingerprint == source.get("data_fingerprint"):
+    # The bytes' hash is the dataset's fingerprint unless reading options (text or empty
+    # cells) fold into it; then the file is read again as training read it, to compare.
+    if rows.fingerprint == source.get("data_fingerprint") or (inputs.encodings is not None and Path(data).exists()):
         ds = _training_dataset(data, predictor)
         if ds is not None and len(ds.y) == n:
             from runner.recipe.settings import Settings

@@ -15,9 +15,8 @@ import statistics
 from dataclasses import dataclass
 from pathlib import Path
 
-import numpy as np
-
-from runner.datasets.rows import fit_scaler, split_rows
+from runner.datasets.rows import split_rows
+from runner.datasets.splits import Splits, split_and_scale
 from runner.errors import UserError
 from runner.evidence.document import Leaderboard, Row
 from runner.outputs.bundle import Bundle, Inputs, write_bundle
@@ -90,27 +89,24 @@ class Exported:
     onnx: Path | None
 
 
-def _inputs(job: Job, grid: Grid, fit_rows: np.ndarray, mean=None, scale=None) -> Inputs:
+def _inputs(job: Job, grid: Grid, sp: Splits) -> Inputs:
+    """What the bundle needs to prepare raw rows as ``sp``'s training rows were prepared."""
     ds = grid.datasets[job.config.data_id]
-    data = job.config.settings.data
-    if mean is None:
-        mean, scale = fit_scaler(ds.X.reshape(len(ds.X), -1)[fit_rows], data.scale)
-    classify = str(ds.task) == "classification"
-    y_mean, y_std = 0.0, 1.0
-    if not classify:  # as splits.split_and_scale standardizes regression targets
-        y_mean, y_std = float(ds.y[fit_rows].mean()), float(ds.y[fit_rows].std()) or 1.0
+    pre = sp.preprocessing
+    assert pre is not None
+    encoded = ds.layout is not None  # a table with text or empty cells: the bundle encodes raw cells
     return Inputs(
         task=str(ds.task),
-        features=tuple(ds.feature_names),
+        features=tuple(c.name for c in pre.columns) if encoded else tuple(ds.feature_names),
         input_shape=tuple(int(v) for v in ds.X.shape[1:]),
-        scale=data.scale,
-        subtract=tuple(float(v) for v in mean),
-        divide_by=tuple(float(v) for v in scale),
+        scale=pre.scale,
+        subtract=pre.offset,
+        divide_by=pre.divisor,
         classes=tuple(ds.classes),
-        target=data.target,
-        target_mean=y_mean,
-        target_std=y_std,
-        encodings=None,
+        target=job.config.settings.data.target,
+        target_mean=sp.y_mean,
+        target_std=sp.y_std,
+        encodings=pre.to_json() if encoded else None,
     )
 
 
@@ -147,7 +143,7 @@ def export_bundle(
     row = choose_row(doc, config, rank)
     job = choose_job(row, grid, store, seed)
     ds = grid.datasets[job.config.data_id]
-    rows = split_rows(ds, job.config.settings.data, job.seed, job.fold)
+    rows = split_rows(ds, job.config.settings.data, job.seed, job.fold)  # row numbers by split
     stored = store.jobs([job.key])[0]
     source = {
         "recipe": grid.recipe.name,
@@ -171,13 +167,13 @@ def export_bundle(
         if done.result.weights is None:
             raise UserError(f"the refit did not finish ({done.result.status}: {done.result.error})", key="--refit")
         weights, how = done.result.weights, "refit"
-        inputs = _inputs(job, grid, np.concatenate([rows["train"], rows["val"]]), done.mean, done.scale)
+        inputs = _inputs(job, grid, done.splits)
         # val rows were trained on; the training metric is over train+val rows
         metrics = {("train+val" if s == "train" else s): v for s, v in done.result.metrics.items() if s != "val"}
         source |= {"trained_on": ["train", "val"], "epochs": epochs, "environment": done.result.env}
     else:
         weights, how, reproduced, group = _weights(job, grid, store)
-        inputs = _inputs(job, grid, rows["train"])
+        inputs = _inputs(job, grid, split_and_scale(ds, job.config.settings.data, job.seed, job.fold))
         metrics = store.metrics().get(job.key, {})
         source |= {"trained_on": ["train"], "epochs": stored.best_epoch}
     source |= {"weights": how, "stacked_group": list(group), "reproduced": reproduced}

@@ -18,7 +18,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from runner.datasets.rows import apply_scaler, fit_scaler, split_rows
+from runner.datasets import splits
 from runner.datasets.splits import Splits
 from runner.errors import UserError
 from runner.recipe.grid import Grid, Job
@@ -104,31 +104,16 @@ class Refit:
 
 
 def _merged(job: Job, grid: Grid) -> tuple[Splits, np.ndarray, np.ndarray]:
-    """The seed's train and val rows as one training split, scaled on them; val kept for
-    the loop's per-epoch curve only (early stopping is off); test as it was."""
+    """The seed's train and val rows as one training split, encoded and scaled on them; val
+    kept for the loop's per-epoch curve only (early stopping is off); test as it was."""
     ds = grid.datasets[job.config.data_id]
     data = job.config.settings.data
-    rows = split_rows(ds, data, job.seed, job.fold)
-    fit = np.concatenate([rows["train"], rows["val"]])
-    X = ds.X.reshape(len(ds.X), -1)
-    mean, scale = fit_scaler(X[fit], data.scale)
-    Xs = apply_scaler(ds.X, mean, scale)
-    y = ds.y
-    y_mean, y_std = 0.0, 1.0
-    if str(ds.task) == "regression":
-        y_mean, y_std = float(y[fit].mean()), float(y[fit].std()) or 1.0
-    test = rows.get("test")
-    sp = Splits(
-        Xs[fit],
-        y[fit],
-        Xs[rows["val"]],
-        y[rows["val"]],
-        None if test is None else Xs[test],
-        None if test is None else y[test],
-        y_mean,
-        y_std,
-        mean,
-    )
+    rows = splits.split_rows(ds, data, job.seed, job.fold)
+    merged = splits.SplitRows(np.concatenate([rows.train, rows.val]), rows.val, rows.test)
+    sp = splits.prepare_rows(ds, data, merged)
+    assert sp.preprocessing is not None
+    mean = np.asarray(sp.preprocessing.offset, np.float32)
+    scale = np.asarray(sp.preprocessing.divisor, np.float32)
     return sp, mean, scale
 
 
