@@ -48,7 +48,8 @@ def test_tables_equal_the_board_json_and_the_store(tmp_path):
             assert pd.isna(got["vs_best"])
         else:
             assert got["vs_best.diff_mean"] == vs["diff_mean"] and got["vs_best.p_holm"] == vs["p_holm"]
-        assert got["counts.done"] == row["counts"]["done"] and got["flags"] == "; ".join(f["text"] for f in row["flags"])
+        assert got["counts.done"] == row["counts"]["done"]
+        assert got["flags"] == "; ".join(f["text"] for f in row["flags"])
     metrics = study.metrics()
     val = metrics[(metrics.split == "val") & (metrics.metric == "accuracy")]
     for row in doc["rows"]:

@@ -6,7 +6,8 @@
   ``models.build_model`` to rebuild it), the preprocessing (feature names in order, the
   scaler fitted on the rows it trained on, class labels, target standardization, image
   shape; for a table with text or empty cells, ``encodings``: the training split's
-  ``encoding.Preprocessing`` record, and ``features`` names the raw input columns), where it came from (recipe, job, seed, data fingerprint) and
+  ``encoding.Preprocessing`` record, and ``features`` names the raw input columns), where
+  it came from (recipe, job, seed, data fingerprint) and
   the metrics this exact network scored;
 - ``card.md``: the same for a person, with the leaderboard's evidence and the cautions.
 
@@ -204,7 +205,7 @@ def _inputs(raw: dict[str, Any], where: str) -> Inputs:
         try:
             pre = Preprocessing.from_json(encodings)
         except (KeyError, TypeError, ValueError) as exc:
-            raise BundleError(f"not a readable encoding record ({exc})", where=where, key="preprocessing.encodings")
+            raise BundleError(f"not a readable encoding record ({exc})", where=where, key="preprocessing.encodings") from None
         if tuple(c.name for c in pre.columns) != features or len(pre.feature_names) != width:
             raise BundleError(
                 "the encoding record does not match features and input_shape", where=where, key="preprocessing"
