@@ -205,7 +205,8 @@ def _inputs(raw: dict[str, Any], where: str) -> Inputs:
         try:
             pre = Preprocessing.from_json(encodings)
         except (KeyError, TypeError, ValueError) as exc:
-            raise BundleError(f"not a readable encoding record ({exc})", where=where, key="preprocessing.encodings") from None
+            problem = f"not a readable encoding record ({exc})"
+            raise BundleError(problem, where=where, key="preprocessing.encodings") from None
         if tuple(c.name for c in pre.columns) != features or len(pre.feature_names) != width:
             raise BundleError(
                 "the encoding record does not match features and input_shape", where=where, key="preprocessing"
