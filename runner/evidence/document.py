@@ -245,6 +245,9 @@ class Leaderboard:
                 continue
             doc[f.name] = _plain(getattr(self, f.name))
         doc["jobs"]["total"] = self.jobs.total
+        from runner.evidence.flags import legend  # flags.py builds on this module
+
+        doc["flag_legend"] = {code: {"meaning": m, "try": t} for code, (m, t) in legend(self.rows).items()}
         return doc
 
     @classmethod

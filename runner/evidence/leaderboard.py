@@ -69,13 +69,14 @@ def _row(grid: Grid, config: Config, cjobs: list, stored: dict[str, StoredJob], 
     split, metric = grid.rank_by.split(".", 1)
     per_seed, test_seed = {}, {}
     counts = dict.fromkeys(Status, 0) | {"pending": 0}
-    diags = []
+    diags, started = [], []  # done jobs' diagnostics; every finished job's (initialization flags)
     for job in cjobs:
         row = stored.get(job.key)
         if row is None:
             counts["pending"] += 1
             continue
         counts[row.status] += 1
+        started.append(row.diagnostics)
         if row.status is not Status.DONE:
             continue
         value = metrics.get(job.key, {}).get(split, {}).get(metric)
@@ -100,7 +101,7 @@ def _row(grid: Grid, config: Config, cjobs: list, stored: dict[str, StoredJob], 
         test_per_seed={str(s): v for s, v in sorted(test_seed.items())},
         counts=tally,
         diagnostics=mean_diagnostics(diags),
-        flags=flags(diags, tally, grid.recipe.diagnostics),
+        flags=flags(diags, tally, grid.recipe.diagnostics, init_diags=started),
     )
 
 
