@@ -92,8 +92,9 @@ LEGEND: dict[str, tuple[str, str]] = {
         "raise train.epochs (or the learning rate) and compare again",
     ),
     "stopped_early": (
-        "early stopping kept an epoch in the first early_stop_share of the epoch budget",
-        "lower train.lr, raise train.patience, or enlarge the val split",
+        "early stopping kept an epoch within the first early_stop_share of the epoch budget: the score "
+        "comes from a network trained few epochs (a high rate, noisy val, or just a generous budget)",
+        "lower train.lr or raise train.patience and compare; if the score holds, the budget was generous",
     ),
     "unstable_loss": (
         "the training loss climbed back above its lowest value so far by more than unstable_above of "
@@ -215,8 +216,15 @@ def flags(
                              ("miscalibrated", "miscalibrated", miscalibrated)):  # fmt: skip
         k, n = _judged(diags, rule, th)
         if n and 2 * k >= n:
-            out.append(Flag(code, f"{text} {k}/{n}"))
+            out.append(Flag(code, f"{text} {k}/{n}" + _where(code, diags)))
     return out
+
+
+def _where(code: str, diags: list[dict[str, Any]]) -> str:
+    """Stopped early: at what share of the epoch budget (median over jobs), so a reader can
+    tell a kept epoch 2 of 100 from epoch 9 of 100."""
+    share = _median(diags, "best_epoch_share") if code == "stopped_early" else None
+    return "" if share is None else f" (epoch at {share:.0%} of budget)"
 
 
 def legend(rows: Iterable[Row]) -> dict[str, tuple[str, str]]:

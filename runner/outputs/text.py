@@ -99,8 +99,8 @@ def _legend_lines(doc: Leaderboard, markdown: bool) -> list[str]:
     entries = legend(doc.rows)
     if not entries:
         return []
-    # the flag as the board prints it, without its "k/n" count
-    names = {f.code: re.sub(r" \d+/\d+$", "", f.text) for r in doc.rows for f in r.flags}
+    # the flag as the board prints it, without its "k/n" count and what follows
+    names = {f.code: re.sub(r" \d+/\d+.*$", "", f.text) for r in doc.rows for f in r.flags}
     if markdown:
         return ["", "**Flags**", ""] + [
             f"- **{names[code]}** (`{code}`): {meaning}. Try: {what}." for code, (meaning, what) in entries.items()
