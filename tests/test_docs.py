@@ -2,12 +2,20 @@
 
 from conftest import ROOT
 
+from runner.evidence.flags import LEGEND
+from runner.recipe.loader import DIAGNOSTICS
 from runner.recipe.settings import all_paths
 
 
 def test_readme_documents_every_setting():
     readme = (ROOT / "README.md").read_text()
     missing = [p for p in all_paths() if f"`{p}`" not in readme]
+    assert not missing, missing
+
+
+def test_readme_documents_every_flag_and_threshold():
+    readme = (ROOT / "README.md").read_text()
+    missing = [name for name in [*LEGEND, *DIAGNOSTICS] if f"`{name}`" not in readme]
     assert not missing, missing
 
 

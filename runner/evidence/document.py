@@ -289,6 +289,9 @@ class Leaderboard:
         doc["jobs"]["total"] = self.jobs.total
         for row, raw in zip(self.rows, doc["rows"]):
             raw["possibly_best"] = row.possibly_best
+        from runner.evidence.flags import legend  # flags.py builds on this module
+
+        doc["flag_legend"] = {code: {"meaning": m, "try": t} for code, (m, t) in legend(self.rows).items()}
         return doc
 
     @classmethod

@@ -113,12 +113,14 @@ def _row(grid: Grid, config: Config, cjobs: list, stored: dict[str, StoredJob], 
     test_units = _units(cjobs, stored, metrics, "test", grid.metric)
     counts = dict.fromkeys(Status, 0) | {"pending": 0}
     done_diags, best_epochs = [], []
+    started = []  # every finished job's diagnostics (the initialization flags read diverged jobs too)
     for job in cjobs:
         row = stored.get(job.key)
         if row is None:
             counts["pending"] += 1
             continue
         counts[row.status] += 1
+        started.append(row.diagnostics)
         if row.status is Status.DONE:
             done_diags.append(row.diagnostics)
             if row.best_epoch is not None:
@@ -133,7 +135,8 @@ def _row(grid: Grid, config: Config, cjobs: list, stored: dict[str, StoredJob], 
         per_seed={str(s): v for s, v in per_seed.items()},
         test_mean=statistics.fmean(test_seed.values()) if test_seed else None,
         test_per_seed={str(s): v for s, v in test_seed.items()}, counts=tally,
-        diagnostics=mean_diagnostics(done_diags), flags=flags(done_diags, tally, grid.recipe.diagnostics),
+        diagnostics=mean_diagnostics(done_diags),
+        flags=flags(done_diags, tally, grid.recipe.diagnostics, init_diags=started),
         complete=complete,
         best_epoch_median=statistics.median(best_epochs) if best_epochs and config.settings.train.patience else None,
     )  # fmt: skip

@@ -6,9 +6,11 @@ from __future__ import annotations
 import csv
 import io
 import json
+import re
 
 from runner.components.metrics import Goal
 from runner.evidence.document import Ablation, Leaderboard, Row
+from runner.evidence.flags import legend
 
 __all__ = [
     "FORMATS",
@@ -106,7 +108,22 @@ def _table(doc: Leaderboard) -> str:
     lines = _head(doc) + ["", fmt(header), fmt(["-" * w for w in widths])]
     lines += [fmt(r) for r in body]
     lines += [""] + [f"* {c}" for c in doc.cautions]
+    lines += _legend_lines(doc, markdown=False)
     return "\n".join(lines) + "\n"
+
+
+def _legend_lines(doc: Leaderboard, markdown: bool) -> list[str]:
+    """One line per flag on the board: what it means and what to try."""
+    entries = legend(doc.rows)
+    if not entries:
+        return []
+    # the flag as the board prints it, without its "k/n" count and what follows
+    names = {f.code: re.sub(r" \d+/\d+.*$", "", f.text) for r in doc.rows for f in r.flags}
+    if markdown:
+        return ["", "**Flags**", ""] + [
+            f"- **{names[code]}** (`{code}`): {meaning}. Try: {what}." for code, (meaning, what) in entries.items()
+        ]
+    return ["", "Flags:"] + [f"  {names[code]}: {meaning}. Try: {what}." for code, (meaning, what) in entries.items()]
 
 
 def _markdown(doc: Leaderboard) -> str:
@@ -122,6 +139,7 @@ def _markdown(doc: Leaderboard) -> str:
     ]
     lines += ["| " + " | ".join(esc(c) for c in r) + " |" for r in body]
     lines += [""] + [f"- {c}" for c in doc.cautions]
+    lines += _legend_lines(doc, markdown=True)
     return "\n".join(lines) + "\n"
 
 

@@ -88,14 +88,39 @@ TRACKING = {
 # needs no rerun and they are not part of a job's identity.
 DIAGNOSTICS = {
     "vanishing_below": Param(
-        Real(0, None, low_open=True), 1e-3, "flag when first-layer / last-layer gradient norm at init is below this"
+        Real(0, None, low_open=True),
+        1e-3,
+        "flag vanishing when a depth ratio at init (activation std, back-propagated or weight gradient) is below this",
     ),
     "exploding_above": Param(
-        Real(0, None, low_open=True), 1e3, "flag when first-layer / last-layer gradient norm at init is above this"
+        Real(0, None, low_open=True), 1e3, "flag exploding when a depth ratio at init is above this"
+    ),
+    "grad_weight_below": Param(
+        Real(0, None, low_open=True), 1e-6, "flag vanishing when every layer's |grad W| / |W| at init is below this"
+    ),
+    "grad_weight_above": Param(
+        Real(0, None, low_open=True), 1e2, "flag exploding when some layer's |grad W| / |W| at init is above this"
     ),
     "dead_above": Param(Real(0, 1), 0.5, "flag when the fraction of dead ReLU units exceeds this"),
     "saturated_above": Param(Real(0, 1), 0.5, "flag when the fraction of saturated units exceeds this"),
-    "gap_above": Param(Real(0, None), 0.1, "flag overfitting when train minus val metric exceeds this"),
+    "gap_above": Param(
+        Real(0, None), 0.1, "flag overfitting when the scale-free train-val gap of the rank metric exceeds this"
+    ),
+    "trend_p": Param(Real(0, 1, low_open=True), 0.05, "still improving: one-sided p of the trend at the end"),
+    "improving_share": Param(
+        Real(0, None), 0.05, "still improving: least gain over the last quarter, as a share of the curve's range"
+    ),
+    "early_stop_share": Param(
+        Real(0, 1), 0.1, "flag when early stopping kept an epoch within this share of the epoch budget"
+    ),
+    "unstable_above": Param(
+        Real(0, None), 0.3, "flag when the training loss climbs above its low so far by this share of its first value"
+    ),
+    "miscalibrated_above": Param(
+        Real(0, None, low_open=True),
+        1.1,
+        "flag when val log-loss over the largest a calibrated model can have exceeds this",
+    ),
 }
 
 
@@ -141,9 +166,16 @@ class DiagnosticThresholds:
 
     vanishing_below: float = 1e-3
     exploding_above: float = 1e3
+    grad_weight_below: float = 1e-6
+    grad_weight_above: float = 1e2
     dead_above: float = 0.5
     saturated_above: float = 0.5
     gap_above: float = 0.1
+    trend_p: float = 0.05
+    improving_share: float = 0.05
+    early_stop_share: float = 0.1
+    unstable_above: float = 0.3
+    miscalibrated_above: float = 1.1
 
 
 @dataclass(frozen=True, slots=True)

@@ -27,7 +27,7 @@ from runner.components.lr_schedules import lr_at
 from runner.components.metrics import METRICS, Goal
 from runner.datasets.sources import Dataset
 from runner.execution import faults
-from runner.training import checkpoints
+from runner.training import checkpoints, summaries
 from runner.training.environment import environment
 from runner.training.job import JobResult, JobSpec, Status
 
@@ -70,7 +70,9 @@ class Backend(Protocol):
         """Per member and split: every metric (the training split: the monitored one)."""
 
     def end_diagnostics(self) -> list[dict[str, Any]]:
-        """Per member: dead and saturated units, weight sparsity."""
+        """Per member: dead and saturated units, weight sparsity; the scales the flags need:
+        ``val_rows``, and ``classes`` (classification) or ``target_std`` (regression: the
+        target's std on the training split)."""
 
     def member_state(self, k: int) -> dict[str, Any]:
         """Member k's weights and buffers as numpy arrays, named as the single-job
@@ -245,6 +247,24 @@ def _finish(backend: Backend, members: list[_Member]) -> None:
         if r.metrics.get("train") and r.metrics.get("val"):
             tr, va = r.metrics["train"][monitor], r.metrics["val"][monitor]
             r.diagnostics["gap"] = (tr - va) if METRICS[monitor].goal is Goal.MAX else (va - tr)
+        r.diagnostics.update(_summaries(m, r))
+
+
+def _summaries(m: _Member, r: JobResult) -> dict[str, Any]:
+    """What the flags read of a finished job's curves and final metrics (summaries.py)."""
+    monitor, train = m.spec.monitor, m.spec.settings.train
+    d = r.diagnostics
+    out: dict[str, Any] = {
+        **summaries.tail_trend(m.curves[f"val_{monitor}"], METRICS[monitor].goal is Goal.MAX, train.epochs),
+        "best_epoch_share": summaries.best_epoch_share(r.best_epoch, train.epochs, train.patience),
+        "loss_rise": summaries.loss_rise(m.curves["train_loss"]),
+    }
+    if d.get("gap") is not None:
+        out["gap_scaled"] = summaries.scaled_gap(d["gap"], monitor, d.get("target_std"), d.get("classes"))
+    val = r.metrics.get("val", {})
+    if "accuracy" in val and "log_loss" in val and d.get("val_rows") and d.get("classes"):
+        out.update(summaries.calibration(val["accuracy"], val["log_loss"], d["val_rows"], d["classes"]))
+    return out
 
 
 def _save(backend: Backend, m: _Member, path: str, step: int, epoch: int) -> None:

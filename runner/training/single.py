@@ -128,7 +128,8 @@ class SingleBackend:
 
     def end_diagnostics(self) -> list[dict[str, Any]]:
         ends = diagnostics.at_end(self.net, self.Xtr[self.probe], self.spec.settings.model.activation)
-        return [{**ends, **regularizers.sparsity(self.weights, self.train_s.sparsity_tol)}]
+        scales = diagnostics.scales(self.sp, len(self.ds.classes) if self.classify else None)
+        return [{**ends, **regularizers.sparsity(self.weights, self.train_s.sparsity_tol), **scales}]
 
     def member_state(self, k: int) -> dict[str, np.ndarray]:
         return {name: t.detach().numpy().copy() for name, t in self.net.state_dict().items()}

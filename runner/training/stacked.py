@@ -159,12 +159,34 @@ class StackedBackend:
         return [sp.rows.record() for sp in self.splits]
 
     def initial_diagnostics(self) -> list[dict[str, Any]]:
-        """As diagnostics.at_init, on the probe rows (no dropout)."""
+        """As diagnostics.at_init, on the probe rows (no dropout). The gradient at each
+        hidden activation is read as the backward pass hands it to that activation's
+        derivative (which then overwrites it in place)."""
         net, K, probe = self.net, self.members, self.probe
-        _, dout = self.loss_grad(net.forward(self.Xtr[:, :probe], keep=True), self.ytr[:, :probe])
-        net.backward(dout)
+        x = self.Xtr[:, :probe]
+        _, dout = self.loss_grad(net.forward(x, keep=True), self.ytr[:, :probe])
+        back: list[torch.Tensor] = []
+        derivative = net.act_back
+
+        def measured(g, z, a, out):
+            back.append(g.reshape(K, -1).norm(dim=1))
+            return derivative(g, z, a, out)
+
+        net.act_back = measured
+        try:
+            net.backward(dout)
+        finally:
+            net.act_back = derivative
+        back.reverse()  # met last layer first
         norms = torch.stack([g.reshape(K, -1).norm(dim=1) for g in net.gw], dim=1).tolist()
-        return diagnostics.init_stats([h.reshape(K, -1) for h in net.hidden], norms)
+        weights = torch.stack([w.reshape(K, -1).norm(dim=1) for w in net.weights], dim=1).tolist()
+        return diagnostics.init_stats(
+            [h.reshape(K, -1) for h in net.hidden],
+            norms,
+            x.reshape(K, -1),
+            backprop=torch.stack(back, dim=1).tolist() if back else [[] for _ in range(K)],
+            weight_norms=weights,
+        )
 
     def begin_epoch(self) -> None:
         """Each member's rows in its own order for this epoch, gathered once: mini-batches
@@ -221,9 +243,15 @@ class StackedBackend:
         net, K = self.net, self.members
         net.forward(self.Xtr[:, : self.probe])
         ends = diagnostics.end_stats(net.hidden, self.specs[0].settings.model.activation, K)
+        classes = len(self.ds.classes) if self.classify else None
         return [
-            {**ends[k], **regularizers.sparsity([w[k] for w in net.weights], t.sparsity_tol), "stacked": K}
-            for k, t in enumerate(self.trains)
+            {
+                **ends[k],
+                **regularizers.sparsity([w[k] for w in net.weights], t.sparsity_tol),
+                **diagnostics.scales(sp, classes),
+                "stacked": K,
+            }
+            for k, (t, sp) in enumerate(zip(self.trains, self.splits))
         ]
 
     def member_state(self, k: int) -> dict[str, np.ndarray]:
