@@ -13,6 +13,7 @@ from runner.outputs.text import render, render_ablation
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
 from runner.store.database import Store
+from runner.store.lock import RunnerLock
 from runner.training.job import JobResult
 
 # (optimizer, l2) -> val accuracy for seeds 1, 2, 3 (invented values)
@@ -41,6 +42,12 @@ RECIPE = """
 def known_store(tmp_path):
     grid = expand(load_recipe(write_recipe(tmp_path, RECIPE)))
     store = Store(tmp_path / "known.sqlite")
+    with RunnerLock(store):  # results are written only under the runner lock
+        _fill(grid, store)
+    return grid, store
+
+
+def _fill(grid, store):
     for job in grid:
         a = job.config.assignments
         v = VALUES[(a["train.optimizer"], a["train.l2"])][grid.recipe.seeds.index(job.seed)]
@@ -53,7 +60,6 @@ def known_store(tmp_path):
             epochs_run=2,
         )
         store.write_result(job, grid.labels(job.config), grid.recipe.hash, result)
-    return grid, store
 
 
 def mean(xs):

@@ -9,13 +9,14 @@ import click
 
 from runner.cli.common import fail, format_option, load_grid, store_option, store_path
 from runner.errors import UserError
+from runner.files import write_output
 
 
 @click.command()
 @click.argument("recipe_path", metavar="RECIPE", type=click.Path())
 @store_option
 @format_option
-@click.option("--out", type=click.Path(dir_okay=False), help="Write to this file instead of stdout.")
+@click.option("--out", type=click.Path(), help="Write to this file instead of stdout.")
 @click.option(
     "--ablation",
     is_flag=True,
@@ -35,11 +36,11 @@ def board(recipe_path, store, fmt, out, ablation):
         text = render(doc, fmt)
         if ablation and fmt in ("table", "markdown"):
             text += render_ablation(doc.ablation, markdown=fmt == "markdown")
+        if out:
+            write_output(out, text)
     except UserError as err:
         fail(err)
-    if out:
-        Path(out).write_text(text)
-    else:
+    if not out:
         click.echo(text, nl=False)
 
 
@@ -96,7 +97,7 @@ def diff(old, new, fmt, fail_on_worse):
 @store_option
 @click.option(
     "--out",
-    type=click.Path(dir_okay=False),
+    type=click.Path(),
     default=None,
     help="HTML file to write (default: <name>-report.html beside the store).",
 )
@@ -110,10 +111,10 @@ def report(recipe_path, store, out):
         path = store_path(recipe, store)
         with Store(path, create=False) as db:
             text = build_report(grid, db)
+        target = Path(out) if out else path.with_name(f"{recipe.name}-report.html")
+        write_output(target, text)
     except UserError as err:
         fail(err)
-    target = Path(out) if out else path.with_name(f"{recipe.name}-report.html")
-    target.write_text(text, encoding="utf-8")
     click.echo(f"wrote {target}")
 
 
@@ -126,9 +127,11 @@ def export_mlflow(recipe_path, store, uri):
     try:
         recipe, grid = load_grid(recipe_path)
         from runner.outputs.mlflow_export import export_all
+        from runner.store import RunnerLock
         from runner.store.database import Store
 
-        with Store(store_path(recipe, store), create=False) as db:
+        # it writes to the store (what reached which URI): one writer at a time, as for a run
+        with Store(store_path(recipe, store), create=False, writable=True) as db, RunnerLock(db):
             sent, before, errors = export_all(uri, grid, db)
     except UserError as err:
         fail(err)

@@ -19,6 +19,7 @@ import tomli
 
 from runner.components.metrics import METRICS
 from runner.errors import RecipeError, UserError
+from runner.files import read_bounded
 from runner.recipe.constraints import (
     Choice,
     Either,
@@ -31,6 +32,7 @@ from runner.recipe.constraints import (
     suggest,
     validate_table,
 )
+from runner.recipe.locate import line_of
 from runner.recipe.settings import SECTIONS, Settings, all_paths, param_at
 
 __all__ = [
@@ -43,6 +45,8 @@ __all__ = [
     "parse_recipe",
     "resolve",
 ]
+
+MAX_RECIPE_BYTES = 1 << 20  # a recipe is a short text; this bound stops /dev/zero and its kind
 
 TOP_LEVEL = (
     "baseline",
@@ -68,7 +72,7 @@ RUN = {
         "local",
         'where jobs run: "local", "dask-local" or "dask://HOST:PORT"',
     ),
-    "workers": Param(Integer(1, 4096), 0, "worker processes (0 = the number of cores)"),
+    "workers": Param(Integer(0, 4096), 0, "worker processes (0 = chosen by the tool: the number of cores)"),
 }
 TRACKING = {
     "mlflow": Param(Text(), None, "MLflow tracking URI to log every finished job to, e.g. sqlite:///mlflow.db"),
@@ -153,17 +157,12 @@ class Recipe:
         return self.path.parent
 
     def line_of(self, key: str) -> int | None:
-        return _line_of(self.text, key)
+        return line_of(self.text, key)
 
 
 def load_recipe(path: str | Path) -> Recipe:
     path = Path(path)
-    try:
-        data = path.read_bytes()
-    except FileNotFoundError:
-        raise RecipeError("recipe file not found", where=str(path), hint="Give the path of a .toml recipe") from None
-    except OSError as exc:
-        raise RecipeError(f"cannot read recipe ({exc.strerror})", where=str(path)) from None
+    data = read_bounded(path, MAX_RECIPE_BYTES, "recipe file", RecipeError)
     try:
         text = data.decode("utf-8")
     except UnicodeDecodeError:
@@ -175,6 +174,10 @@ def parse_recipe(text: str, path: Path) -> Recipe:
     where = path.name
     try:
         raw = tomli.loads(text)
+    except RecursionError:  # tomli's own limit on nested arrays and inline tables
+        raise RecipeError(
+            "arrays or inline tables are nested too deeply", where=where, hint="A recipe needs at most a few levels"
+        ) from None
     except tomli.TOMLDecodeError as exc:
         line = getattr(exc, "lineno", None)
         msg = getattr(exc, "msg", str(exc))
@@ -184,7 +187,7 @@ def parse_recipe(text: str, path: Path) -> Recipe:
     try:
         return recipe_from_tables(raw, text, path)
     except UserError as err:
-        raise err.located(where=where, line=_line_of(text, err.key) if err.key else None) from None
+        raise err.located(where=where, line=line_of(text, err.key) if err.key else None) from None
 
 
 def recipe_from_tables(raw: dict, text: str, path: Path) -> Recipe:
@@ -262,10 +265,15 @@ def _seeds(value: Any) -> tuple[int, ...]:
         )
     for seed in value:
         try:
+            if isinstance(seed, float):  # 1.0 is TOML's float: a seed is written as an integer
+                raise Invalid("is a float", "")
             Integer(0, 2**31 - 1).check(seed)
         except Invalid:
             raise RecipeError(
-                "each seed must be a whole number from 0 to 2147483647", key="seeds", value=seed
+                "each seed must be a whole number from 0 to 2147483647",
+                key="seeds",
+                value=seed,
+                allowed="integers written without a decimal point, e.g. [1, 2, 3]",
             ) from None
     if len(set(value)) != len(value):
         raise RecipeError("seeds must not repeat", key="seeds", value=value)
@@ -396,6 +404,7 @@ def _exclude(raw: Any, factors: tuple[Factor, ...]) -> tuple[Mapping[str, Any], 
     for i, rule in enumerate(raw):
         if not rule:
             raise RecipeError("an empty rule would exclude everything", key=f"exclude[{i}]")
+        normal = {}  # each value as the factor holds its level (a list level is a tuple there)
         for path, value in rule.items():
             if path not in by_path:
                 raise RecipeError(
@@ -405,14 +414,16 @@ def _exclude(raw: Any, factors: tuple[Factor, ...]) -> tuple[Mapping[str, Any], 
                 )
             factor, j = by_path[path]
             values = [lvl[j] for lvl in factor.levels]
-            if _freeze(value) not in map(_freeze, values):
+            frozen = [_freeze(v) for v in values]
+            if _freeze(value) not in frozen:
                 raise RecipeError(
                     "is not one of the factor's levels, so the rule never applies",
                     key=f'exclude[{i}]."{path}"',
                     value=value,
                     allowed=", ".join(_fmt(v) for v in values),
                 )
-        out.append(MappingProxyType(dict(rule)))
+            normal[path] = values[frozen.index(_freeze(value))]
+        out.append(MappingProxyType(normal))
     return tuple(out)
 
 
@@ -462,37 +473,3 @@ def _fmt(value: Any) -> str:
     if isinstance(value, (list, tuple)):
         return "[" + ",".join(_fmt(v) for v in value) + "]"
     return str(value)
-
-
-def _line_of(text: str, key: str | None) -> int | None:
-    """Best-effort TOML line for a dotted key, a quoted factor key, or a top-level key."""
-    if not key:
-        return None
-    lines = text.splitlines()
-    quoted = re.findall(r'"([^"]+)"', key)
-    if key.startswith(("factors.", "exclude", "baseline.")) and quoted:
-        for n, line in enumerate(lines, 1):
-            if f'"{quoted[-1]}"' in line and "=" in line:
-                return n
-        return None
-    parts = key.split(".")
-    if len(parts) == 1:
-        for n, line in enumerate(lines, 1):
-            if re.match(rf'\s*"?{re.escape(parts[0])}"?\s*=', line) or re.match(
-                rf"\s*\[\[?\s*{re.escape(parts[0])}\s*\]", line
-            ):
-                return n
-        return None
-    section, name = parts[0], parts[1]
-    inside = False
-    for n, line in enumerate(lines, 1):
-        header = re.match(r"\s*\[+\s*([^\]]+?)\s*\]+", line)
-        if header:
-            inside = header.group(1) == section
-            continue
-        if inside and re.match(rf'\s*"?{re.escape(name)}"?\s*=', line):
-            return n
-    for n, line in enumerate(lines, 1):
-        if re.match(rf"\s*\[\s*{re.escape(section)}\s*\]", line):
-            return n
-    return None
