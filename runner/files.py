@@ -16,7 +16,7 @@ from pathlib import Path
 
 from runner.errors import UserError
 
-__all__ = ["OutputError", "describe_kind", "read_bounded", "write_output"]
+__all__ = ["OutputError", "describe_kind", "read_bounded", "read_head", "regular_file", "write_output"]
 
 
 class OutputError(UserError):
@@ -38,11 +38,10 @@ def describe_kind(mode: int) -> str | None:
     return "not a regular file"
 
 
-def read_bounded(path: str | Path, limit: int, what: str, error: type[UserError] = UserError) -> bytes:
-    """The bytes of a regular file of at most ``limit`` bytes; ``error`` (a UserError class)
-    otherwise. The file is checked with stat before it is opened (opening a FIFO would block)
-    and read with a bound (a file can grow, or lie about its size, after the check)."""
-    path = Path(path)
+def regular_file(path: str | Path, what: str, error: type[UserError] = UserError) -> os.stat_result:
+    """The stat of ``path`` if it is a regular file (symlinks followed); ``error`` (a
+    UserError class) naming what it is otherwise. Checked before anything opens it:
+    opening a FIFO blocks, reading a device can go on forever."""
     try:
         info = os.stat(path)
     except FileNotFoundError:
@@ -52,6 +51,13 @@ def read_bounded(path: str | Path, limit: int, what: str, error: type[UserError]
     kind = describe_kind(info.st_mode)
     if kind is not None:
         raise error(f"{what} is {kind}", where=str(path), allowed="a regular file")
+    return info
+
+
+def read_bounded(path: str | Path, limit: int, what: str, error: type[UserError] = UserError) -> bytes:
+    """The bytes of a regular file of at most ``limit`` bytes; ``error`` otherwise. Read with
+    a bound as well (a file can grow, or lie about its size, after the check)."""
+    info = regular_file(path, what, error)
     too_big = error(
         f"{what} is larger than the limit of {limit:,} bytes",
         where=str(path),
@@ -59,15 +65,21 @@ def read_bounded(path: str | Path, limit: int, what: str, error: type[UserError]
     )
     if info.st_size > limit:
         raise too_big
-    try:
-        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0))
-        with os.fdopen(fd, "rb") as f:
-            data = f.read(limit + 1)
-    except OSError as exc:
-        raise error(f"cannot read {what} ({exc.strerror})", where=str(path)) from None
+    data = read_head(path, limit + 1, what, error)
     if len(data) > limit:
         raise too_big
     return data
+
+
+def read_head(path: str | Path, size: int, what: str, error: type[UserError] = UserError) -> bytes:
+    """At most the first ``size`` bytes of a regular file."""
+    regular_file(path, what, error)
+    try:
+        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0))
+        with os.fdopen(fd, "rb") as f:
+            return f.read(size)
+    except OSError as exc:
+        raise error(f"cannot read {what} ({exc.strerror})", where=str(path)) from None
 
 
 _WRITE_HINTS = {

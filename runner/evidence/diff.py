@@ -18,6 +18,7 @@ from runner.evidence import stats
 from runner.evidence.document import FORMAT as BOARD
 from runner.evidence.document import FORMAT_VERSION as BOARD_VERSION
 from runner.evidence.document import Leaderboard, Row
+from runner.files import read_bounded, read_head
 from runner.outputs.text import grid_lines, interval, number, p_text
 from runner.recipe.grid import canonical
 
@@ -27,6 +28,7 @@ FORMAT = "recipe-diff"
 VERSION = 1
 VERDICTS = ("better", "worse", "no clear change")
 ENV_KEYS = ("python", "torch", "numpy", "sklearn", "threads", "cpu")
+MAX_BOARD_BYTES = 1 << 28  # a leaderboard JSON of a very large grid is a few MB
 
 
 @dataclass(frozen=True)
@@ -84,7 +86,7 @@ def load_board(path: str | Path, store: str | Path | None = None) -> Leaderboard
         raise UserError(
             "file not found", where=str(path), allowed="a leaderboard JSON file, a results store, or a recipe"
         )
-    head = path.read_bytes()[:16]
+    head = read_head(path, 16, "leaderboard file")  # a regular file: not a FIFO or /dev/zero
     if head.startswith(b"SQLite format 3"):
         with Store(path, create=False) as db:
             row = db.latest_recipe()
@@ -106,8 +108,8 @@ def load_board(path: str | Path, store: str | Path | None = None) -> Leaderboard
         with Store(db_path, create=False) as db:
             return replace(leaderboard(grid, db), source=str(path))
     try:
-        doc = json.loads(path.read_text())
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        doc = json.loads(read_bounded(path, MAX_BOARD_BYTES, "leaderboard file").decode())
+    except (UnicodeDecodeError, json.JSONDecodeError, RecursionError) as exc:
         raise UserError(
             f"not a leaderboard JSON file ({exc})",
             where=str(path),
@@ -121,7 +123,14 @@ def load_board(path: str | Path, store: str | Path | None = None) -> Leaderboard
         raise UserError(
             "unsupported leaderboard version", where=str(path), value=doc.get("version"), allowed=str(BOARD_VERSION)
         )
-    return Leaderboard.from_json(doc, source=str(path))
+    try:
+        return Leaderboard.from_json(doc, source=str(path))
+    except (KeyError, TypeError, ValueError, AttributeError) as exc:  # edited by hand, or cut short
+        raise UserError(
+            f"the leaderboard JSON is damaged ({type(exc).__name__}: {str(exc)[:100]})",
+            where=str(path),
+            hint="Export it again with: recipe board RECIPE --format json --out FILE",
+        ) from None
 
 
 def _verdict(old: Row, new: Row, goal: Goal) -> tuple[str, dict | None, str]:

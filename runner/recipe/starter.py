@@ -10,18 +10,22 @@ from pathlib import Path
 
 from runner.datasets.sources import MAX_CLASSES_AUTO
 from runner.errors import DataError
+from runner.files import read_head
 from runner.recipe.settings import BUNDLED
 
 __all__ = ["starter_recipe", "target_candidates"]
 
+SAMPLE_BYTES = 16 << 20  # what `recipe new` reads of a data file to guess its target
 _LIKELY = ("target", "label", "class", "y", "outcome", "species", "result")
 
 
 def _read_columns(path: Path) -> dict[str, list[str]]:
+    """The columns of the first lines of a CSV file (up to SAMPLE_BYTES: enough to guess)."""
+    data = read_head(path, SAMPLE_BYTES, "data file", DataError)
+    if len(data) == SAMPLE_BYTES:
+        data = data[: data.rfind(b"\n") + 1]  # whole lines only
     try:
-        text = path.read_text(encoding="utf-8-sig")
-    except FileNotFoundError:
-        raise DataError("data file not found", where=str(path)) from None
+        text = data.decode("utf-8-sig")
     except UnicodeDecodeError:
         raise DataError("data file is not UTF-8 text", where=str(path)) from None
     lines = [l for l in text.splitlines() if l.strip() and not l.lstrip().startswith("#")]

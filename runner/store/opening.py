@@ -89,16 +89,21 @@ def connect(path: Path, writable: bool, create: bool = True) -> sqlite3.Connecti
     not ``create``. Read-only: the file must exist; a store in a folder this process cannot
     write (SQLite cannot make its shared-memory file there) is read as an immutable file."""
     mode = ("rwc" if create else "rw") if writable else "ro"
-    conn = sqlite3.connect(_uri(path, mode), uri=True, timeout=30.0, isolation_level=None)
+    try:
+        conn = sqlite3.connect(_uri(path, mode), uri=True, timeout=30.0, isolation_level=None)
+    except sqlite3.Error as exc:
+        raise store_failure(exc, path, "opening it") from None
     try:
         conn.execute("SELECT count(*) FROM sqlite_master").fetchone()
-    except sqlite3.OperationalError as exc:
+        return conn
+    except sqlite3.Error as exc:
         conn.close()
         if writable or "unable to open" not in str(exc):
             raise store_failure(exc, path, "opening it") from None
+    try:
         conn = sqlite3.connect(_uri(path, "ro", immutable=True), uri=True, isolation_level=None)
+        conn.execute("SELECT count(*) FROM sqlite_master").fetchone()
     except sqlite3.Error as exc:
-        conn.close()
         raise store_failure(exc, path, "opening it") from None
     return conn
 
@@ -156,7 +161,7 @@ def remove_files(path: Path, folders: list[Path] = ()) -> None:
     """Delete a store file with its write-ahead log and shared-memory files, then those of
     ``folders`` (made for it) that are empty."""
     for name in (path, Path(f"{path}-wal"), Path(f"{path}-shm"), Path(f"{path}-journal")):
-        with contextlib.suppress(FileNotFoundError):
+        with contextlib.suppress(OSError):  # gone already, or never made (a read-only folder)
             os.remove(name)
     for folder in folders:
         with contextlib.suppress(OSError):
