@@ -1,6 +1,7 @@
 """grid: Cartesian product of levels times seeds, linked factors, exclusions, stable keys."""
 
 import shutil
+import sqlite3
 
 from conftest import DATA, invoke, write_recipe
 
@@ -92,3 +93,27 @@ def test_adding_a_level_reruns_only_the_new_configuration(tmp_path):
     assert "9 jobs, 6 done, 3 to run" in result.stderr
     again = invoke("run", path, "--store", store, "--workers", 1)
     assert "9 jobs, 9 done, 0 to run" in again.stderr
+
+
+def test_exclusion_of_a_list_valued_level_matches(tmp_path):
+    """An [[exclude]] rule on a list-valued factor ("model.hidden" = [4]) skips exactly the
+    configurations it names: nothing excluded is planned, run or stored."""
+    path = write_recipe(
+        tmp_path,
+        BASE
+        + """
+    [factors]
+    "model.hidden" = [[4], [8, 8]]
+    "train.optimizer" = ["sgd", "adam"]
+    [[exclude]]
+    "model.hidden" = [4]
+    "train.optimizer" = "sgd"
+    """,
+    )
+    check = invoke("check", path, "--no-probe")
+    assert check.exit_code == 0 and "3 configurations x 3 seeds = 9 jobs" in check.stdout
+    store = tmp_path / "s.sqlite"
+    assert invoke("run", path, "--store", store, "--workers", 1, "-q").exit_code == 0
+    with sqlite3.connect(store) as c:
+        levels = {r[0] for r in c.execute("SELECT levels FROM jobs")}
+    assert len(levels) == 3 and '{"model.hidden": "[4]", "train.optimizer": "sgd"}' not in levels

@@ -27,6 +27,10 @@ BAD = {
     "rank_on_test": ("rank_by", ["test score optimistic"]),
     "nesterov_no_momentum": ("train.momentum", ["nesterov needs momentum > 0", "train.optimizer = nesterov"]),
     "wrong_metric_task": ("rank_by", ["rmse is not a classification metric"]),
+    "seeds_float": ("seeds", ["must be a whole number", "got 1.0", "without a decimal point"]),
+    "deeply_nested": (None, ["deeply_nested.toml", "nested too deeply"]),
+    # the estimate (4 bytes x 6 copies of ~5e9 parameters) exceeds any machine this runs on
+    "huge_layer": ("model.hidden", ["GB of memory", "more than the", "got [1000000000]"]),
 }
 
 

@@ -17,18 +17,19 @@ from pathlib import Path
 from runner.errors import RecipeError
 from runner.recipe.settings import Settings
 
-__all__ = ["check_footprint", "job_bytes", "memory_limit"]
+__all__ = ["check_footprint", "job_bytes", "memory_limit", "model_size"]
 
 # Copies of every parameter a job holds at once: the weights, their gradients, two optimizer
-# moments (Adam), a momentum buffer or best-epoch copy, and one spare for the checkpoint or
-# the stacked path's step buffers.
-PARAM_COPIES = 6
+# moments (Adam), the whole-size temporaries of torch's multi-tensor optimizer step (two),
+# a best-epoch copy (early stopping) and one for a checkpoint being written.
+# tests/test_footprint.py holds a real job's peak memory under this estimate.
+PARAM_COPIES = 8
 # Per example of a mini-batch, each layer's output is kept with its activation, their
 # gradients and a dropout mask.
 ACTIVATION_COPIES = 4
 
 
-def _layers(settings: Settings, in_shape: tuple[int, ...], n_out: int) -> tuple[int, list[int]]:
+def model_size(settings: Settings, in_shape: tuple[int, ...], n_out: int) -> tuple[int, list[int]]:
     """(parameter count, each layer's output size per example) of the model, as built by
     training/models.py: conv layers with same padding and optional 2x2 pooling, then dense."""
     m = settings.model
@@ -56,7 +57,7 @@ def _layers(settings: Settings, in_shape: tuple[int, ...], n_out: int) -> tuple[
 def job_bytes(settings: Settings, rows: int, in_shape: tuple[int, ...], n_out: int) -> int:
     """Bytes one job holds at its peak: parameter copies, a mini-batch's activations, one
     evaluation pass over all ``rows`` (the largest layer at a time) and the data itself."""
-    params, sizes = _layers(settings, in_shape, n_out)
+    params, sizes = model_size(settings, in_shape, n_out)
     bs = settings.train.batch_size
     batch = rows if bs == "full" else min(int(bs), rows)
     features = math.prod(in_shape)
