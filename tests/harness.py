@@ -133,3 +133,26 @@ def fill(disk: Path, leave: int) -> Path:
     with open(filler, "wb") as f:
         f.write(b"\0" * max(0, free - leave))
     return filler
+
+
+def listening_ports(pids: list[int]) -> set[int]:
+    """TCP ports on which these processes listen (from /proc: their socket inodes matched
+    with the kernel's tables of listening sockets)."""
+    inodes = set()
+    for pid in pids:
+        try:
+            for fd in Path(f"/proc/{pid}/fd").iterdir():
+                with contextlib.suppress(OSError):
+                    target = os.readlink(fd)
+                    if target.startswith("socket:["):
+                        inodes.add(target[8:-1])
+        except OSError:
+            continue
+    ports = set()
+    for table in ("/proc/net/tcp", "/proc/net/tcp6"):
+        with contextlib.suppress(OSError), open(table) as f:
+            for line in f.readlines()[1:]:
+                fields = line.split()
+                if fields[3] == "0A" and fields[9] in inodes:  # 0A: LISTEN
+                    ports.add(int(fields[1].rsplit(":", 1)[1], 16))
+    return ports

@@ -114,3 +114,16 @@ def test_describe_counts_groups_and_single_jobs():
         == "training 2 stacked groups of 9-10 jobs, 2 jobs one at a time"
     )
     assert describe([Stacked("a")]) == "training 1 stacked group of 1 job"
+
+
+def test_on_option_is_checked_like_the_recipes_run_on(tmp_path):
+    """`--on` typos get the same rule and wording as `[run] on` in a recipe, as one line."""
+    path = write_recipe(tmp_path, RECIPE)
+    in_recipe = write_recipe(tmp_path, RECIPE + '\n[run]\non = "dask-locl"\n', "bad.toml")
+    rule = invoke("check", in_recipe, "--no-probe").stderr.split("allowed: ", 1)[1]
+    for typo in ("dask-locl", "foo", "dask://nohost", "local "):
+        result = invoke("run", path, "--on", typo, "--store", tmp_path / "s.sqlite")
+        assert result.exit_code == 2 and result.stderr.startswith("error: --on: ")
+        assert len(result.stderr.strip().splitlines()) == 1 and "Traceback" not in result.stderr
+        assert result.stderr.split("allowed: ", 1)[1].split(".")[0] == rule.split(".")[0]
+    assert not (tmp_path / "s.sqlite").exists()
