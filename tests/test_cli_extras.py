@@ -127,3 +127,25 @@ def test_on_option_is_checked_like_the_recipes_run_on(tmp_path):
         assert len(result.stderr.strip().splitlines()) == 1 and "Traceback" not in result.stderr
         assert result.stderr.split("allowed: ", 1)[1].split(".")[0] == rule.split(".")[0]
     assert not (tmp_path / "s.sqlite").exists()
+
+
+def test_option_errors_are_one_line_with_exit_2(tmp_path):
+    """click's own checks (ranges, choices, unknown options, a missing argument) answer in
+    the tool's one-line form; a non-finite time limit is refused like a negative one."""
+    path = write_recipe(tmp_path, RECIPE)
+    cases = {
+        ("--workers", "0"): "--workers",
+        ("--threads", "100000"): "--threads",
+        ("--time-limit", "nan"): "not a finite number",
+        ("--time-limit", "inf"): "not a finite number",
+        ("--format", "xml"): "--format",
+        ("--wrokers", "2"): "--workers",
+    }
+    for args, words in cases.items():
+        result = invoke("run", path, *args, "--store", tmp_path / "s.sqlite")
+        assert result.exit_code == 2 and result.stderr.startswith("error: "), result.output
+        assert len(result.stderr.strip().splitlines()) == 1 and words in result.stderr, result.stderr
+    missing = invoke("run")
+    assert missing.exit_code == 2 and missing.stderr.startswith("error: Missing argument 'RECIPE'")
+    assert invoke("--version").exit_code == 0 and invoke("run", "-h").exit_code == 0
+    assert not (tmp_path / "s.sqlite").exists()

@@ -104,6 +104,10 @@ def test_store_paths_that_are_not_files_are_refused(tmp_path):
     fifo = tmp_path / "pipe"
     os.mkfifo(fifo)
     one_line_error(invoke("status", path, "--store", fifo), "named pipe")
+    dangling = tmp_path / "link.sqlite"
+    dangling.symlink_to(tmp_path / "nowhere" / "x.sqlite")
+    one_line_error(invoke("run", path, "--store", dangling, "--workers", 1), "symbolic link", "does not exist")
+    assert dangling.is_symlink(), "the user's link is left as it was"
     text = tmp_path / "notes.txt"
     text.write_text("not a database\n" * 100)
     one_line_error(invoke("run", path, "--store", text, "--workers", 1), "not an SQLite database")

@@ -116,3 +116,12 @@ def test_exclusion_value_must_be_a_level(tmp_path):
     )
     with pytest.raises(UserError, match="never applies"):
         load_recipe(path)
+
+
+def test_a_byte_order_mark_is_not_part_of_the_recipe(tmp_path):
+    """Editors on some systems start UTF-8 files with a byte-order mark; the recipe reads the same."""
+    plain = write_recipe(tmp_path, 'name = "bom"\n[data]\nsource = "iris"\n', "plain.toml")
+    marked = tmp_path / "marked.toml"
+    marked.write_bytes(b"\xef\xbb\xbf" + plain.read_bytes())
+    assert load_recipe(marked).sections == load_recipe(plain).sections
+    assert invoke("check", marked, "--no-probe").exit_code == 0

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 import sys
 
 import click
@@ -16,13 +17,13 @@ from runner.errors import UserError
 @store_option
 @click.option(
     "--workers",
-    type=click.IntRange(1),
+    type=click.IntRange(1, 4096),
     default=None,
     help="Worker processes (default: the number of cores; 1 runs in this process).",
 )
 @click.option(
     "--threads",
-    type=click.IntRange(1),
+    type=click.IntRange(1, 256),
     default=1,
     show_default=True,
     help="Torch threads per worker; results are bitwise-reproducible for a fixed value.",
@@ -45,6 +46,7 @@ from runner.errors import UserError
 @click.option(
     "--time-limit",
     type=click.FloatRange(0, min_open=True),
+    callback=lambda ctx, param, value: _finite(value),
     default=None,
     help="Seconds one job may train before it is stopped as timed out.",
 )
@@ -227,6 +229,12 @@ def _read_only_run(db, grid, fresh: bool, retry_failed: bool, quiet: bool, fmt) 
     if not quiet:
         click.echo(todo.describe() + " (the store is read-only)", err=True)
     click.echo(render(leaderboard(grid, db), fmt or "table"), nl=False)
+
+
+def _finite(seconds: float | None) -> float | None:
+    if seconds is not None and not math.isfinite(seconds):
+        raise click.BadParameter(f"{seconds} is not a finite number of seconds")
+    return seconds
 
 
 def _report_tracking(errors, uri, recipe_path, quiet: bool) -> None:

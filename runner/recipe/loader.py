@@ -164,7 +164,7 @@ def load_recipe(path: str | Path) -> Recipe:
     path = Path(path)
     data = read_bounded(path, MAX_RECIPE_BYTES, "recipe file", RecipeError)
     try:
-        text = data.decode("utf-8")
+        text = data.decode("utf-8-sig")  # an editor's byte-order mark is not part of the recipe
     except UnicodeDecodeError:
         raise RecipeError("recipe is not UTF-8 text", where=str(path)) from None
     return parse_recipe(text, path)

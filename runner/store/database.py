@@ -106,7 +106,7 @@ class Store:
                 where=str(self.path),
                 hint="Run the recipe first with 'recipe run', or pass --store PATH",
             )
-        self.created = not self.path.exists()
+        self.created = not os.path.lexists(self.path)
         self.made = make_folder(self.path) if self.writable and create else []
         try:
             self.conn = connect(self.path, self.writable)
@@ -182,7 +182,12 @@ class Store:
         (a command that failed before its first result leaves no empty store behind)."""
         if not self.created or not self.same_file():
             return False
+        from runner.store.lock import RunnerLock
+
         try:
+            other = RunnerLock.holder(self)
+            if other is not None and self.lock is None:
+                return False  # another run came in meanwhile and holds it: it is theirs now
             used = any(self.conn.execute(f"SELECT 1 FROM {table} LIMIT 1").fetchone() for table in ("jobs", "exports"))
         except sqlite3.Error:
             return False
@@ -302,7 +307,7 @@ class Store:
                 continue
             try:
                 out.append(self._job(r))
-            except (ValueError, TypeError):  # json and Status both raise ValueError subclasses
+            except (ValueError, TypeError, RecursionError):  # json and Status raise ValueError subclasses
                 raise StoreError(
                     "a stored job's record is damaged",
                     where=str(self.path),

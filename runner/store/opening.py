@@ -47,6 +47,12 @@ def check_location(path: Path) -> None:
         info = None
     except OSError as exc:
         raise StoreError(f"cannot use this path as a store ({exc.strerror})", where=str(path)) from None
+    if info is None and os.path.islink(path) and not path.resolve().parent.is_dir():
+        raise StoreError(
+            f"the store path is a symbolic link into a folder that does not exist ({os.readlink(path)})",
+            where=str(path),
+            hint="Fix or remove the link, or give --store another path",
+        )
     if info is not None:
         kind = describe_kind(info.st_mode)
         if kind is not None:
