@@ -86,6 +86,9 @@ def run(
 ):
     """Train every job of RECIPE that has no stored result, then print the leaderboard."""
     stop_on_signals()
+    # A runner killed outright leaves its semaphores to multiprocessing's resource tracker,
+    # which removes them and would print a warning about it on the user's terminal.
+    sys.warnoptions.append("ignore::UserWarning:multiprocessing.resource_tracker")
     try:
         _run(
             recipe_path,
