@@ -109,3 +109,19 @@ def test_a_checkpoint_that_does_not_fit_means_starting_from_scratch(tmp_path):
         if state is not None:
             assert "did not fit the model" in d1 and "trained from scratch" in d1, (what, d1)
         assert not target.exists(), "the unusable checkpoint is removed"
+
+
+def test_a_checkpoint_that_cannot_be_written_is_skipped_with_a_note(tmp_path):
+    """A file where the checkpoint folder should be (the write fails with ENOTDIR, as it would
+    with ENOSPC on a full disk): the job goes on without checkpoints, to the same numbers."""
+    path = write_recipe(tmp_path, RECIPE)
+    clean, blocked = tmp_path / "c.sqlite", tmp_path / "b.sqlite"
+    (tmp_path / "b.checkpoints").write_text("in the way")
+    assert invoke("run", path, "--store", clean, "--workers", 1, "-q").exit_code == 0
+    result = invoke("run", path, "--store", blocked, "--workers", 1, "-q")
+    assert result.exit_code == 0, result.stderr
+    m1, k1, d1 = stored(blocked)
+    m2, k2, _ = stored(clean)
+    assert (m1, k1) == (m2, k2)
+    assert d1.count("a checkpoint could not be saved") == 1 and "went on without it" in d1
+    assert (tmp_path / "b.checkpoints").read_text() == "in the way"

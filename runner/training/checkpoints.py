@@ -46,5 +46,5 @@ def load(path: str) -> dict | None:
 
 def remove(path: str | None) -> None:
     if path:
-        with contextlib.suppress(FileNotFoundError):
+        with contextlib.suppress(OSError):  # gone, or never written (its folder could not be made)
             os.remove(path)
