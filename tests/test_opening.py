@@ -200,6 +200,9 @@ def test_a_read_only_store_serves_reading_and_refuses_training(tmp_path):
         store = ro / "s.sqlite"
         board = invoke("board", path, "--store", store)
         assert board.exit_code == 0 and "sgd" in board.stdout
+        assert "4 done" in invoke("status", path, "--store", store).stdout
+        assert invoke("check", path, "--store", store, "--no-probe").exit_code == 0
+        assert invoke("report", path, "--store", store, "--out", tmp_path / "r.html").exit_code == 0
         assert invoke("run", path, "--store", store, "--workers", 1, "-q").exit_code == 0, "nothing to train"
         more = recipe(tmp_path, epochs=4, name="more.toml")
         one_line_error(invoke("run", more, "--store", store, "--workers", 1), "read-only", "4 jobs to run")
