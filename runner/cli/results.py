@@ -131,7 +131,10 @@ def export_mlflow(recipe_path, store, uri):
         from runner.store.database import Store
 
         # it writes to the store (what reached which URI): one writer at a time, as for a run
-        with Store(store_path(recipe, store), create=False, writable=True) as db, RunnerLock(db):
+        with (
+            Store(store_path(recipe, store), create=False, writable=True) as db,
+            RunnerLock(db, "recipe export-mlflow"),
+        ):
             sent, before, errors = export_all(uri, grid, db)
     except UserError as err:
         fail(err)

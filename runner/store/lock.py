@@ -72,14 +72,20 @@ class RunnerLock:
     command can take the lock before it plans and the executor's own lock is a no-op.
     """
 
-    def __init__(self, store: Store):
+    def __init__(self, store: Store, command: str = "recipe run"):
         self.path = store.path
         self.store = store
         self.nested = False
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
         pid = os.getpid()
-        self.me = {"pid": pid, "host": socket.gethostname(), "started": time.time(), "start": process_start(pid)}
+        self.me = {
+            "pid": pid,
+            "host": socket.gethostname(),
+            "started": time.time(),
+            "start": process_start(pid),
+            "command": command,  # named to whoever is refused
+        }
 
     @staticmethod
     def holder(store: Store) -> dict | None:
@@ -104,7 +110,8 @@ class RunnerLock:
             other = self.holder(self.store)
             if other is not None and other.get("pid") != os.getpid():
                 raise StoreError(
-                    f"another 'recipe run' (pid {other['pid']} on {other['host']}) is using this store",
+                    f"another {other.get('command', 'recipe run')} (pid {other['pid']} on {other['host']}) "
+                    "is using this store",
                     where=str(self.path),
                     hint="Wait for it to finish, or give this run its own --store; a killed run's lock "
                     f"is recovered automatically (at once on the same host, else after {STALE_AFTER:g} s)",
