@@ -125,3 +125,13 @@ def test_a_byte_order_mark_is_not_part_of_the_recipe(tmp_path):
     marked.write_bytes(b"\xef\xbb\xbf" + plain.read_bytes())
     assert load_recipe(marked).sections == load_recipe(plain).sections
     assert invoke("check", marked, "--no-probe").exit_code == 0
+
+
+def test_a_huge_value_is_shown_cut_short(tmp_path):
+    """An error shows enough of a value to recognise it and says how long it was; a 500 kB
+    string does not fill the terminal."""
+    path = tmp_path / "long.toml"
+    path.write_text('name = "x"\n[data]\nsource = "iris"\n[train]\nlr = "' + "x" * 500_000 + '"\n')
+    result = invoke("check", path)
+    assert result.exit_code == 2 and "train.lr" in result.stderr and "(500,002 characters)" in result.stderr
+    assert len(result.stderr) < 400 and len(result.stderr.strip().splitlines()) == 1
