@@ -79,9 +79,17 @@ class StoreError(UserError):
     """The results store cannot be used as asked."""
 
 
+SHOWN = 200  # characters of a value an error shows: enough to recognise it, never a screenful
+
+
 def _show(value: object) -> str:
     if isinstance(value, str):
-        return f'"{value}"'
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    return repr(value)
+        text = f'"{value}"'
+    elif isinstance(value, bool):
+        text = "true" if value else "false"
+    else:
+        try:
+            text = repr(value)
+        except RecursionError:
+            text = f"a deeply nested {type(value).__name__}"
+    return text if len(text) <= SHOWN else f"{text[: SHOWN - 30]}... ({len(text):,} characters)"

@@ -15,6 +15,7 @@ from runner.outputs.text import render, render_ablation
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
 from runner.store.database import Store
+from runner.store.lock import RunnerLock
 from runner.training.job import JobResult
 
 # (optimizer, l2) -> val accuracy for seeds 1, 2, 3 (invented values)
@@ -44,6 +45,12 @@ RECIPE = """
 def known_store(tmp_path):
     grid = expand(load_recipe(write_recipe(tmp_path, RECIPE)))
     store = Store(tmp_path / "known.sqlite")
+    with RunnerLock(store):  # results are written only under the runner lock
+        _fill(grid, store)
+    return grid, store
+
+
+def _fill(grid, store):
     for job in grid:
         a = job.config.assignments
         v = VALUES[(a["train.optimizer"], a["train.l2"])][grid.recipe.seeds.index(job.seed)]
@@ -56,7 +63,6 @@ def known_store(tmp_path):
             epochs_run=2,
         )
         store.write_result(job, grid.labels(job.config), grid.recipe.hash, result)
-    return grid, store
 
 
 def mean(xs):
@@ -99,8 +105,9 @@ def test_a_diverged_configuration_is_left_out_of_the_main_effects(tmp_path):
     grid, store = known_store(tmp_path)
     job = next(j for j in grid if j.config.assignments["train.optimizer"] == "adam"
                and j.config.assignments["train.l2"] == 0.001 and j.seed == 2)  # fmt: skip
-    store.write_result(job, grid.labels(job.config), grid.recipe.hash,
-                       JobResult(key=job.key, status="diverged", error="loss nan", epochs_run=1))  # fmt: skip
+    with RunnerLock(store):
+        store.write_result(job, grid.labels(job.config), grid.recipe.hash,
+                           JobResult(key=job.key, status="diverged", error="loss nan", epochs_run=1))  # fmt: skip
     ab = ablation(grid, store).to_json()
     opt, l2 = ab["main_effects"]
     assert (opt["contexts_used"], opt["contexts_total"]) == (1, 2) and "1 of 2 contexts" in opt["note"]

@@ -116,3 +116,38 @@ def test_describe_counts_groups_and_single_jobs():
         == "training 2 stacked groups of 9-10 jobs, 2 jobs one at a time"
     )
     assert describe([Stacked("a")]) == "training 1 stacked group of 1 job"
+
+
+def test_on_option_is_checked_like_the_recipes_run_on(tmp_path):
+    """`--on` typos get the same rule and wording as `[run] on` in a recipe, as one line."""
+    path = write_recipe(tmp_path, RECIPE)
+    in_recipe = write_recipe(tmp_path, RECIPE + '\n[run]\non = "dask-locl"\n', "bad.toml")
+    rule = invoke("check", in_recipe, "--no-probe").stderr.split("allowed: ", 1)[1]
+    for typo in ("dask-locl", "foo", "dask://nohost", "local "):
+        result = invoke("run", path, "--on", typo, "--store", tmp_path / "s.sqlite")
+        assert result.exit_code == 2 and result.stderr.startswith("error: --on: ")
+        assert len(result.stderr.strip().splitlines()) == 1 and "Traceback" not in result.stderr
+        assert result.stderr.split("allowed: ", 1)[1].split(".")[0] == rule.split(".")[0]
+    assert not (tmp_path / "s.sqlite").exists()
+
+
+def test_option_errors_are_one_line_with_exit_2(tmp_path):
+    """click's own checks (ranges, choices, unknown options, a missing argument) answer in
+    the tool's one-line form; a non-finite time limit is refused like a negative one."""
+    path = write_recipe(tmp_path, RECIPE)
+    cases = {
+        ("--workers", "0"): "--workers",
+        ("--threads", "100000"): "--threads",
+        ("--time-limit", "nan"): "not a finite number",
+        ("--time-limit", "inf"): "not a finite number",
+        ("--format", "xml"): "--format",
+        ("--wrokers", "2"): "--workers",
+    }
+    for args, words in cases.items():
+        result = invoke("run", path, *args, "--store", tmp_path / "s.sqlite")
+        assert result.exit_code == 2 and result.stderr.startswith("error: "), result.output
+        assert len(result.stderr.strip().splitlines()) == 1 and words in result.stderr, result.stderr
+    missing = invoke("run")
+    assert missing.exit_code == 2 and missing.stderr.startswith("error: Missing argument 'RECIPE'")
+    assert invoke("--version").exit_code == 0 and invoke("run", "-h").exit_code == 0
+    assert not (tmp_path / "s.sqlite").exists()

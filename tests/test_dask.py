@@ -89,3 +89,34 @@ def test_run_table_in_the_recipe_selects_dask_local(tmp_path):
     bad = write_recipe(tmp_path, RECIPE + '\n[run]\non = "cluster"\n', "bad.toml")
     refused = invoke("run", bad, "--store", tmp_path / "b.sqlite")
     assert refused.exit_code == 2 and "run.on" in refused.stderr and "dask://HOST:PORT" in refused.stderr
+
+
+@pytest.mark.slow
+def test_dask_local_opens_no_dashboard(tmp_path):
+    """While a `--on dask-local` run trains, none of its processes listens on Dask's dashboard
+    port 8787, and no port they listen on serves a dashboard or status page."""
+    import http.client
+    import urllib.error
+    import urllib.request
+
+    from harness import kill_session, listening_ports, query, session_pids, start_run, wait_for
+
+    path = write_recipe(tmp_path, RECIPE.replace("epochs = 30", "epochs = 100000"))
+    store = tmp_path / "s.sqlite"
+    proc = start_run([path, "--store", store, "--on", "dask-local", "--workers", 1, "-q"])
+    try:
+        assert wait_for(lambda: query(store, "SELECT key FROM running"), 300), "the run should start"
+        ports = listening_ports(session_pids(proc.pid))
+        assert ports, "the scheduler listens somewhere"
+        assert 8787 not in ports
+        for port in ports:
+            for page in ("/status", "/info/main/workers.html", "/json/identity.json"):
+                try:
+                    code = urllib.request.urlopen(f"http://127.0.0.1:{port}{page}", timeout=5).status
+                except urllib.error.HTTPError as exc:
+                    code = exc.code
+                except (OSError, ValueError, http.client.HTTPException):
+                    code = None  # not an HTTP server (Dask's own protocol)
+                assert code != 200, (port, page)
+    finally:
+        kill_session(proc)

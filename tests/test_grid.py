@@ -1,6 +1,7 @@
 """grid: Cartesian product of levels times seeds, linked factors, exclusions, stable keys."""
 
 import shutil
+import sqlite3
 
 from conftest import DATA, invoke, write_recipe
 
@@ -112,3 +113,27 @@ def test_rank_by_is_part_of_a_job_only_when_early_stopping_watches_it(tmp_path):
 
     assert keys("val.accuracy", 0) == keys("val.log_loss", 0)
     assert keys("val.accuracy", 3) != keys("val.log_loss", 3)
+
+
+def test_exclusion_of_a_list_valued_level_matches(tmp_path):
+    """An [[exclude]] rule on a list-valued factor ("model.hidden" = [4]) skips exactly the
+    configurations it names: nothing excluded is planned, run or stored."""
+    path = write_recipe(
+        tmp_path,
+        BASE
+        + """
+    [factors]
+    "model.hidden" = [[4], [8, 8]]
+    "train.optimizer" = ["sgd", "adam"]
+    [[exclude]]
+    "model.hidden" = [4]
+    "train.optimizer" = "sgd"
+    """,
+    )
+    check = invoke("check", path, "--no-probe")
+    assert check.exit_code == 0 and "3 configurations x 3 seeds = 9 jobs" in check.stdout
+    store = tmp_path / "s.sqlite"
+    assert invoke("run", path, "--store", store, "--workers", 1, "-q").exit_code == 0
+    with sqlite3.connect(store) as c:
+        levels = {r[0] for r in c.execute("SELECT levels FROM jobs")}
+    assert len(levels) == 3 and '{"model.hidden": "[4]", "train.optimizer": "sgd"}' not in levels

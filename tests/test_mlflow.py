@@ -151,3 +151,37 @@ def test_interrupted_run_leaves_its_parent_killed_and_a_resumed_one_finished(tmp
     runs = client.search_runs([exp.experiment_id])
     assert client.get_run(parent.info.run_id).info.status == "FINISHED"
     assert sum(r.data.tags.get("recipe.kind") == "job" for r in runs) == 8
+
+
+def test_an_unreachable_tracking_server_is_tried_once(tmp_path):
+    """A server that accepts and hangs up at once (as a dead proxy does): the tracking check
+    makes one connection and refuses the URI, instead of MLflow's minutes of retries; the run
+    trains nothing and leaves no store."""
+    import socket
+    import threading
+
+    server = socket.socket()
+    server.bind(("127.0.0.1", 0))
+    server.listen(16)
+    accepted = []
+
+    def serve():
+        while True:
+            try:
+                conn, _ = server.accept()
+            except OSError:
+                return
+            accepted.append(1)
+            conn.close()
+
+    threading.Thread(target=serve, daemon=True).start()
+    try:
+        path = write_recipe(tmp_path, RECIPE)
+        uri = f"http://127.0.0.1:{server.getsockname()[1]}"
+        result = invoke("run", path, "--workers", 1, "--mlflow", uri)
+    finally:
+        server.close()
+    assert result.exit_code == 2 and "cannot use this MLflow tracking URI" in result.stderr
+    assert "Traceback" not in result.stderr and "jobs," not in result.stderr
+    assert len(accepted) == 1
+    assert not (tmp_path / "runs").exists()

@@ -27,6 +27,10 @@ BAD = {
     "rank_on_test": ("rank_by", ["test score optimistic"]),
     "nesterov_no_momentum": ("train.momentum", ["nesterov needs momentum > 0", "train.optimizer = nesterov"]),
     "wrong_metric_task": ("rank_by", ["rmse is not a classification metric"]),
+    "seeds_float": ("seeds", ["must be a whole number", "got 1.0", "without a decimal point"]),
+    "deeply_nested": (None, ["deeply_nested.toml", "nested too deeply"]),
+    # the estimate (4 bytes x 6 copies of ~5e9 parameters) exceeds any machine this runs on
+    "huge_layer": ("model.hidden", ["GB of memory", "more than the", "got [1000000000]"]),
 }
 
 
@@ -113,3 +117,22 @@ def test_exclusion_value_must_be_a_level(tmp_path):
     )
     with pytest.raises(UserError, match="never applies"):
         load_recipe(path)
+
+
+def test_a_byte_order_mark_is_not_part_of_the_recipe(tmp_path):
+    """Editors on some systems start UTF-8 files with a byte-order mark; the recipe reads the same."""
+    plain = write_recipe(tmp_path, 'name = "bom"\n[data]\nsource = "iris"\n', "plain.toml")
+    marked = tmp_path / "marked.toml"
+    marked.write_bytes(b"\xef\xbb\xbf" + plain.read_bytes())
+    assert load_recipe(marked).sections == load_recipe(plain).sections
+    assert invoke("check", marked, "--no-probe").exit_code == 0
+
+
+def test_a_huge_value_is_shown_cut_short(tmp_path):
+    """An error shows enough of a value to recognise it and says how long it was; a 500 kB
+    string does not fill the terminal."""
+    path = tmp_path / "long.toml"
+    path.write_text('name = "x"\n[data]\nsource = "iris"\n[train]\nlr = "' + "x" * 500_000 + '"\n')
+    result = invoke("check", path)
+    assert result.exit_code == 2 and "train.lr" in result.stderr and "(500,002 characters)" in result.stderr
+    assert len(result.stderr) < 400 and len(result.stderr.strip().splitlines()) == 1

@@ -8,6 +8,7 @@ import click
 
 from runner.cli.common import fail, load_grid, store_option, store_path
 from runner.errors import UserError
+from runner.files import write_output
 
 
 @click.command()
@@ -54,7 +55,7 @@ def schema():
 @click.argument("source")
 @click.option(
     "--out",
-    type=click.Path(dir_okay=False),
+    type=click.Path(),
     default=None,
     help="Recipe file to write (default: <data name>.toml here).",
 )
@@ -72,7 +73,7 @@ def new(source, out, target, force):
             raise UserError("file exists", where=str(target_path), hint="Choose another --out or pass --force")
         text = starter_recipe(source, target_path, target)
         expand(parse_recipe(text, target_path.resolve()))  # never write a starter that does not validate
+        write_output(target_path, text)
     except UserError as err:
         fail(err)
-    target_path.write_text(text)
     click.echo(f"wrote {target_path}; next: recipe check {target_path}")

@@ -10,7 +10,7 @@ import click
 
 from runner.errors import UserError
 
-__all__ = ["fail", "format_option", "load_grid", "store_option", "store_path"]
+__all__ = ["checked_on", "fail", "format_option", "load_grid", "store_option", "store_path"]
 
 
 def fail(err: UserError) -> None:
@@ -20,6 +20,19 @@ def fail(err: UserError) -> None:
 
 def store_path(recipe, store: str | None) -> Path:
     return Path(store) if store else recipe.base_dir / "runs" / f"{recipe.name}.sqlite"
+
+
+def checked_on(on: str | None) -> str | None:
+    """``--on`` checked by the same rule as the recipe's ``[run] on``."""
+    if on is None:
+        return None
+    from runner.recipe.constraints import Invalid
+    from runner.recipe.loader import RUN
+
+    try:
+        return RUN["on"].constraint.check(on)
+    except Invalid as bad:
+        raise UserError(bad.problem, key="--on", value=on, allowed=bad.allowed, hint=bad.hint) from None
 
 
 def load_grid(recipe_path: str):
@@ -36,7 +49,7 @@ def load_grid(recipe_path: str):
 store_option = click.option(
     "--store",
     "store",
-    type=click.Path(dir_okay=False),
+    type=click.Path(),
     help="Results database (default: runs/<name>.sqlite beside the recipe).",
 )
 format_option = click.option(

@@ -9,6 +9,7 @@ import click
 
 from runner.cli.common import fail, format_option, load_grid, store_option, store_path
 from runner.errors import UserError
+from runner.files import write_output
 from runner.recipe.loader import check_rank_by
 
 
@@ -16,7 +17,7 @@ from runner.recipe.loader import check_rank_by
 @click.argument("recipe_path", metavar="RECIPE", type=click.Path())
 @store_option
 @format_option
-@click.option("--out", type=click.Path(dir_okay=False), help="Write to this file instead of stdout.")
+@click.option("--out", type=click.Path(), help="Write to this file instead of stdout.")
 @click.option(
     "--ablation",
     is_flag=True,
@@ -50,11 +51,11 @@ def board(recipe_path, store, fmt, out, ablation, rank_by, margin):
         text = render(doc, fmt)
         if ablation and fmt in ("table", "markdown"):
             text += render_ablation(doc.ablation, markdown=fmt == "markdown")
+        if out:
+            write_output(out, text)
     except UserError as err:
         fail(err)
-    if out:
-        Path(out).write_text(text)
-    else:
+    if not out:
         click.echo(text, nl=False)
 
 
@@ -124,7 +125,7 @@ def diff(old, new, fmt, fail_on_worse, min_change, alpha):
 @store_option
 @click.option(
     "--out",
-    type=click.Path(dir_okay=False),
+    type=click.Path(),
     default=None,
     help="HTML file to write (default: <name>-report.html beside the store).",
 )
@@ -138,10 +139,10 @@ def report(recipe_path, store, out):
         path = store_path(recipe, store)
         with Store(path, create=False) as db:
             text = build_report(grid, db)
+        target = Path(out) if out else path.with_name(f"{recipe.name}-report.html")
+        write_output(target, text)
     except UserError as err:
         fail(err)
-    target = Path(out) if out else path.with_name(f"{recipe.name}-report.html")
-    target.write_text(text, encoding="utf-8")
     click.echo(f"wrote {target}")
 
 
@@ -154,9 +155,14 @@ def export_mlflow(recipe_path, store, uri):
     try:
         recipe, grid = load_grid(recipe_path)
         from runner.outputs.mlflow_export import export_all
+        from runner.store import RunnerLock
         from runner.store.database import Store
 
-        with Store(store_path(recipe, store), create=False) as db:
+        # it writes to the store (what reached which URI): one writer at a time, as for a run
+        with (
+            Store(store_path(recipe, store), create=False, writable=True) as db,
+            RunnerLock(db, "recipe export-mlflow"),
+        ):
             sent, before, errors = export_all(uri, grid, db)
     except UserError as err:
         fail(err)

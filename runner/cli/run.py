@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import math
 import sys
 
 import click
 
-from runner.cli.common import fail, format_option, store_option, store_path
+from runner.cli.common import checked_on, fail, format_option, store_option, store_path
+from runner.cli.stops import exit_status, stop_on_signals
 from runner.errors import UserError
 
 
@@ -15,13 +17,13 @@ from runner.errors import UserError
 @store_option
 @click.option(
     "--workers",
-    type=click.IntRange(1),
+    type=click.IntRange(1, 4096),
     default=None,
     help="Worker processes (default: the number of cores; 1 runs in this process).",
 )
 @click.option(
     "--threads",
-    type=click.IntRange(1),
+    type=click.IntRange(1, 256),
     default=1,
     show_default=True,
     help="Torch threads per worker; results are bitwise-reproducible for a fixed value.",
@@ -44,6 +46,7 @@ from runner.errors import UserError
 @click.option(
     "--time-limit",
     type=click.FloatRange(0, min_open=True),
+    callback=lambda ctx, param, value: _finite(value),
     default=None,
     help="Seconds one job may train before it is stopped as timed out.",
 )
@@ -82,6 +85,10 @@ def run(
     fmt,
 ):
     """Train every job of RECIPE that has no stored result, then print the leaderboard."""
+    stop_on_signals()
+    # A runner killed outright leaves its semaphores to multiprocessing's resource tracker,
+    # which removes them and would print a warning about it on the user's terminal.
+    sys.warnoptions.append("ignore::UserWarning:multiprocessing.resource_tracker")
     try:
         _run(
             recipe_path,
@@ -100,9 +107,9 @@ def run(
             verbose,
             fmt,
         )
-    except KeyboardInterrupt:  # before training started, or after every result was stored
+    except KeyboardInterrupt as exc:  # before training started, or after every result was stored
         click.echo("\nInterrupted; every finished job is in the store. Run the same command again to go on.", err=True)
-        sys.exit(130)
+        sys.exit(exit_status(exc))
 
 
 def _run(
@@ -127,6 +134,7 @@ def _run(
 
     try:
         recipe = load_recipe(recipe_path)  # no torch needed to validate it
+        on = checked_on(on)
     except UserError as err:
         fail(err)
     if wants_workers(workers, on, recipe.run):
@@ -139,51 +147,112 @@ def _run(
     from runner.outputs.mlflow_export import RunLogger
     from runner.outputs.text import render
     from runner.recipe.grid import expand
-    from runner.store.database import Store
 
+    db = lock = None
     try:
         grid = expand(recipe)
         check_grid_splits(grid)  # every split the jobs will make, before any job trains
         where = on or recipe.run.on
         workers = workers or recipe.run.workers or default_workers()
-        with Store(store_path(recipe, store)) as db:
-            if fresh:
-                _confirm_fresh(db, grid, yes)
-            todo = plan(grid, db, retry_failed)
-            if not quiet:
-                click.echo(todo.summary_line(), err=True)
-            progress = Progress(
-                len(todo.to_run), grid.rank_by, grid.goal, quiet=quiet, live=False if verbose else None, verbose=verbose
+        # the lock is held from before --fresh deletes anything and before the plan is shown
+        db, lock = _open_for_run(store_path(recipe, store))
+        if lock is None:
+            _read_only_run(db, grid, fresh, retry_failed, quiet, fmt)
+            return
+        executor = make_executor(where, workers, threads, max_attempts, time_limit)
+        tracker = RunLogger(mlflow_uri or recipe.tracking.mlflow, grid, db)
+        if fresh:
+            _confirm_fresh(db, grid, yes)
+        todo = plan(grid, db, retry_failed)
+        if not quiet:
+            click.echo(todo.summary_line(), err=True)
+        progress = Progress(
+            len(todo.to_run), grid.rank_by, grid.goal, quiet=quiet, live=False if verbose else None, verbose=verbose
+        )
+        try:
+            execute(
+                grid,
+                db,
+                todo.to_run,
+                executor,
+                progress,
+                time_limit,
+                on_stored=tracker.stored,
+                stack=not no_stack,
+                keep_weights=recipe.run.keep_weights != "none",
             )
-            executor = make_executor(where, workers, threads, max_attempts, time_limit)
-            tracker = RunLogger(mlflow_uri or recipe.tracking.mlflow, grid, db)
-            try:
-                execute(
-                    grid,
-                    db,
-                    todo.to_run,
-                    executor,
-                    progress,
-                    time_limit,
-                    on_stored=tracker.stored,
-                    stack=not no_stack,
-                    keep_weights=recipe.run.keep_weights != "none",
-                )
-                _report_tracking(tracker.finish(), tracker.uri, recipe_path, quiet)
-            except KeyboardInterrupt:
-                tracker.interrupted()
-                done = len(db.finished_keys() & {j.key for j in grid})
-                click.echo(
-                    f"\nInterrupted: {done} of {todo.total} jobs are stored. Run the same "
-                    f"command again to resume; finished jobs are not repeated.",
-                    err=True,
-                )
-                sys.exit(130)
-            doc = leaderboard(grid, db)
-            _retain(grid, db, doc, recipe.run.keep_weights, quiet)
-            click.echo(render(doc, fmt or "table"), nl=False)
+            _report_tracking(tracker.finish(), tracker.uri, recipe_path, quiet)
+        except KeyboardInterrupt as exc:
+            tracker.interrupted()
+            done = len(db.finished_keys() & {j.key for j in grid})
+            click.echo(
+                f"\nInterrupted: {done} of {todo.total} jobs are stored. Run the same "
+                f"command again to resume; finished jobs are not repeated.",
+                err=True,
+            )
+            sys.exit(exit_status(exc))
+        doc = leaderboard(grid, db)
+        _retain(grid, db, doc, recipe.run.keep_weights, quiet)
+        click.echo(render(doc, fmt or "table"), nl=False)
     except UserError as err:
+        if db is not None:
+            db.remove_if_unused()  # a run refused before its first result leaves no empty store
         fail(err)
+    finally:
+        if lock is not None:
+            lock.release()
+        if db is not None:
+            db.close()
+
+
+def _open_for_run(path):
+    """(the store, its runner lock, already held): taken before anything is planned, printed
+    or deleted. (a read-only Store, None) when the store exists but cannot be written."""
+    from runner.store import RunnerLock, Store, StoreReadOnly
+
+    try:
+        db = Store(path)
+    except StoreReadOnly:
+        if not path.exists():
+            raise
+        return Store(path, create=False), None
+    lock = RunnerLock(db)
+    try:
+        lock.acquire()
+    except StoreReadOnly:
+        db.close()
+        return Store(path, create=False), None
+    except BaseException:
+        if not db.remove_if_unused():
+            db.close()
+        raise
+    return db, lock
+
+
+def _read_only_run(db, grid, fresh: bool, retry_failed: bool, quiet: bool, fmt) -> None:
+    """A store that cannot be written serves a run that has nothing to train: the board."""
+    from runner.evidence.leaderboard import leaderboard
+    from runner.execution.planning import plan
+    from runner.outputs.text import render
+    from runner.store import StoreReadOnly
+
+    todo = plan(grid, db, retry_failed)
+    if fresh or todo.to_run:
+        raise StoreReadOnly(
+            "the store cannot be written: its file, folder or disk is read-only",
+            where=str(db.path),
+            value=f"{len(todo.to_run)} jobs to run" if not fresh else "--fresh",
+            hint="Make it writable, or give this run another --store",
+        )
+    if not quiet:
+        click.echo(todo.summary_line() + " (the store is read-only)", err=True)
+    click.echo(render(leaderboard(grid, db), fmt or "table"), nl=False)
+
+
+def _finite(seconds: float | None) -> float | None:
+    if seconds is not None and not math.isfinite(seconds):
+        raise click.BadParameter(f"{seconds} is not a finite number of seconds")
+    return seconds
 
 
 def _retain(grid, db, doc, keep: str, quiet: bool) -> None:

@@ -14,13 +14,13 @@ import stat
 from pathlib import Path
 
 from runner.errors import DataError
+from runner.files import describe_kind
 
-__all__ = ["MAX_DATA_BYTES", "MAX_RECIPE_BYTES", "describe_kind", "read_limited", "show_bytes"]
+__all__ = ["MAX_DATA_BYTES", "read_limited", "show_bytes"]
 
 # The whole dataset is held in memory and sent to every worker: a bound far above the
 # tool's intended sizes (small tabular and image sets) that still fails fast on a mistake.
 MAX_DATA_BYTES = 2 * 2**30
-MAX_RECIPE_BYTES = 2**20  # a recipe is a short text file
 
 
 def show_bytes(n: int) -> str:
@@ -30,21 +30,6 @@ def show_bytes(n: int) -> str:
             value = n / size
             return f"{value:.0f} {unit}" if value == int(value) else f"{value:.1f} {unit}"
     return f"{n} bytes"
-
-
-def describe_kind(mode: int) -> str:
-    """What a non-regular file is, in words."""
-    if stat.S_ISDIR(mode):
-        return "a directory"
-    if stat.S_ISFIFO(mode):
-        return "a FIFO (named pipe)"
-    if stat.S_ISCHR(mode):
-        return "a character device"
-    if stat.S_ISBLK(mode):
-        return "a block device"
-    if stat.S_ISSOCK(mode):
-        return "a socket"
-    return "not a regular file"
 
 
 def read_limited(path: Path, limit: int, *, key: str | None, shown: str, error=DataError) -> bytes:

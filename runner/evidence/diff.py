@@ -27,6 +27,7 @@ from runner.evidence.document import FORMAT as BOARD
 from runner.evidence.document import Leaderboard, Row
 from runner.evidence.gate import compare_runs, pairing
 from runner.evidence.protocols import FIXED, Resampling
+from runner.files import read_bounded, read_head
 from runner.outputs.text import grid_lines, interval, number, p_text, signed
 from runner.recipe.grid import canonical
 
@@ -36,6 +37,7 @@ FORMAT = "recipe-diff"
 VERSION = 2
 VERDICTS = ("regressed", "improved", "no shift shown", "too few seeds", "not comparable")
 ENV_KEYS = ("python", "torch", "numpy", "sklearn", "threads", "cpu")
+MAX_BOARD_BYTES = 1 << 28  # a leaderboard JSON of a very large grid is a few MB
 
 
 @dataclass(frozen=True)
@@ -101,7 +103,7 @@ def load_board(path: str | Path, store: str | Path | None = None) -> Leaderboard
         raise UserError(
             "file not found", where=str(path), allowed="a leaderboard JSON file, a results store, or a recipe"
         )
-    head = path.read_bytes()[:16]
+    head = read_head(path, 16, "leaderboard file")  # a regular file: not a FIFO or /dev/zero
     if head.startswith(b"SQLite format 3"):
         with Store(path, create=False) as db:
             row = db.latest_recipe()
@@ -123,16 +125,27 @@ def load_board(path: str | Path, store: str | Path | None = None) -> Leaderboard
         with Store(db_path, create=False) as db:
             return replace(leaderboard(grid, db), source=str(path))
     try:
-        doc = json.loads(path.read_text())
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise UserError(f"not a leaderboard JSON file ({exc})", where=str(path),
-                        hint="Export one with: recipe board RECIPE --format json --out FILE") from None  # fmt: skip
+        doc = json.loads(read_bounded(path, MAX_BOARD_BYTES, "leaderboard file").decode())
+    except (UnicodeDecodeError, json.JSONDecodeError, RecursionError) as exc:
+        raise UserError(
+            f"not a leaderboard JSON file ({exc})",
+            where=str(path),
+            hint="Export one with: recipe board RECIPE --format json --out FILE",
+        ) from None
     if not isinstance(doc, dict) or doc.get("format") != BOARD:
-        raise UserError(f'not a "{BOARD}" document', where=str(path),
-                        value=doc.get("format") if isinstance(doc, dict) else None)  # fmt: skip
+        raise UserError(
+            f'not a "{BOARD}" document', where=str(path), value=doc.get("format") if isinstance(doc, dict) else None
+        )
     if doc.get("version") not in (1, 2):
         raise UserError("unsupported leaderboard version", where=str(path), value=doc.get("version"), allowed="1, 2")
-    return Leaderboard.from_json(doc, source=str(path))
+    try:
+        return Leaderboard.from_json(doc, source=str(path))
+    except (KeyError, TypeError, ValueError, AttributeError) as exc:  # edited by hand, or cut short
+        raise UserError(
+            f"the leaderboard JSON is damaged ({type(exc).__name__}: {str(exc)[:100]})",
+            where=str(path),
+            hint="Export it again with: recipe board RECIPE --format json --out FILE",
+        ) from None
 
 
 def _changes(old: Leaderboard, new: Leaderboard) -> list[dict[str, Any]]:

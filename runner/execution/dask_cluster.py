@@ -40,6 +40,23 @@ class DaskExecutor:
         self.workers = workers
         self.threads = threads
         self.max_attempts = max_attempts
+        if on.startswith("dask://"):
+            self._reachable()
+
+    def _reachable(self) -> None:
+        """Refuse an unreachable scheduler now, before the plan is printed or a store made."""
+        import socket
+
+        host, _, port = self.on[len("dask://") :].rpartition(":")
+        try:
+            socket.create_connection((host.strip("[]"), int(port)), timeout=5).close()
+        except OSError as exc:
+            raise UserError(
+                f"cannot reach the Dask scheduler ({exc.strerror or exc})",
+                key="--on",
+                value=self.on,
+                hint="Start one with 'dask scheduler' and workers with 'dask worker ADDRESS'",
+            ) from None
 
     def _client(self):
         import dask
@@ -47,12 +64,16 @@ class DaskExecutor:
 
         dask.config.set({"distributed.scheduler.allowed-failures": max(0, self.max_attempts - 1)})
         if self.on == "dask-local":
+            # No dashboard and no status pages: Dask's scheduler always starts a web server
+            # (port 8787 unless told otherwise), so it gets no pages and a free loopback port.
+            dask.config.set({"distributed.scheduler.http.routes": [], "distributed.worker.http.routes": []})
             cluster = LocalCluster(
                 n_workers=self.workers,
                 threads_per_worker=1,
                 processes=True,
                 host="127.0.0.1",
                 dashboard_address=None,
+                scheduler_kwargs={"dashboard": False, "dashboard_address": "127.0.0.1:0"},
                 silence_logs=40,
             )
             return Client(cluster), cluster

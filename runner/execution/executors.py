@@ -11,7 +11,9 @@ The caller's ``on_result`` writes the store, so only the main process ever write
 from __future__ import annotations
 
 import contextlib
+import os
 import signal
+import threading
 import time
 import warnings
 from collections import deque
@@ -61,8 +63,10 @@ def prepare_process(threads: int, datasets: dict[str, Dataset] | None = None, wo
     warnings.filterwarnings("ignore", module="sklearn")
     import sklearn.model_selection  # noqa: F401  (each job's split: imported here, not in a job's time)
 
-    if worker:
-        signal.signal(signal.SIGINT, signal.SIG_IGN)  # the main process decides what Ctrl-C does
+    if worker:  # the main process decides what Ctrl-C (or a stop signal to the whole group) does
+        for sig in (signal.SIGINT, signal.SIGTERM, getattr(signal, "SIGHUP", None)):
+            if sig is not None:
+                signal.signal(sig, signal.SIG_IGN)
 
 
 _SINGLE_PATH_READY = False
@@ -108,18 +112,39 @@ class SerialExecutor:
             blas.restore_original_limits()
 
 
+def _exit_with_parent() -> None:
+    """End this worker quietly when the process that made it is gone (the runner was killed:
+    its fork server exits, and the worker is handed to another parent). Training on would
+    only end in a pipe with nobody at the other end."""
+    parent = os.getppid()
+
+    def watch() -> None:
+        while os.getppid() == parent:
+            time.sleep(1.0)
+        os._exit(0)
+
+    threading.Thread(target=watch, daemon=True, name="parent-watch").start()
+
+
 def _worker_main(conn, threads: int, datasets: dict) -> None:
     prepare_process(threads, datasets, worker=True)
+    _exit_with_parent()
     while True:
-        try:
-            item = conn.recv()
-        except EOFError:
-            return
+        item = _talk(conn.recv)
         if item is None:
             return
         ready_for(item)
-        conn.send(("start", None))  # the job's clock starts here, not while the worker boots
-        conn.send(("result", _work(item)))
+        _talk(conn.send, ("start", None))  # the job's clock starts here, not while the worker boots
+        _talk(conn.send, ("result", _work(item)))
+
+
+def _talk(op, *args):
+    """A message to or from the runner; if the runner is gone (EOF, BrokenPipe,
+    ConnectionReset) there is nobody to report to, so the worker ends quietly."""
+    try:
+        return op(*args)
+    except (EOFError, OSError):
+        os._exit(0)
 
 
 class _Worker:

@@ -21,6 +21,7 @@ from __future__ import annotations
 import contextlib
 import json
 import math
+import os
 import signal
 import threading
 import time
@@ -54,6 +55,20 @@ def _finite(v) -> bool:
     return v is not None and math.isfinite(v)
 
 
+@contextlib.contextmanager
+def _one_quick_try():
+    """The tracking check tries once with a short timeout (MLflow's defaults retry an
+    unreachable server for minutes); settings the user made in the environment win."""
+    bounds = {"MLFLOW_HTTP_REQUEST_MAX_RETRIES": "0", "MLFLOW_HTTP_REQUEST_TIMEOUT": "10"}
+    added = [name for name in bounds if name not in os.environ]
+    os.environ.update({name: bounds[name] for name in added})
+    try:
+        yield
+    finally:
+        for name in added:
+            os.environ.pop(name, None)
+
+
 class Exporter:
     def __init__(self, uri: str, grid: Grid, store: Store):
         try:
@@ -72,7 +87,8 @@ class Exporter:
         self.uri, self.grid, self.store = uri, grid, store
         try:
             self.client = MlflowClient(tracking_uri=uri)
-            self.client.search_experiments(max_results=1)  # fail here, before any job runs
+            with _one_quick_try():
+                self.client.search_experiments(max_results=1)  # fail here, before any job runs
         except Exception as exc:
             raise UserError(
                 f"cannot use this MLflow tracking URI ({type(exc).__name__}: {exc})",

@@ -128,6 +128,7 @@ def parse_exclude(raw: Any, factors: tuple[Factor, ...]) -> tuple[Mapping[str, A
     for i, rule in enumerate(raw):
         if not rule:
             raise RecipeError("an empty rule would exclude everything", key=f"exclude[{i}]")
+        normal = {}  # each value as the factor holds its level (a list level is a tuple there)
         for path, value in rule.items():
             if path not in by_path:
                 raise RecipeError(
@@ -137,14 +138,16 @@ def parse_exclude(raw: Any, factors: tuple[Factor, ...]) -> tuple[Mapping[str, A
                 )
             factor, j = by_path[path]
             values = [lvl[j] for lvl in factor.levels]
-            if freeze(value) not in map(freeze, values):
+            frozen = [freeze(v) for v in values]
+            if freeze(value) not in frozen:
                 raise RecipeError(
                     "is not one of the factor's levels, so the rule never applies",
                     key=f'exclude[{i}]."{path}"',
                     value=value,
                     allowed=", ".join(format_level(v) for v in values),
                 )
-        out.append(MappingProxyType(dict(rule)))
+            normal[path] = values[frozen.index(freeze(value))]
+        out.append(MappingProxyType(normal))
     return tuple(out)
 
 

@@ -20,6 +20,7 @@ from runner.components.metrics import METRICS, Task, for_task
 from runner.components.optimizers import check_optimizer
 from runner.datasets.sources import Dataset, load_dataset, same_bytes_other_reading, source_key
 from runner.errors import DataError, RecipeError, UserError
+from runner.recipe.footprint import check_footprint
 from runner.recipe.loader import Recipe, resolve
 from runner.recipe.settings import Settings
 from runner.training.job import JobSpec
@@ -199,6 +200,12 @@ def _expand(recipe: Recipe) -> Grid:
                 value="cnn",
                 allowed='"digits" or an NPZ file with X of shape (N, H, W) or (N, C, H, W)',
             )
+        try:
+            check_footprint(settings, len(ds.y), tuple(ds.X.shape[1:]), max(1, len(ds.classes)))
+        except RecipeError as err:
+            if where:
+                err.hint = (err.hint + "; " if err.hint else "") + f"in the configuration {where}"
+            raise
         ident = hashlib.sha256(canonical({"settings": settings.identity(), "data": ds.fingerprint}).encode())
         configs.append(
             Config(

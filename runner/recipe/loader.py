@@ -19,6 +19,7 @@ import tomli
 
 from runner.components.metrics import METRICS
 from runner.errors import RecipeError, UserError
+from runner.files import read_bounded
 from runner.recipe.constraints import (
     Choice,
     Either,
@@ -32,6 +33,7 @@ from runner.recipe.constraints import (
     validate_table,
 )
 from runner.recipe.factors import Factor, parse_baseline, parse_exclude, parse_factors
+from runner.recipe.locate import line_of
 from runner.recipe.settings import SECTIONS, Settings
 
 __all__ = [
@@ -46,6 +48,8 @@ __all__ = [
     "parse_recipe",
     "resolve",
 ]
+
+MAX_RECIPE_BYTES = 1 << 20  # a recipe is a short text; this bound stops /dev/zero and its kind
 
 TOP_LEVEL = (
     "baseline",
@@ -72,7 +76,7 @@ RUN = {
         "local",
         'where jobs run: "local", "dask-local" or "dask://HOST:PORT"',
     ),
-    "workers": Param(Integer(1, 4096), 0, "worker processes (0 = the number of cores)"),
+    "workers": Param(Integer(0, 4096), 0, "worker processes (0 = chosen by the tool: the number of cores)"),
     "keep_weights": Param(
         Choice(("all", "none", "possibly_best")),
         "possibly_best",
@@ -202,19 +206,14 @@ class Recipe:
         return self.path.parent
 
     def line_of(self, key: str) -> int | None:
-        return _line_of(self.text, key)
+        return line_of(self.text, key)
 
 
 def load_recipe(path: str | Path) -> Recipe:
-    from runner.datasets.files import MAX_RECIPE_BYTES, read_limited
-
     path = Path(path)
-    if not path.exists():
-        raise RecipeError("recipe file not found", where=str(path), hint="Give the path of a .toml recipe")
-    # Regular files only, bounded: a recipe path may name /dev/zero, a FIFO or a huge file.
-    data = read_limited(path, MAX_RECIPE_BYTES, key=None, shown=str(path), error=RecipeError)
+    data = read_bounded(path, MAX_RECIPE_BYTES, "recipe file", RecipeError)
     try:
-        text = data.decode("utf-8")
+        text = data.decode("utf-8-sig")  # an editor's byte-order mark is not part of the recipe
     except UnicodeDecodeError:
         raise RecipeError("recipe is not UTF-8 text", where=str(path)) from None
     return parse_recipe(text, path)
@@ -224,6 +223,10 @@ def parse_recipe(text: str, path: Path) -> Recipe:
     where = path.name
     try:
         raw = tomli.loads(text)
+    except RecursionError:  # tomli's own limit on nested arrays and inline tables
+        raise RecipeError(
+            "arrays or inline tables are nested too deeply", where=where, hint="A recipe needs at most a few levels"
+        ) from None
     except tomli.TOMLDecodeError as exc:
         line = getattr(exc, "lineno", None)
         msg = getattr(exc, "msg", str(exc))
@@ -233,7 +236,7 @@ def parse_recipe(text: str, path: Path) -> Recipe:
     try:
         return recipe_from_tables(raw, text, path)
     except UserError as err:
-        raise err.located(where=where, line=_line_of(text, err.key) if err.key else None) from None
+        raise err.located(where=where, line=line_of(text, err.key) if err.key else None) from None
 
 
 def recipe_from_tables(raw: dict, text: str, path: Path) -> Recipe:
@@ -313,10 +316,15 @@ def _seeds(value: Any) -> tuple[int, ...]:
         )
     for seed in value:
         try:
+            if isinstance(seed, float):  # 1.0 is TOML's float: a seed is written as an integer
+                raise Invalid("is a float", "")
             Integer(0, 2**31 - 1).check(seed)
         except Invalid:
             raise RecipeError(
-                "each seed must be a whole number from 0 to 2147483647", key="seeds", value=seed
+                "each seed must be a whole number from 0 to 2147483647",
+                key="seeds",
+                value=seed,
+                allowed="integers written without a decimal point, e.g. [1, 2, 3]",
             ) from None
     if len(set(value)) != len(value):
         raise RecipeError("seeds must not repeat", key="seeds", value=value)
@@ -349,37 +357,3 @@ def check_rank_by(value: Any, key: str = "rank_by") -> str:
             hint=f'Did you mean "val.{near}"?' if near else None,
         )
     return value
-
-
-def _line_of(text: str, key: str | None) -> int | None:
-    """Best-effort TOML line for a dotted key, a quoted factor key, or a top-level key."""
-    if not key:
-        return None
-    lines = text.splitlines()
-    quoted = re.findall(r'"([^"]+)"', key)
-    if key.startswith(("factors.", "exclude", "baseline.")) and quoted:
-        for n, line in enumerate(lines, 1):
-            if f'"{quoted[-1]}"' in line and "=" in line:
-                return n
-        return None
-    parts = key.split(".")
-    if len(parts) == 1:
-        for n, line in enumerate(lines, 1):
-            if re.match(rf'\s*"?{re.escape(parts[0])}"?\s*=', line) or re.match(
-                rf"\s*\[\[?\s*{re.escape(parts[0])}\s*\]", line
-            ):
-                return n
-        return None
-    section, name = parts[0], parts[1]
-    inside = False
-    for n, line in enumerate(lines, 1):
-        header = re.match(r"\s*\[+\s*([^\]]+?)\s*\]+", line)
-        if header:
-            inside = header.group(1) == section
-            continue
-        if inside and re.match(rf'\s*"?{re.escape(name)}"?\s*=', line):
-            return n
-    for n, line in enumerate(lines, 1):
-        if re.match(rf"\s*\[\s*{re.escape(section)}\s*\]", line):
-            return n
-    return None

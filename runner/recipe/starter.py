@@ -12,6 +12,7 @@ from runner.recipe.settings import BUNDLED
 
 __all__ = ["starter_recipe", "target_candidates"]
 
+SAMPLE_BYTES = 16 << 20  # what `recipe new` reads of a data file to guess its target
 _LIKELY = ("target", "label", "class", "y", "outcome", "species", "result")
 
 

@@ -2,5 +2,6 @@
 
 from runner.store.database import SCHEMA_VERSION, Store, StoredJob
 from runner.store.lock import STALE_AFTER, RunnerLock
+from runner.store.opening import StoreGone, StoreReadOnly
 
-__all__ = ["SCHEMA_VERSION", "STALE_AFTER", "RunnerLock", "Store", "StoredJob"]
+__all__ = ["SCHEMA_VERSION", "STALE_AFTER", "RunnerLock", "Store", "StoreGone", "StoreReadOnly", "StoredJob"]

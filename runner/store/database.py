@@ -11,18 +11,29 @@ half-written weights blob. Only finished jobs are stored.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
 import os
 import socket
 import sqlite3
 import time
-from collections.abc import Iterable
+from collections.abc import Iterable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 from runner.errors import StoreError
+from runner.store.opening import (
+    StoreGone,
+    check_location,
+    connect,
+    file_identity,
+    make_folder,
+    remove_files,
+    store_failure,
+)
 from runner.training.job import FINISHED, JobResult, Status
 
 __all__ = ["SCHEMA_VERSION", "Store", "StoredJob"]
@@ -85,29 +96,86 @@ def _num(value):
     return value if value == value and abs(value) != float("inf") else None
 
 
+APPLICATION = "recipe-runner"  # the meta row that marks a database as this tool's store
+
+
 class Store:
-    def __init__(self, path: str | Path, create: bool = True):
+    """One results database. ``create``: make the file if it is missing (else it must exist);
+    ``writable`` (default: ``create``): open it for writing. A database that is not a store
+    of this tool is refused unless it is empty; a read-only store opens only for reading."""
+
+    def __init__(self, path: str | Path, create: bool = True, writable: bool | None = None):
         self.path = Path(path)
+        self.writable = create if writable is None else writable
+        self.lock = None  # the RunnerLock this Store holds, if any (store/lock.py)
+        check_location(self.path)
         if not create and not self.path.exists():
             raise StoreError(
                 "no results store here yet",
                 where=str(self.path),
                 hint="Run the recipe first with 'recipe run', or pass --store PATH",
             )
-        self.path.parent.mkdir(parents=True, exist_ok=True)
+        self.created = not os.path.lexists(self.path)
+        self.made = make_folder(self.path) if self.writable and create else []
         try:
-            self.conn = sqlite3.connect(self.path, timeout=30.0, isolation_level=None)
+            self.conn = connect(self.path, self.writable)
+        except BaseException:
+            if self.created:
+                remove_files(self.path, self.made)
+            raise
+        self.identity = file_identity(self.path)
+        try:
+            self._adopt()
+        except BaseException:
+            self.close()
+            if self.created:
+                remove_files(self.path, self.made)
+            raise
+
+    def _adopt(self) -> None:
+        """Check that this is a store of this tool (or empty, then make it one when writable)."""
+        try:
+            tables = {r[0] for r in self.conn.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
+            rows = dict(self.conn.execute("SELECT key, value FROM meta")) if "meta" in tables else {}
+        except sqlite3.Error as exc:
+            raise store_failure(exc, self.path, "reading it") from None
+        if not tables:
+            if not self.writable:
+                raise StoreError(
+                    "no results store here yet (the file is an empty database)",
+                    where=str(self.path),
+                    hint="Run the recipe first with 'recipe run', or pass --store PATH",
+                )
+        elif rows.get("application") != APPLICATION and not ("schema" in rows and "jobs" in tables):
+            shown = ", ".join(sorted(tables)[:6]) + (f" and {len(tables) - 6} more" if len(tables) > 6 else "")
+            raise StoreError(
+                "is an SQLite database of some other program, not a results store",
+                where=str(self.path),
+                value=f"tables {shown}",
+                allowed="a results store of this tool, an empty file, or a new path",
+                hint="Give --store a new file; this tool does not write into other databases",
+            )
+        elif not str(rows.get("schema", "")).isdigit():
+            raise StoreError(
+                "the store's meta row 'schema' is damaged",
+                where=str(self.path),
+                value=rows.get("schema"),
+                allowed=f"the schema version {SCHEMA_VERSION}",
+                hint="Restore the store from a copy, or give this run a new --store",
+            )
+        elif int(rows["schema"]) != SCHEMA_VERSION:
+            raise StoreError(f"store schema version {rows['schema']} is not {SCHEMA_VERSION}", where=str(self.path))
+        if not self.writable:
+            return
+        try:
             self.conn.execute("PRAGMA journal_mode=WAL")
-            self.conn.execute("PRAGMA foreign_keys=ON")
             self.conn.execute("PRAGMA synchronous=NORMAL")
             self.conn.executescript(_SCHEMA)
-            row = self.conn.execute("SELECT value FROM meta WHERE key='schema'").fetchone()
-        except sqlite3.DatabaseError as exc:
-            raise StoreError(f"not a usable results store ({exc})", where=str(self.path)) from None
-        if row is None:
             self.conn.execute("INSERT OR IGNORE INTO meta VALUES ('schema', ?)", (str(SCHEMA_VERSION),))
-        elif int(row[0]) != SCHEMA_VERSION:
-            raise StoreError(f"store schema version {row[0]} is not {SCHEMA_VERSION}", where=str(self.path))
+            self.conn.execute("INSERT OR REPLACE INTO meta VALUES ('application', ?)", (APPLICATION,))
+        except sqlite3.Error as exc:
+            raise store_failure(exc, self.path, "preparing it") from None
+        self.conn.execute("PRAGMA foreign_keys=ON")
 
     def close(self) -> None:
         self.conn.close()
@@ -118,11 +186,79 @@ class Store:
     def __exit__(self, *exc):
         self.close()
 
+    def remove_if_unused(self) -> bool:
+        """Close and delete the file if this Store created it and nothing was stored in it
+        (a command that failed before its first result leaves no empty store behind)."""
+        if not self.created or not self.same_file():
+            return False
+        from runner.store.lock import RunnerLock
+
+        try:
+            other = RunnerLock.holder(self)
+            if other is not None and self.lock is None:
+                return False  # another run came in meanwhile and holds it: it is theirs now
+            used = any(self.conn.execute(f"SELECT 1 FROM {table} LIMIT 1").fetchone() for table in ("jobs", "exports"))
+        except sqlite3.Error:
+            return False
+        if used:
+            return False
+        if self.lock is not None:
+            self.lock.release()
+        self.close()
+        remove_files(self.path, self.made)
+        return True
+
+    def same_file(self) -> bool:
+        """Whether the path still names the file this Store opened (not deleted or replaced)."""
+        return self.identity is not None and file_identity(self.path) == self.identity
+
+    def _check_same_file(self) -> None:
+        if not self.same_file():
+            now = "is gone" if file_identity(self.path) is None else "is now a different file"
+            raise StoreGone(
+                f"the results store was deleted or replaced while in use (the path {now}); "
+                "results can no longer be kept in it, so this run stopped",
+                where=str(self.path),
+                hint="Run the same command again to redo what is missing",
+            )
+
+    @contextmanager
+    def writing(self, doing: str, transaction: bool = True) -> Iterator[sqlite3.Connection]:
+        """A write to the store: on the file it opened (checked before and after), in one
+        transaction, with SQLite's errors turned into StoreErrors (disk full, read-only...)."""
+        self._check_same_file()
+        c = self.conn
+        try:
+            if transaction:
+                c.execute("BEGIN IMMEDIATE")
+            yield c
+            if transaction:
+                c.execute("COMMIT")
+        except sqlite3.Error as exc:
+            self._rollback()
+            raise store_failure(exc, self.path, doing) from None
+        except BaseException:
+            self._rollback()
+            raise
+        self._check_same_file()
+
+    def _rollback(self) -> None:
+        # SQLite has already rolled back after some errors (a full disk): no second rollback then
+        if self.conn.in_transaction:
+            with contextlib.suppress(sqlite3.Error):
+                self.conn.execute("ROLLBACK")
+
+    def _need_lock(self) -> None:
+        if self.lock is None:
+            raise RuntimeError("internal: results are written only while holding the runner lock")
+
     def remember_recipe(self, recipe) -> None:
-        self.conn.execute(
-            "INSERT OR IGNORE INTO recipes VALUES (?, ?, ?, ?, ?)",
-            (recipe.hash, recipe.name, str(recipe.path), recipe.text, time.time()),
-        )
+        self._need_lock()
+        with self.writing("recording the recipe", transaction=False) as c:
+            c.execute(
+                "INSERT OR IGNORE INTO recipes VALUES (?, ?, ?, ?, ?)",
+                (recipe.hash, recipe.name, str(recipe.path), recipe.text, time.time()),
+            )
 
     def finished_keys(self, statuses: Iterable[Status] = FINISHED) -> set[str]:
         statuses = tuple(s.value for s in statuses)
@@ -135,10 +271,9 @@ class Store:
     ) -> None:
         """The whole result in one transaction (metrics and curves replace any earlier try);
         ``weights``: the trained weights as safetensors bytes, kept beside it."""
-        c = self.conn
+        self._need_lock()
         diagnostics = {**result.diagnostics, "notes": result.notes} if result.notes else result.diagnostics
-        c.execute("BEGIN IMMEDIATE")
-        try:
+        with self.writing("writing a job's result") as c:
             c.execute("DELETE FROM jobs WHERE key = ?", (job.key,))
             c.execute("DELETE FROM running WHERE key = ?", (job.key,))
             c.execute(
@@ -177,10 +312,6 @@ class Store:
                     "INSERT INTO weights VALUES (?, 'safetensors', ?, ?)",
                     (job.key, hashlib.sha256(weights).hexdigest(), weights),
                 )
-            c.execute("COMMIT")
-        except BaseException:
-            c.execute("ROLLBACK")
-            raise
 
     def jobs(self, keys: Iterable[str] | None = None) -> list[StoredJob]:
         rows = self.conn.execute(
@@ -192,23 +323,33 @@ class Store:
         for r in rows:
             if wanted is not None and r[0] not in wanted:
                 continue
-            out.append(
-                StoredJob(
-                    key=r[0],
-                    config_id=r[1],
-                    seed=r[2],
-                    levels=json.loads(r[3]),
-                    status=Status(r[4]),
-                    error=r[5],
-                    duration=r[6],
-                    epochs_run=r[7],
-                    best_epoch=r[8],
-                    env=json.loads(r[9]),
-                    diagnostics=json.loads(r[10]),
-                    recipe_hash=r[11],
-                )
-            )
+            try:
+                out.append(self._job(r))
+            except (ValueError, TypeError, RecursionError):  # json and Status raise ValueError subclasses
+                raise StoreError(
+                    "a stored job's record is damaged",
+                    where=str(self.path),
+                    value=r[0],
+                    hint="Restore the store from a copy, or run with --fresh to recompute this grid",
+                ) from None
         return out
+
+    @staticmethod
+    def _job(r) -> StoredJob:
+        return StoredJob(
+            key=r[0],
+            config_id=r[1],
+            seed=r[2],
+            levels=json.loads(r[3]),
+            status=Status(r[4]),
+            error=r[5],
+            duration=r[6],
+            epochs_run=r[7],
+            best_epoch=r[8],
+            env=json.loads(r[9]),
+            diagnostics=json.loads(r[10]),
+            recipe_hash=r[11],
+        )
 
     def latest_recipe(self) -> tuple[str, str] | None:
         """(text, path) of the recipe this store saw last, or None."""
@@ -220,14 +361,16 @@ class Store:
         return None if row is None else row[0]
 
     def set_meta(self, key: str, value: str) -> None:
-        self.conn.execute("INSERT OR REPLACE INTO meta VALUES (?, ?)", (key, value))
+        with self.writing(f"setting {key}", transaction=False) as c:
+            c.execute("INSERT OR REPLACE INTO meta VALUES (?, ?)", (key, value))
 
     def exported_keys(self, uri: str) -> set[str]:
         """Jobs already logged to this MLflow tracking URI."""
         return {r[0] for r in self.conn.execute("SELECT job_key FROM exports WHERE uri = ?", (uri,))}
 
     def record_export(self, uri: str, key: str, run_id: str) -> None:
-        self.conn.execute("INSERT OR REPLACE INTO exports VALUES (?, ?, ?, ?)", (uri, key, run_id, time.time()))
+        with self.writing("recording an export", transaction=False) as c:
+            c.execute("INSERT OR REPLACE INTO exports VALUES (?, ?, ?, ?)", (uri, key, run_id, time.time()))
 
     def metrics(self) -> dict[str, dict[str, dict[str, float | None]]]:
         out: dict = {}
@@ -250,9 +393,12 @@ class Store:
         return out
 
     def mark_running(self, key: str) -> None:
-        self.conn.execute(
-            "INSERT OR REPLACE INTO running VALUES (?, ?, ?, ?)", (key, os.getpid(), socket.gethostname(), time.time())
-        )
+        self._need_lock()
+        with self.writing("marking a job as running", transaction=False) as c:
+            c.execute(
+                "INSERT OR REPLACE INTO running VALUES (?, ?, ?, ?)",
+                (key, os.getpid(), socket.gethostname(), time.time()),
+            )
 
     def running_keys(self) -> set[str]:
         """Jobs marked running by a runner that still holds the store; stale marks are ignored."""
@@ -264,20 +410,15 @@ class Store:
 
     def forget(self, keys: Iterable[str]) -> int:
         """Delete the stored results of these jobs (for --fresh)."""
+        self._need_lock()
         keys = list(keys)
-        c = self.conn
-        c.execute("BEGIN IMMEDIATE")
-        try:
-            n = 0
+        n = 0
+        with self.writing("deleting results") as c:
             for i in range(0, len(keys), 500):
                 chunk = keys[i : i + 500]
                 marks = ",".join("?" * len(chunk))
                 n += c.execute(f"DELETE FROM jobs WHERE key IN ({marks})", chunk).rowcount
                 c.execute(f"DELETE FROM running WHERE key IN ({marks})", chunk)
-            c.execute("COMMIT")
-        except BaseException:
-            c.execute("ROLLBACK")
-            raise
         return n
 
     def weights(self, key: str) -> bytes | None:
@@ -298,10 +439,11 @@ class Store:
         """Delete the kept weights of these jobs (their results stay); how many were kept."""
         keys = list(keys)
         n = 0
-        for i in range(0, len(keys), 500):
-            chunk = keys[i : i + 500]
-            marks = ",".join("?" * len(chunk))
-            n += self.conn.execute(f"DELETE FROM weights WHERE job_key IN ({marks})", chunk).rowcount
+        with self.writing("dropping kept weights") as c:
+            for i in range(0, len(keys), 500):
+                chunk = keys[i : i + 500]
+                marks = ",".join("?" * len(chunk))
+                n += c.execute(f"DELETE FROM weights WHERE job_key IN ({marks})", chunk).rowcount
         return n
 
     def trained_as(self, key: str) -> tuple[str, ...] | None:

@@ -13,15 +13,26 @@ from pathlib import Path
 
 import torch
 
-__all__ = ["load", "remove", "save"]
+__all__ = ["Unfit", "load", "remove", "save"]
 
 
-def save(path: str, state: dict) -> None:
+class Unfit(Exception):
+    """A checkpoint that loads but does not fit the job's model or state."""
+
+
+def save(path: str, state: dict) -> str | None:
+    """Write the checkpoint; None, or why it could not be written (a full disk, a read-only
+    folder). A checkpoint is only a head start: failing to save one never fails the job."""
     target = Path(path)
-    target.parent.mkdir(parents=True, exist_ok=True)
     tmp = target.with_suffix(f".tmp{os.getpid()}")
-    torch.save(state, tmp)
-    os.replace(tmp, target)
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        torch.save(state, tmp)
+        os.replace(tmp, target)
+    except (OSError, RuntimeError) as exc:  # torch reports a failed write as RuntimeError
+        remove(str(tmp))
+        return str(exc)[:200]
+    return None
 
 
 def load(path: str) -> dict | None:
@@ -35,5 +46,5 @@ def load(path: str) -> dict | None:
 
 def remove(path: str | None) -> None:
     if path:
-        with contextlib.suppress(FileNotFoundError):
+        with contextlib.suppress(OSError):  # gone, or never written (its folder could not be made)
             os.remove(path)

@@ -140,7 +140,10 @@ def train_members(
         for m, diags in zip(members, backend.initial_diagnostics()):
             m.result.diagnostics.update(diags)
     else:
-        step, start_epoch = _resume(backend, members[0], saved)
+        try:
+            step, start_epoch = _resume(backend, members[0], saved)
+        except Exception as exc:  # wrong shapes or keys, missing fields: the backend is half-loaded
+            raise checkpoints.Unfit(f"{type(exc).__name__}: {str(exc)[:200]}") from None
     fault = faults.from_environment()
     for epoch in range(start_epoch, train0.epochs):
         if not any(m.active for m in members):
@@ -268,7 +271,7 @@ def _summaries(m: _Member, r: JobResult) -> dict[str, Any]:
 
 
 def _save(backend: Backend, m: _Member, path: str, step: int, epoch: int) -> None:
-    checkpoints.save(
+    failed = checkpoints.save(
         path,
         {
             **backend.checkpoint_state(),
@@ -283,6 +286,8 @@ def _save(backend: Backend, m: _Member, path: str, step: int, epoch: int) -> Non
             "epoch": epoch + 1,
         },
     )
+    if failed and not any(n.startswith("a checkpoint could not be saved") for n in m.result.notes):
+        m.result.notes.append(f"a checkpoint could not be saved ({failed}); the job went on without it")
 
 
 def _resume(backend: Backend, m: _Member, saved: dict[str, Any]) -> tuple[int, int]:
@@ -304,8 +309,15 @@ def train_job(spec: JobSpec, ds: Dataset, keep_model: bool = False):
     members = new_members([spec], environment())
     backend = None
     try:
-        backend = SingleBackend(spec, ds)
-        result = train_members(backend, members, start, checkpoint=spec.checkpoint)[0]
+        try:
+            backend = SingleBackend(spec, ds)
+            result = train_members(backend, members, start, checkpoint=spec.checkpoint)[0]
+        except checkpoints.Unfit as unfit:  # a damaged checkpoint costs the head start, not the job
+            checkpoints.remove(spec.checkpoint)
+            members = new_members([spec], environment())
+            backend = SingleBackend(spec, ds)
+            result = train_members(backend, members, start, checkpoint=spec.checkpoint)[0]
+            result.notes.append(f"its checkpoint did not fit the model ({unfit}); trained from scratch")
     except Exception as exc:  # a job's bug or bad numbers must not stop the grid
         result = members[0].result  # what was recorded before the failure
         result.status, result.error = Status.FAILED, f"{type(exc).__name__}: {exc}"
