@@ -317,10 +317,14 @@ class StackedOptimizer:
     def _adam_action(self, run: slice, lr: float, beta1: float, beta2: float, eps: float):
         import torch
 
-        ps = [p[run] for p in self.params]
-        gs = [g[run] for g in self.grads]
-        ms = [m[run] for m in self.moments[0]]
-        vs = [v[run] for v in self.moments[1]]
+        # one tensor per member and parameter: a run's rows back to back would put a member's
+        # elements wherever the kernel's vector blocks and scalar tail fall for that run, so its
+        # bits would depend on its neighbours; row by row, every member is stepped alike
+        members = range(run.start, run.stop)
+        ps = [p[k] for p in self.params for k in members]
+        gs = [g[k] for g in self.grads for k in members]
+        ms = [m[k] for m in self.moments[0] for k in members]
+        vs = [v[k] for v in self.moments[1] for k in members]
         steps = [self.step_count] * len(ps)
         if self.fused and ps[0].dtype in (torch.float32, torch.float64):
             return lambda: torch._fused_adam_(

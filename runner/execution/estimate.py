@@ -59,18 +59,16 @@ def _seconds_per_member_epoch(item, grid: Grid) -> float:
 def estimate_seconds(grid: Grid, todo: list, workers: int, stack: bool = True) -> float:
     """Seconds of training for ``todo`` on ``workers`` processes (one thread each), from the
     work items `recipe run` would make of it: stacked groups formed as execute() forms them
-    (over the whole grid, a group running whole if any member is to run), one job at a time
-    otherwise. One item of each kind (up to MAX_PROBES kinds) is trained for PROBE_EPOCHS
-    epochs in this process, after an untimed epoch that absorbs its one-off costs; an
-    item costs its kind's time per member and epoch times its members and epochs (items of
-    kinds not probed get the mean of the probed kinds), and the items are dealt to the
-    workers longest first, each to the least loaded."""
+    (from the jobs to run), one job at a time otherwise. One item of each kind (up to
+    MAX_PROBES kinds) is trained for PROBE_EPOCHS epochs in this process, after an untimed
+    epoch that absorbs its one-off costs; an item costs its kind's time per member and
+    epoch times its members and epochs (items of kinds not probed get the mean of the
+    probed kinds), and the items are dealt to the workers longest first, each to the least
+    loaded."""
     from runner.execution.executors import prepare_process
     from runner.training.grouping import group_specs
 
-    keys = {j.key for j in todo}
-    specs = [j.spec() for j in grid] if stack else [j.spec() for j in todo]
-    items = [it for it in group_specs(specs, grid.datasets, enabled=stack) if any(s.key in keys for s in it)]
+    items = group_specs([j.spec() for j in todo], grid.datasets, enabled=stack)
     if not items:
         return 0.0
     prepare_process(1, grid.datasets)

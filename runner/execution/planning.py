@@ -86,12 +86,9 @@ def execute(
     ckpt_dir = checkpoint_dir(store)
 
     def on_start(spec):
-        if spec.key in by_key:
-            store.mark_running(spec.key)
+        store.mark_running(spec.key)
 
     def on_result(spec, result, attempts):
-        if spec.key not in by_key:
-            return  # a stacked group's member that is already stored: written once, never again
         job = by_key[spec.key]
         labels = grid.labels(job.config)
         store.write_result(job, labels, grid.recipe.hash, result, attempts)
@@ -109,12 +106,9 @@ def execute(
         ckpt = ckpt_dir / f"{j.key}.pt" if j.config.settings.train.checkpoint_every else None
         return j.spec(checkpoint=str(ckpt) if ckpt else None, time_limit=time_limit)
 
-    # Groups are formed over the whole grid (see stack.group_specs); a group with any job to run
-    # runs whole, and only its unfinished members' results are written.
-    everything = [spec_of(j) for j in grid] if stack else [spec_of(j) for j in todo]
-    items = [
-        item for item in group_specs(everything, grid.datasets, enabled=stack) if any(s.key in by_key for s in item)
-    ]
+    # Groups are formed from what is left to run: a stacked member's numbers do not depend on
+    # its group (grouping.group_specs), so a resumed or extended grid trains only its missing jobs.
+    items = group_specs([spec_of(j) for j in todo], grid.datasets, enabled=stack)
     if progress is not None:
         progress.note(training_note(items))
     with RunnerLock(store):

@@ -81,12 +81,13 @@ def member_bytes(spec: JobSpec, ds: Dataset) -> int:
 def group_specs(
     specs: Sequence[JobSpec], datasets: dict[str, Dataset], enabled: bool = True
 ) -> list[tuple[JobSpec, ...]]:
-    """Work items over the grid's jobs in grid order: stackable jobs in groups of up to
+    """Work items over these jobs in their order: stackable jobs in groups of up to
     GROUP_SIZE (fewer when the memory estimate says so), others alone.
 
-    Groups depend only on the grid, never on which jobs are already stored or on the worker
-    count: a member's numbers depend (in the last bits) on its place in its group, so a fixed
-    grouping keeps resumed and uninterrupted runs bitwise equal."""
+    A member's numbers do not depend on its group (its size, its other members, its place
+    in it: stacked_network.aligned and the per-member optimizer steps see to that, and
+    tests/test_stack.py checks it bit for bit), so the caller may group whatever is left
+    to run: a resumed or extended grid trains only its missing jobs."""
     if not enabled:
         return [(s,) for s in specs]
     buckets: dict[str, list[JobSpec]] = {}

@@ -35,7 +35,7 @@ from runner.recipe.grid import canonical
 from runner.training import diagnostics
 from runner.training.job import JobSpec
 from runner.training.scoring import score_members
-from runner.training.stacked_network import StackedMLP, cross_entropy_grad, mse_grad
+from runner.training.stacked_network import StackedMLP, aligned, cross_entropy_grad, mse_grad
 from runner.training.streams import streams
 
 __all__ = ["StackedBackend"]
@@ -71,7 +71,12 @@ def _splits(specs: list[JobSpec], ds: Dataset):
 
 
 def _stacked_inputs(arrays) -> torch.Tensor:
-    return torch.stack([torch.from_numpy(np.ascontiguousarray(X.reshape(len(X), -1))) for X in arrays])
+    """Each member's rows, flattened, in its own aligned block (stacked_network.aligned)."""
+    first = arrays[0].reshape(len(arrays[0]), -1)
+    out = aligned(len(arrays), first.shape, torch.from_numpy(first[:0]).dtype)
+    for k, X in enumerate(arrays):
+        out[k].copy_(torch.from_numpy(np.ascontiguousarray(X.reshape(len(X), -1))))
+    return out
 
 
 class _Dropout:
@@ -148,9 +153,7 @@ class StackedBackend:
         self.dropout = _Dropout(specs, gens, widths)
         self.batch = T[0].batch_rows(n)
         self.steps_per_epoch = -(-n // self.batch)
-        self._X_rows, self._y_rows = self.Xtr.view(K * n, features), self.ytr.view(K * n)
-        self._offsets = (torch.arange(K) * n).unsqueeze(1)  # member k's rows start at k * n
-        self.X_epoch, self.y_epoch = torch.empty_like(self.Xtr), torch.empty_like(self.ytr)
+        self.X_epoch, self.y_epoch = aligned(K, (n, features)), torch.empty_like(self.ytr)
         self._dout: torch.Tensor | None = None
 
     def initial_diagnostics(self) -> list[dict[str, Any]]:
@@ -164,10 +167,10 @@ class StackedBackend:
     def begin_epoch(self) -> None:
         """Each member's rows in its own order for this epoch, gathered once: mini-batches
         are then slices (K, m, features) of it."""
-        K, n = self.members, self.n
-        order = (torch.stack([torch.randperm(n, generator=g[1]) for g in self.gens]) + self._offsets).view(-1)
-        torch.index_select(self._X_rows, 0, order, out=self.X_epoch.view(K * n, -1))
-        torch.index_select(self._y_rows, 0, order, out=self.y_epoch.view(K * n))
+        for k, g in enumerate(self.gens):
+            order = torch.randperm(self.n, generator=g[1])
+            torch.index_select(self.Xtr[k], 0, order, out=self.X_epoch[k])
+            torch.index_select(self.ytr[k], 0, order, out=self.y_epoch[k])
 
     def losses(self, step: int) -> tuple[list[float], int]:
         bs = self.batch
