@@ -122,18 +122,16 @@ def _run(
     verbose,
     fmt,
 ):
-    from runner.execution.forkserver import start_early, wants_workers
     from runner.recipe.loader import load_recipe
 
     try:
         recipe = load_recipe(recipe_path)  # no torch needed to validate it
     except UserError as err:
         fail(err)
-    if wants_workers(workers, on, recipe.run):
-        start_early()  # its imports overlap with this process's from here on (see forkserver.py)
+    # Nothing here imports torch: a run with nothing to train never does, and a run with
+    # workers leaves it to them (their fork server starts once the plan asks for workers).
     from runner.evidence.leaderboard import leaderboard
-    from runner.execution.executors import default_workers
-    from runner.execution.planning import execute, make_executor, plan
+    from runner.execution.planning import execute, executor_for, plan, work_items
     from runner.execution.progress import Progress
     from runner.outputs.mlflow_export import RunLogger
     from runner.outputs.text import render
@@ -142,32 +140,41 @@ def _run(
 
     try:
         grid = expand(recipe)
-        where = on or recipe.run.on
-        workers = workers or recipe.run.workers or default_workers()
         with Store(store_path(recipe, store)) as db:
             if fresh:
                 _confirm_fresh(db, grid, yes)
             todo = plan(grid, db, retry_failed)
             if not quiet:
                 click.echo(todo.describe(), err=True)
-            progress = Progress(
-                len(todo.to_run), grid.rank_by, grid.goal, quiet=quiet, live=False if verbose else None, verbose=verbose
-            )
-            executor = make_executor(where, workers, threads, max_attempts, time_limit)
             tracker = RunLogger(mlflow_uri or recipe.tracking.mlflow, grid, db)
-            try:
-                execute(
-                    grid, db, todo.to_run, executor, progress, time_limit, on_stored=tracker.stored, stack=not no_stack
+            if todo.to_run:
+                items = work_items(grid, db, todo.to_run, not no_stack, time_limit)
+                where = on or recipe.run.on
+                executor = executor_for(
+                    where, items, grid, workers or recipe.run.workers or None, threads, max_attempts, time_limit
                 )
-                _report_tracking(tracker.finish(), tracker.uri, recipe_path, quiet)
-            except KeyboardInterrupt:
-                done = len(db.finished_keys() & {j.key for j in grid})
-                click.echo(
-                    f"\nInterrupted: {done} of {todo.total} jobs are stored. Run the same "
-                    f"command again to resume; finished jobs are not repeated.",
-                    err=True,
+                progress = Progress(
+                    len(todo.to_run),
+                    grid.rank_by,
+                    grid.goal,
+                    quiet=quiet,
+                    live=False if verbose else None,
+                    verbose=verbose,
                 )
-                sys.exit(130)
+                try:
+                    execute(
+                        grid, db, todo.to_run, executor, progress, time_limit, on_stored=tracker.stored, items=items
+                    )
+                except KeyboardInterrupt:
+                    done = len(db.finished_keys() & {j.key for j in grid})
+                    click.echo(
+                        f"\nInterrupted: {done} of {todo.total} jobs are stored (jobs still in training are "
+                        f"not: a stacked group's results are stored when the group ends). Run the same "
+                        f"command again to resume; finished jobs are not repeated.",
+                        err=True,
+                    )
+                    sys.exit(130)
+            _report_tracking(tracker.finish(), tracker.uri, recipe_path, quiet)
             click.echo(render(leaderboard(grid, db), fmt or "table"), nl=False)
     except UserError as err:
         fail(err)

@@ -1,7 +1,8 @@
 """Datasets: CSV and NPZ files, scikit-learn's bundled sets, moons and circles.
 
 ``load_dataset`` reads a source once (in the main process) into a ``Dataset`` with a
-fingerprint of its bytes; splits.py cuts it per seed.
+fingerprint of its bytes; splits.py cuts it per seed. Bundled sets are described at once
+and loaded on first use (bundled.py).
 """
 
 from __future__ import annotations
@@ -41,6 +42,11 @@ class Dataset:
     def image_shape(self) -> tuple[int, ...] | None:
         return tuple(self.X.shape[1:]) if self.X.ndim == 4 else None
 
+    @property
+    def shape(self) -> tuple[int, ...]:
+        """X's shape (known without loading a bundled set's arrays: bundled.py)."""
+        return tuple(self.X.shape)
+
 
 def source_key(data: DataSettings) -> tuple:
     """The settings that decide which rows are loaded (not how they are split)."""
@@ -49,9 +55,10 @@ def source_key(data: DataSettings) -> tuple:
 
 def load_dataset(data: DataSettings, base_dir: Path) -> Dataset:
     source = data.source
-    if source in BUNDLED:
-        X, y, names, classes, task, fp = _bundled(source, data)
-        label = source
+    if source in BUNDLED:  # described now, loaded on first use (bundled.py)
+        from runner.datasets.bundled import bundled
+
+        return bundled(data)
     else:
         path = (base_dir / source).resolve()
         label = str(source)
@@ -82,40 +89,6 @@ def load_dataset(data: DataSettings, base_dir: Path) -> Dataset:
             hint="A classifier needs at least two classes",
         )
     return Dataset(X=X, y=y, task=task, classes=classes, feature_names=names, fingerprint=fp, label=label)
-
-
-def _bundled(name: str, data: DataSettings):
-    import sklearn
-    from sklearn import datasets
-
-    fp_text = f"{name}|sklearn={sklearn.__version__}"
-    if name in ("moons", "circles"):
-        make = datasets.make_moons if name == "moons" else datasets.make_circles
-        kwargs = {"factor": 0.5} if name == "circles" else {}
-        # A fixed generator seed: the dataset is the same for every job; seeds vary the split.
-        X, y = make(n_samples=data.n_samples, noise=data.noise, random_state=0, **kwargs)
-        fp_text += f"|n={data.n_samples}|noise={data.noise}"
-        return (
-            X.astype(np.float32),
-            y.astype(np.int64),
-            ("x1", "x2"),
-            ("0", "1"),
-            Task.CLASSIFICATION,
-            hashlib.sha256(fp_text.encode()).hexdigest(),
-        )
-    bunch = getattr(datasets, f"load_{name}")()
-    X = bunch.data.astype(np.float32)
-    fp = hashlib.sha256(fp_text.encode()).hexdigest()
-    if name == "diabetes":
-        return X, bunch.target.astype(np.float64), tuple(bunch.feature_names), (), Task.REGRESSION, fp
-    if name == "digits":
-        # Kept as 8x8 single-channel images; an MLP flattens them.
-        X = X.reshape(-1, 1, 8, 8)
-        names = tuple(f"pixel{i}" for i in range(64))
-    else:
-        names = tuple(bunch.feature_names)
-    classes = tuple(str(c) for c in bunch.target_names)
-    return X, bunch.target.astype(np.int64), names, classes, Task.CLASSIFICATION, fp
 
 
 def _csv(raw: bytes, label: str, target: str | None):

@@ -26,7 +26,7 @@ def environment() -> dict[str, Any]:
         pass
     return {
         "python": sys.version.split()[0],
-        "torch": torch.__version__,
+        "torch": str(torch.__version__),  # a str subclass of torch's: unpickling it would import torch
         "numpy": np.__version__,
         "sklearn": sklearn.__version__,
         "threads": torch.get_num_threads(),

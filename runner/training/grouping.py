@@ -70,12 +70,12 @@ def member_bytes(spec: JobSpec, ds: Dataset) -> int:
     """A generous estimate of one member's tensors: parameters with gradients, optimizer
     moments, a best-epoch copy and momentum buffer (6 copies), its data splits, and the
     activations of one mini-batch with their gradients and masks (4 copies)."""
-    features = int(np.prod(ds.X.shape[1:]))
+    rows, features = ds.shape[0], int(np.prod(ds.shape[1:]))  # no array loaded (bundled.py)
     widths = [features, *spec.settings.model.hidden, max(1, len(ds.classes))]
     params = sum((a + 1) * b for a, b in zip(widths, widths[1:]))
     bs = spec.settings.train.batch_size
-    batch = len(ds.y) if bs == "full" else min(int(bs), len(ds.y))
-    return 4 * (6 * params + len(ds.y) * features + 4 * batch * sum(widths))
+    batch = rows if bs == "full" else min(int(bs), rows)
+    return 4 * (6 * params + rows * features + 4 * batch * sum(widths))
 
 
 def group_specs(
