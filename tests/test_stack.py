@@ -45,6 +45,7 @@ def test_stacked_steps_match_torch_optim_member_by_member(kind, fused):
         "momentum": torch.tensor([0.9, 0.5, 0.0], dtype=torch.float64),
         "beta1": torch.tensor([0.9, 0.8, 0.95], dtype=torch.float64),
         "beta2": torch.tensor([0.999, 0.99, 0.9], dtype=torch.float64),
+        "alpha": torch.tensor([0.99, 0.9, 0.5], dtype=torch.float64),
         "eps": torch.tensor([1e-8, 1e-6, 1e-7], dtype=torch.float64),
         "weight_decay": torch.tensor([0.0, 0.1, 0.01], dtype=torch.float64),
     }
@@ -59,7 +60,7 @@ def test_stacked_steps_match_torch_optim_member_by_member(kind, fused):
     for k in range(K):
         w_k = W[k].detach().clone().requires_grad_()
         b_k = b[k].detach().clone().requires_grad_()
-        lr, mu, wd = (float(hyper[n][k]) for n in ("lr", "momentum", "weight_decay"))
+        lr, mu, wd, alpha = (float(hyper[n][k]) for n in ("lr", "momentum", "weight_decay", "alpha"))
         betas, eps = (float(hyper["beta1"][k]), float(hyper["beta2"][k])), float(hyper["eps"][k])
         groups = [{"params": [w_k], "weight_decay": wd}, {"params": [b_k], "weight_decay": 0.0}]
         opt = {
@@ -68,6 +69,8 @@ def test_stacked_steps_match_torch_optim_member_by_member(kind, fused):
             "nesterov": lambda: torch.optim.SGD(groups, lr=lr, momentum=mu, nesterov=True),
             "adam": lambda: torch.optim.Adam(groups, lr=lr, betas=betas, eps=eps),
             "adamw": lambda: torch.optim.AdamW(groups, lr=lr, betas=betas, eps=eps),
+            "rmsprop": lambda: torch.optim.RMSprop(groups, lr=lr, alpha=alpha, eps=eps),
+            "adagrad": lambda: torch.optim.Adagrad(groups, lr=lr, eps=eps),
         }[kind]()
         refs.append((w_k, b_k, opt))
     x = torch.randn(8, 4, dtype=torch.float64, generator=g)
@@ -108,16 +111,17 @@ def test_members_of_mixed_kinds_step_as_each_kind_alone():
     """One group mixing sgd, adam and nesterov members (non-contiguous) moves each member as
     a group of that kind alone would."""
     g = torch.Generator().manual_seed(3)
-    kinds = ["sgd", "adam", "nesterov", "adam", "sgd"]
+    kinds = ["sgd", "adam", "nesterov", "adam", "sgd", "rmsprop", "adagrad", "rmsprop"]
     K = len(kinds)
     hyper = {
         "momentum": torch.full((K,), 0.9),
         "beta1": torch.full((K,), 0.9),
         "beta2": torch.full((K,), 0.999),
+        "alpha": torch.tensor([0.99] * 6 + [0.9, 0.8]),
         "eps": torch.full((K,), 1e-8),
-        "weight_decay": torch.tensor([0.0, 0.01, 0.1, 0.0, 0.2]),
+        "weight_decay": torch.tensor([0.0, 0.01, 0.1, 0.0, 0.2, 0.0, 0.1, 0.01]),
     }
-    lr = torch.tensor([0.1, 1e-3, 0.05, 3e-3, 0.1])
+    lr = torch.tensor([0.1, 1e-3, 0.05, 3e-3, 0.1, 1e-3, 1e-2, 3e-3])
     W0 = torch.randn(K, 4, 3, generator=g, dtype=torch.float64)
     grads = [torch.randn(K, 4, 3, generator=g, dtype=torch.float64) for _ in range(4)]
     W = W0.clone()
@@ -173,10 +177,9 @@ def _loss_rel(a, b) -> float:
     )
 
 
-def test_one_epoch_agrees_with_the_single_job_path(tmp_path):
-    """Every member's first-epoch losses and val accuracy agree with the job run alone."""
-    _, specs, ds = grid_of(tmp_path, MIXED.format(epochs=1))
-    assert len({stack_key(s) for s in specs}) == 1 and len(specs) == 32
+def _agrees_with_single_jobs(specs, ds) -> None:
+    """Every member's first-epoch losses and val accuracy agree with the job run alone, to
+    the tolerance above."""
     stacked = run_group(specs, ds)
     rel, sensitive = [], []
     # the same data with every value scaled by 1 + N(0, 3e-7): a perturbation of float32 rounding's size
@@ -198,6 +201,23 @@ def test_one_epoch_agrees_with_the_single_job_path(tmp_path):
             assert own >= worst / 10, (spec.key, worst, own)
     assert len(sensitive) <= 2, sensitive  # an outlier or two, not a pattern
     assert float(np.median(rel)) < ONE_EPOCH_MEDIAN_RTOL
+
+
+def test_one_epoch_agrees_with_the_single_job_path(tmp_path):
+    _, specs, ds = grid_of(tmp_path, MIXED.format(epochs=1))
+    assert len({stack_key(s) for s in specs}) == 1 and len(specs) == 32
+    _agrees_with_single_jobs(specs, ds)
+
+
+def test_rmsprop_and_adagrad_agree_with_the_single_job_path(tmp_path):
+    body = MIXED.format(epochs=1).replace('"model.init" = ["glorot_uniform", "he_normal"]', "")
+    body = body.replace(
+        '"train.lr" = [1e-3, 3e-3]', '"train.lr" = [1e-3, 1e-2]\n    "train.optimizer" = ["rmsprop", "adagrad"]'
+    )
+    _, specs, ds = grid_of(tmp_path, body)
+    assert {s.settings.train.optimizer for s in specs} == {"rmsprop", "adagrad"} and len(specs) == 32
+    assert len({stack_key(s) for s in specs}) == 1
+    _agrees_with_single_jobs(specs, ds)
 
 
 def test_same_final_ranking_as_single_jobs(tmp_path):

@@ -146,7 +146,7 @@ class StackedBackend:
                     gens[k][0],
                 )
         self.probe = min(diagnostics.PROBE_ROWS, n)
-        hyper = {h: _hyper(specs, h) for h in ("momentum", "beta1", "beta2", "eps", "weight_decay")}
+        hyper = {h: _hyper(specs, h) for h in ("momentum", "beta1", "beta2", "alpha", "eps", "weight_decay")}
         self.opt = StackedOptimizer([t.optimizer for t in T], [net.flat], [net.gflat], [net.is_weight], hyper)
         self.penalties = regularizers.StackedPenalties(T, net.flat, net.gflat, net.is_weight)
         self.clip = [t.clip_norm for t in T]
