@@ -15,6 +15,7 @@ source = "{source}"
 [model]
 hidden = [17, 9]
 activation = "{activation}"
+batch_norm = {batch_norm}
 dropout = 0.1
 [train]
 optimizer = "adam"
@@ -55,13 +56,18 @@ def _key_alone(store) -> str:
     return key
 
 
-@pytest.mark.parametrize(("source", "activation"), [("wine", "tanh"), ("diabetes", "gelu")])
-def test_a_member_trains_to_the_same_bits_alone_and_in_two_groups(tmp_path, source, activation):
+@pytest.mark.parametrize(
+    ("source", "activation", "batch_norm"),
+    [("wine", "tanh", "false"), ("diabetes", "gelu", "false"), ("wine", "elu", "true")],
+)
+def test_a_member_trains_to_the_same_bits_alone_and_in_two_groups(tmp_path, source, activation, batch_norm):
     """One job stored three times, alone and in two different stacked groups: every stored
     number equal, bit for bit (float equality; NaN never appears here)."""
     found = {}
     for place, (seeds, factors) in PLACES.items():
-        text = BASE.format(name="place", seeds=seeds, source=source, activation=activation, factors=factors)
+        text = BASE.format(
+            name="place", seeds=seeds, source=source, activation=activation, batch_norm=batch_norm, factors=factors
+        )
         path = write_recipe(tmp_path, text, name=f"{len(found)}.toml")
         store = tmp_path / f"{len(found)}.sqlite"
         result = invoke("run", path, "--store", store, "--workers", 1, "-q")

@@ -177,9 +177,10 @@ def _loss_rel(a, b) -> float:
     )
 
 
-def _agrees_with_single_jobs(specs, ds) -> None:
+def _agrees_with_single_jobs(specs, ds, explained_only: bool = False) -> None:
     """Every member's first-epoch losses and val accuracy agree with the job run alone, to
-    the tolerance above."""
+    the tolerance above; with ``explained_only``, any member may be past ONE_EPOCH_MAX_RTOL
+    if the single path's own sensitivity explains it (and the median is not checked)."""
     stacked = run_group(specs, ds)
     rel, sensitive = [], []
     # the same data with every value scaled by 1 + N(0, 3e-7): a perturbation of float32 rounding's size
@@ -199,8 +200,9 @@ def _agrees_with_single_jobs(specs, ds) -> None:
             own = _loss_rel(run_job(spec, nudged), single)  # how far rounding alone moves this member
             sensitive.append((spec.key, worst, own))
             assert own >= worst / 10, (spec.key, worst, own)
-    assert len(sensitive) <= 2, sensitive  # an outlier or two, not a pattern
-    assert float(np.median(rel)) < ONE_EPOCH_MEDIAN_RTOL
+    if not explained_only:
+        assert len(sensitive) <= 2, sensitive  # an outlier or two, not a pattern
+        assert float(np.median(rel)) < ONE_EPOCH_MEDIAN_RTOL
 
 
 def test_one_epoch_agrees_with_the_single_job_path(tmp_path):
@@ -326,20 +328,60 @@ def test_what_is_not_stacked(tmp_path):
         seeds = [1]
         [data]
         source = "digits"
+        [model]
+        batch_norm = true
+        [train]
+        optimizer = "rmsprop"
         [factors]
-        "train.optimizer" = ["adam", "rmsprop"]
-        "model.batch_norm" = [false, true]
+        "model.kind" = ["mlp", "cnn"]
+        "train.checkpoint_every" = [0, 2]
     """,
     )
-    keyed = {(s.settings.train.optimizer, s.settings.model.batch_norm): stack_key(s) for s in specs}
-    assert keyed[("adam", False)] is not None
-    assert keyed[("rmsprop", False)] is None and keyed[("adam", True)] is None
+    keyed = {(s.settings.model.kind, s.settings.train.checkpoint_every): stack_key(s) for s in specs}
+    assert keyed[("mlp", 0)] is not None  # batch norm and rmsprop stack
+    assert keyed[("cnn", 0)] is None and keyed[("mlp", 2)] is None
     items = group_specs(specs, {specs[0].data_id: ds})
     assert sorted(len(i) for i in items) == [1, 1, 1, 1]
     stacked = [i for i in items if isinstance(i, Stacked)]
-    assert len(stacked) == 1 and stacked[0][0].settings.train.optimizer == "adam"
+    assert len(stacked) == 1 and stacked[0][0].settings.model.kind == "mlp"
     plain = group_specs(specs, {specs[0].data_id: ds}, enabled=False)
     assert plain == [(s,) for s in specs] and not any(isinstance(i, Stacked) for i in plain)
+
+
+BATCH_NORM = """
+    name = "bn"
+    seeds = [1, 2]
+    [data]
+    source = "digits"
+    [model]
+    hidden = [64, 32]
+    batch_norm = true
+    [train]
+    epochs = 1
+    batch_size = 32
+    [factors]
+    "train.optimizer" = {optimizers}
+    "model.dropout" = [0.0, 0.2]
+    "model.activation" = ["relu", "tanh"]
+"""
+
+
+def test_batch_norm_agrees_with_the_single_job_path(tmp_path):
+    """Per-member batch statistics, running statistics for evaluation: as nn.BatchNorm1d."""
+    _, specs, ds = grid_of(tmp_path, BATCH_NORM.format(optimizers='["sgd", "momentum"]'))
+    assert len(specs) == 16 and len({stack_key(s) for s in specs}) == 2  # one group per activation
+    for act in ("relu", "tanh"):
+        _agrees_with_single_jobs([s for s in specs if s.settings.model.activation == act], ds)
+
+
+def test_batch_norm_with_adam_differs_only_as_rounding_moves_it(tmp_path):
+    """A hidden layer's bias before batch normalization has a true gradient of 0 and a
+    computed one of rounding noise, which Adam scales up to a step of about lr whatever its
+    size: both paths then move those biases by rounding's whim, and every member differs
+    from its single-path run no more than ten times what float32 rounding of the inputs
+    alone does to that run."""
+    _, specs, ds = grid_of(tmp_path, BATCH_NORM.format(optimizers='["adam"]'))
+    _agrees_with_single_jobs([s for s in specs if s.settings.model.activation == "relu"], ds, explained_only=True)
 
 
 @pytest.mark.parametrize("source", ["wine", "diabetes"])

@@ -44,7 +44,6 @@ def stack_key(spec: JobSpec) -> str | None:
     m, t = spec.settings.model, spec.settings.train
     if (
         m.kind != "mlp"
-        or m.batch_norm
         or t.optimizer not in STACKED_OPTIMIZERS
         or t.checkpoint_every
         or t.time_limit

@@ -134,7 +134,7 @@ class StackedBackend:
         # Initialized member by member with each member's own generator, in the single-job
         # path's layer order and (out, in) layout, so both paths start from the same weights.
         self.widths = widths = [features, *model_s.hidden, n_out]
-        self.net = net = StackedMLP(K, widths, model_s.activation, model_s.leaky_slope)
+        self.net = net = StackedMLP(K, widths, model_s.activation, model_s.leaky_slope, batch_norm=model_s.batch_norm)
         act_gain = gain(model_s.activation, model_s.leaky_slope)
         for i, w in enumerate(net.weights):
             for k, s in enumerate(specs):
@@ -176,7 +176,7 @@ class StackedBackend:
         bs = self.batch
         xb, yb = self.X_epoch[:, step * bs : (step + 1) * bs], self.y_epoch[:, step * bs : (step + 1) * bs]
         m = xb.shape[1]  # this mini-batch's rows per member
-        logits = self.net.forward(xb, self.dropout.masks(m), keep=True)
+        logits = self.net.forward(xb, self.dropout.masks(m), keep=True, train=True)
         values, self._dout = self.loss_grad(logits, yb)
         return values.tolist(), m
 

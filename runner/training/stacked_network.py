@@ -76,13 +76,15 @@ class _Workspace:
     mode, in filling them) than their arithmetic. Backward's buffers come on first need.
     Each is ``aligned``: a member's block sits at the same alignment in every group."""
 
-    def __init__(self, K: int, rows: int, widths: list[int], in_place: bool, dtype):
+    def __init__(self, K: int, rows: int, widths: list[int], in_place: bool, dtype, batch_norm: bool = False):
         self.new = lambda w: aligned(K, (rows, w), dtype)
-        self.widths = widths
+        self.widths, self.batch_norm = widths, batch_norm
         hidden = widths[1:-1]
-        self.z = [self.new(w) for w in hidden]
-        self.a = self.z if in_place else [self.new(w) for w in hidden]
-        self.zb, self.ab = [block(z) for z in self.z], [block(a) for a in self.a]
+        self.z = [self.new(w) for w in hidden]  # each hidden layer's product plus bias
+        self.xhat = [self.new(w) for w in hidden] if batch_norm else None  # normalized z
+        self.pre = [self.new(w) for w in hidden] if batch_norm else self.z  # the activation's input
+        self.a = self.pre if in_place else [self.new(w) for w in hidden]
+        self.preb, self.ab = [block(z) for z in self.pre], [block(a) for a in self.a]
         self.logits = aligned(K, (widths[-1], rows), dtype)
         self._train = None
         self._np: dict = {}
@@ -95,8 +97,8 @@ class _Workspace:
             self._np[key] = (t if i is None else t[i]).numpy()
         return self._np[key]
 
-    def __getattr__(self, name):  # dropped, dh, dhb, dout: only for training steps
-        if name not in ("dropped", "dh", "dhb", "dout"):
+    def __getattr__(self, name):  # dropped, dh, dhb, dout, scratch: only for training steps
+        if name not in ("dropped", "dh", "dhb", "dout", "scratch"):
             raise AttributeError(name)
         if self._train is None:
             K, outputs, rows = self.logits.shape
@@ -106,19 +108,28 @@ class _Workspace:
                 "dh": dh,  # gradients at each hidden layer's output, then (in place) its input
                 "dhb": [block(d) for d in dh],
                 "dout": aligned(K, (outputs, rows), self.logits.dtype),
+                "scratch": [self.new(w) for w in self.widths[1:-1]] if self.batch_norm else None,
             }
         return self._train[name]
 
 
 class StackedMLP:
     def __init__(
-        self, members: int, widths: list[int], activation: str, slope: float = 0.01, dtype: torch.dtype = torch.float32
+        self,
+        members: int,
+        widths: list[int],
+        activation: str,
+        slope: float = 0.01,
+        dtype: torch.dtype = torch.float32,
+        batch_norm: bool = False,
     ):
         self.K = members
         self.widths = list(widths)
         self.dtype = dtype
+        self.batch_norm = batch_norm
         shapes = list(zip(widths[1:], widths))  # (out, in) per layer
-        self.P = P = sum(o * i + o for o, i in shapes)
+        hidden = widths[1:-1]
+        self.P = P = sum(o * i + o for o, i in shapes) + (2 * sum(hidden) if batch_norm else 0)
         # member k's parameters are row k of a (K, P) buffer, layer by layer: weights then bias;
         # rows padded with zeros to a multiple of ALIGN (see ``aligned``), which every
         # optimizer step and penalty leaves at zero
@@ -135,6 +146,9 @@ class StackedMLP:
             self.biases.append(self.flat[:, offset : offset + o])
             self.gb.append(self.gflat[:, offset : offset + o])
             offset += o
+        self.norms: list = []  # each hidden layer's StackedBatchNorm (batch_norm), after its bias
+        if batch_norm:
+            offset = self._add_norms(hidden, offset)
         self._w_np = [w.numpy() for w in self.weights]
         self._wT = [w.transpose(1, 2) for w in self.weights]  # views made once, not each step
         self._bias_rows = [b.unsqueeze(1) for b in self.biases[:-1]]
@@ -145,17 +159,39 @@ class StackedMLP:
         self._work: dict[int, _Workspace] = {}
         self._saved = None
 
+    def _add_norms(self, hidden: list[int], offset: int) -> int:
+        """Batch normalization's gamma (from 1) and beta (from 0) after the layers in the
+        parameter buffer (never decayed: is_weight 0), running statistics in ``stats``."""
+        from runner.training.stacked_batchnorm import StackedBatchNorm
+
+        self.stats = aligned(self.K, (2 * sum(hidden),), self.dtype)  # running means, then variances
+        where = 0
+        for o in hidden:
+            gamma, beta = self.flat[:, offset : offset + o], self.flat[:, offset + o : offset + 2 * o]
+            grads = self.gflat[:, offset : offset + o], self.gflat[:, offset + o : offset + 2 * o]
+            mean, var = self.stats[:, where : where + o], self.stats[:, where + o : where + 2 * o]
+            gamma.fill_(1.0)
+            var.fill_(1.0)
+            self.norms.append(StackedBatchNorm(gamma, beta, *grads, mean, var))
+            offset, where = offset + 2 * o, where + 2 * o
+        return offset
+
     def member(self, k: int) -> torch.Tensor:
-        """A copy of member k's parameters, for restoring its best epoch later."""
+        """A copy of member k's parameters (and running statistics), for restoring its best
+        epoch later."""
+        if self.batch_norm:
+            return torch.cat([self.flat[k, : self.P], self.stats[k]])
         return self.flat[k, : self.P].clone()
 
     def load_member(self, k: int, saved: torch.Tensor) -> None:
-        self.flat[k, : self.P].copy_(saved)
+        self.flat[k, : self.P].copy_(saved[: self.P])
+        if self.batch_norm:
+            self.stats[k].copy_(saved[self.P :])
 
     def workspace(self, rows: int) -> _Workspace:
         """The reused buffers for forward-backward passes over ``rows`` rows per member."""
         if rows not in self._work:
-            self._work[rows] = _Workspace(self.K, rows, self.widths, self.in_place, self.dtype)
+            self._work[rows] = _Workspace(self.K, rows, self.widths, self.in_place, self.dtype, self.batch_norm)
         return self._work[rows]
 
     def release(self, rows: int) -> None:
@@ -169,12 +205,15 @@ class StackedMLP:
             out[:, :, start : start + chunk] = self.forward(x[:, start : start + chunk])
         return out
 
-    def forward(self, x: torch.Tensor, masks: list | None = None, keep: bool = False) -> torch.Tensor:
+    def forward(
+        self, x: torch.Tensor, masks: list | None = None, keep: bool = False, train: bool = False
+    ) -> torch.Tensor:
         """Logits (K, outputs, rows) for inputs ``x`` (K, rows, features). ``masks``: for the
         input and each hidden layer, a scaled dropout mask (K, rows, width) or None.
         Works in the reused buffers of ``workspace(rows)``: the logits and ``hidden`` hold
         until the next forward over as many rows. With ``keep``, also holds what
-        ``backward`` needs."""
+        ``backward`` needs. ``train``: batch normalization by the batch's statistics (and
+        updating the running ones), not by the running ones."""
         ws = self.workspace(x.shape[1])
         inputs = []  # each layer's input: (tensor, its numpy view or None)
         self.hidden = []
@@ -184,7 +223,9 @@ class StackedMLP:
         for i in range(len(self.weights) - 1):
             inputs.append((h, h_np))
             torch.baddbmm(self._bias_rows[i], h, self._wT[i], out=ws.z[i])
-            self.act(ws.zb[i], ws.ab[i])  # over whole blocks (see ``aligned``)
+            if self.norms:
+                self.norms[i].forward(ws.z[i], ws.pre[i], ws.xhat[i], train)
+            self.act(ws.preb[i], ws.ab[i])  # over whole blocks (see ``aligned``)
             h, h_np = ws.a[i], ws.arr("a", i)
             self.hidden.append(h)
             if masks and masks[i + 1] is not None:
@@ -213,7 +254,9 @@ class StackedMLP:
                 dh.mul_(masks[i + 1])
             # elementwise, so it may write over its own input: one buffer less to keep in cache;
             # over whole blocks (see ``aligned``)
-            self.act_back(ws.dhb[i], None if self.in_place else ws.zb[i], ws.ab[i], ws.dhb[i])
+            self.act_back(ws.dhb[i], None if self.in_place else ws.preb[i], ws.ab[i], ws.dhb[i])
+            if self.norms:
+                self.norms[i].backward(dh, ws.xhat[i], ws.scratch[i])
             dz, dz_np = dh, ws.arr("dh", i)
             np.matmul(_T(dz_np), inputs[i], out=self._gw_np[i])
             torch.sum(dz, dim=1, out=self.gb[i])
