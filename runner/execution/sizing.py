@@ -24,7 +24,8 @@ __all__ = ["LONG_ITEM", "choose_workers", "cut_long_groups", "item_seconds", "pr
 # The constants are rough on purpose (the choice only has to be right away from the break-
 # even point, where both choices cost about the same); their measurements are in
 # bench/RESULTS.md ("Choosing the worker count").
-FLOP_RATE = 20e9  # arithmetic per second of a training step at these sizes, one core
+FLOP_RATE = 20e9  # arithmetic per second of a single job's training step, one core
+STACKED_FLOP_RATE = 40e9  # the same of a stacked group's (bigger products, fewer calls)
 STACKED_STEP = 150e-6  # seconds of per-call overhead per stacked group step (plus per member)
 STACKED_MEMBER_STEP = 20e-6
 SINGLE_STEP = 500e-6  # the single-job path: autograd and torch.optim per step
@@ -64,10 +65,8 @@ def item_seconds(item: Sequence[JobSpec], ds: Dataset) -> float:
     macs, _ = _macs(spec, ds)
     flops = len(item) * train.epochs * (6 * macs * n_train + 2 * macs * n_val)
     if isinstance(item, Stacked):
-        overhead = steps * (STACKED_STEP + len(item) * STACKED_MEMBER_STEP)
-    else:
-        overhead = len(item) * steps * SINGLE_STEP
-    return flops / FLOP_RATE + overhead
+        return flops / STACKED_FLOP_RATE + steps * (STACKED_STEP + len(item) * STACKED_MEMBER_STEP)
+    return flops / FLOP_RATE + len(item) * steps * SINGLE_STEP
 
 
 def predicted_wall(costs: Sequence[float], workers: int) -> float:
