@@ -48,6 +48,19 @@ def test_fingerprint_is_the_one_computed_from_the_imported_version():
         assert BundledDataset(name).fingerprint == hashlib.sha256(text.encode()).hexdigest()
 
 
+@pytest.mark.parametrize("name", ["iris", "wine", "breast_cancer", "digits"])
+def test_read_from_sklearns_files_bit_for_bit_as_its_loaders(name):
+    """Read without importing scikit-learn, equal to what its loaders return (the reference)."""
+    from sklearn import datasets
+
+    from runner.datasets.bundled import _read_arrays
+
+    X, y = _read_arrays(name)
+    bunch = getattr(datasets, f"load_{name}")()
+    assert X.dtype == bunch.data.dtype and np.array_equal(X, bunch.data) and np.array_equal(y, bunch.target)
+    assert BundledDataset(name).feature_names == tuple(bunch.feature_names) or name == "digits"
+
+
 def test_travels_as_its_name_and_refuses_another_sklearn():
     ds = BundledDataset("wine")
     assert len(pickle.dumps(ds)) < 300  # not the arrays
@@ -61,10 +74,10 @@ def test_travels_as_its_name_and_refuses_another_sklearn():
 
 
 @pytest.mark.slow
-def test_describing_imports_no_sklearn():
+def test_describing_and_loading_import_no_sklearn():
     code = (
         "import sys\nfrom runner.datasets.bundled import BundledDataset\n"
-        "d = BundledDataset('digits')\nd.shape, d.classes, d.fingerprint\n"
+        "d = BundledDataset('digits')\nd.shape, d.classes, d.fingerprint, d.X, d.y\n"
         "print('sklearn' in sys.modules, 'scipy' in sys.modules)"
     )
     out = subprocess.run([PYTHON, "-c", code], env=subprocess_env(), capture_output=True, text=True, check=True)

@@ -12,8 +12,12 @@ fingerprint refuses to load it, since its arrays could differ.
 
 from __future__ import annotations
 
+import csv
+import gzip
 import hashlib
+import importlib.util
 from importlib import metadata
+from pathlib import Path
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -87,11 +91,10 @@ class BundledDataset(Dataset):
     def _load(self) -> tuple[np.ndarray, np.ndarray, tuple[str, ...]]:
         if self._arrays is None:
             name, n_samples, noise, version = self._args
-            import sklearn
-
-            if sklearn.__version__ != version:
+            here = _sklearn_version()
+            if here != version:
                 raise DataError(
-                    f"this process has scikit-learn {sklearn.__version__}, the grid was planned with {version}",
+                    f"this process has scikit-learn {here}, the grid was planned with {version}",
                     key="data.source",
                     value=name,
                     hint="Install the same scikit-learn version wherever the jobs run",
@@ -99,13 +102,51 @@ class BundledDataset(Dataset):
             object.__setattr__(self, "_arrays", load_bundled(name, n_samples, noise))
         return self._arrays
 
+    @property
+    def feature_names(self) -> tuple[str, ...]:
+        names = self._load()[2]
+        return tuple(names) if isinstance(names, _LazyNames) else names
+
     X = property(lambda self: self._load()[0])
     y = property(lambda self: self._load()[1])
-    feature_names = property(lambda self: self._load()[2])
+
+
+def _files() -> Path:
+    """scikit-learn's folder of bundled data files, found without importing scikit-learn."""
+    spec = importlib.util.find_spec("sklearn")
+    return Path(next(iter(spec.submodule_search_locations))) / "datasets" / "data"
+
+
+def _read_csv(name: str) -> tuple[np.ndarray, np.ndarray]:
+    """(X float64, y) of one of scikit-learn's bundled CSV files, parsed as its
+    datasets.load_csv_data parses them: a header row (rows, columns, class names), then
+    each row's numbers with the class last."""
+    with (_files() / name).open(encoding="utf-8") as f:
+        rows = list(csv.reader(f))[1:]
+    return np.array([r[:-1] for r in rows], dtype=np.float64), np.array([int(r[-1]) for r in rows])
+
+
+def _read_arrays(name: str) -> tuple[np.ndarray, np.ndarray] | None:
+    """X and y of iris, wine, breast_cancer or digits read from scikit-learn's files, bit
+    for bit what its loaders return (tests/test_bundled.py), or None for the others."""
+    if name in ("iris", "wine", "breast_cancer"):
+        return _read_csv({"wine": "wine_data.csv"}.get(name, f"{name}.csv"))
+    if name == "digits":  # datasets.load_digits: np.loadtxt of the gzipped CSV, the class last
+        with gzip.open(_files() / "digits.csv.gz", "rt") as f:
+            data = np.loadtxt(f, delimiter=",")
+        return data[:, :-1], data[:, -1].astype(int)
+    return None
 
 
 def load_bundled(name: str, n_samples: int, noise: float) -> tuple[np.ndarray, np.ndarray, tuple[str, ...]]:
-    """(X, y, feature names) of a bundled set, through scikit-learn."""
+    """(X, y, feature names) of a bundled set: read from scikit-learn's files where that is
+    simple (importing scikit-learn costs as much as importing torch), else through it."""
+    arrays = _read_arrays(name)
+    if arrays is not None:
+        X, y = arrays
+        if name == "digits":  # kept as 8x8 single-channel images; an MLP flattens them
+            return X.astype(np.float32).reshape(-1, 1, 8, 8), y.astype(np.int64), tuple(f"pixel{i}" for i in range(64))
+        return X.astype(np.float32), y.astype(np.int64), _LazyNames(name)
     from sklearn import datasets
 
     if name in ("moons", "circles"):
@@ -121,6 +162,19 @@ def load_bundled(name: str, n_samples: int, noise: float) -> tuple[np.ndarray, n
     if name == "digits":  # kept as 8x8 single-channel images; an MLP flattens them
         return X.reshape(-1, 1, 8, 8), bunch.target.astype(np.int64), tuple(f"pixel{i}" for i in range(64))
     return X, bunch.target.astype(np.int64), tuple(bunch.feature_names)
+
+
+class _LazyNames:
+    """A bundled set's column names, which only scikit-learn's loader knows: asked of it
+    (importing it) only if someone reads them."""
+
+    def __init__(self, name: str):
+        self.name = name
+
+    def __iter__(self):
+        from sklearn import datasets
+
+        return iter(getattr(datasets, f"load_{self.name}")().feature_names)
 
 
 def bundled(data: DataSettings) -> BundledDataset:

@@ -65,8 +65,6 @@ def prepare_process(threads: int, datasets: dict[str, Dataset] | None = None, wo
     if datasets is not None:
         _DATASETS = datasets
     warnings.filterwarnings("ignore", module="sklearn")
-    import sklearn.model_selection  # noqa: F401  (each job's split: imported here, not in a job's time)
-
     if worker:
         signal.signal(signal.SIGINT, signal.SIG_IGN)  # the main process decides what Ctrl-C does
 
@@ -78,9 +76,14 @@ def ready_for(item: tuple[JobSpec, ...]) -> None:
     """Import what this work item's path needs before its clock starts. The single-job path's
     torch.optim imports torch's compiler front end when it builds its first optimizer (over
     a second, enough to trip a short time limit); stacked groups never need it, so workers
-    and the fork server do not import it unless a single job comes."""
+    and the fork server do not import it unless a single job comes. A bundled data set is
+    loaded here too, on its first use in this process (datasets/bundled.py)."""
     global _SINGLE_PATH_READY
     from runner.training.grouping import Stacked
+
+    ds = _DATASETS.get(item[0].data_id)
+    if ds is not None:
+        ds.X  # noqa: B018  (loads it, if it is loaded lazily)
 
     if not _SINGLE_PATH_READY and not isinstance(item, Stacked):
         import torch
