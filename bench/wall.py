@@ -17,7 +17,9 @@ Goals (issue 22): wall <= 1.5x summed training from 64 jobs up and <= training +
 every grid; the default never slower than --workers 1; extension <= 1.2x the new jobs'
 own run; no-op rerun and board under 1.5 s.
 
-Run: python bench/wall.py [--rounds N] [--only NAME ...]
+Run: python bench/wall.py [--rounds N] [--only NAME ...] [--compare OTHER_CHECKOUT]
+(--compare times another checkout of the project alongside, each command alternating
+between the two: its rows follow this tree's, marked "(other)".)
 """
 
 from __future__ import annotations
@@ -107,11 +109,13 @@ def recipe_file(folder: Path, name: str, seeds: list[int] | None = None) -> Path
     return path
 
 
-def timed(*args: str) -> tuple[float, str]:
-    """(wall seconds, stderr) of one CLI command in a fresh interpreter."""
+def timed(*args: str, tree: Path = ROOT) -> tuple[float, str]:
+    """(wall seconds, stderr) of one CLI command in a fresh interpreter, of this checkout of
+    the project or another (``--compare``)."""
+    env = {**ENV, "PYTHONPATH": str(tree) + os.pathsep + os.environ.get("PYTHONPATH", "")}
     start = time.perf_counter()
     proc = subprocess.run(
-        [sys.executable, "-m", "runner", *args], env=ENV, capture_output=True, text=True, cwd=str(ROOT)
+        [sys.executable, "-m", "runner", *args], env=env, capture_output=True, text=True, cwd=str(tree)
     )
     wall = time.perf_counter() - start
     if proc.returncode != 0:
@@ -132,55 +136,54 @@ def how(stderr: str) -> str:
     return lines[0] if lines else "-"
 
 
-def run_grid(folder: Path, name: str, rounds: int) -> dict:
+def run_grid(folder: Path, name: str, rounds: int, trees: list[Path]) -> list[dict]:
+    """One grid's figures for each tree; each command alternates between the trees (and
+    between default options and --workers 1) round by round."""
     recipe = recipe_file(folder, name)
-    best = {"default": float("inf"), "w1": float("inf")}
-    trained = {"default": [], "w1": []}
-    note = "-"
+    best = [{"default": float("inf"), "w1": float("inf"), "noop": float("inf"), "board": float("inf")} for _ in trees]
+    trained = [{"default": [], "w1": []} for _ in trees]
+    notes = ["-"] * len(trees)
+    order = list(enumerate(trees))
     for r in range(rounds):
-        order = ("default", "w1") if r % 2 == 0 else ("w1", "default")
-        for mode in order:
-            store = folder / f"{name}-{mode}-{r}.sqlite"
-            extra = ["--workers", "1"] if mode == "w1" else []
-            wall, err = timed("run", str(recipe), "--store", str(store), *extra)
-            best[mode] = min(best[mode], wall)
-            trained[mode].append(stored(store)[1])
-            if mode == "default":
-                note = how(err)
-    store = folder / f"{name}-default-0.sqlite"
-    noop = min(timed("run", str(recipe), "--store", str(store))[0] for _ in range(2))
-    board = min(timed("board", str(recipe), "--store", str(store))[0] for _ in range(2))
-    train = min(trained["default"])
-    return {
-        "jobs": stored(store)[0],
-        "default": best["default"],
-        "w1": best["w1"],
-        "train": train,
-        "train_w1": min(trained["w1"]),
-        "noop": noop,
-        "board": board,
-        "note": note,
-    }
+        for mode in ("default", "w1") if r % 2 == 0 else ("w1", "default"):
+            for t, tree in order if r % 2 == 0 else order[::-1]:
+                store = folder / f"{name}-{t}-{mode}-{r}.sqlite"
+                extra = ["--workers", "1"] if mode == "w1" else []
+                wall, err = timed("run", str(recipe), "--store", str(store), *extra, tree=tree)
+                best[t][mode] = min(best[t][mode], wall)
+                trained[t][mode].append(stored(store)[1])
+                if mode == "default":
+                    notes[t] = how(err)
+    for _ in range(2):
+        for t, tree in order:
+            store = str(folder / f"{name}-{t}-default-0.sqlite")
+            best[t]["noop"] = min(best[t]["noop"], timed("run", str(recipe), "--store", store, tree=tree)[0])
+            best[t]["board"] = min(best[t]["board"], timed("board", str(recipe), "--store", store, tree=tree)[0])
+    jobs = stored(folder / f"{name}-0-default-0.sqlite")[0]
+    return [
+        {**b, "jobs": jobs, "train": min(tr["default"]), "train_w1": min(tr["w1"]), "note": note}
+        for b, tr, note in zip(best, trained, notes)
+    ]
 
 
-def extension(folder: Path, rounds: int) -> dict:
+def extension(folder: Path, rounds: int, tree: Path = ROOT) -> dict:
     """Extend a finished 3-seed grid (16 configurations) to 5 seeds, against the 2 new
     seeds alone; alternating, least of each."""
     three, five, two = (recipe_file(folder, "digits-64", s) for s in ([1, 2, 3], [1, 2, 3, 4, 5], [4, 5]))
     best = {"extend": float("inf"), "alone": float("inf")}
     trained = {"extend": float("inf"), "alone": float("inf")}
     for r in range(rounds):
-        store = folder / f"extend-{r}.sqlite"
-        timed("run", str(three), "--store", str(store), "-q")
+        store = folder / f"extend-{tree.name}-{r}.sqlite"
+        timed("run", str(three), "--store", str(store), "-q", tree=tree)
         before = stored(store)
         for mode in ("extend", "alone") if r % 2 == 0 else ("alone", "extend"):
             if mode == "extend":
-                wall, _ = timed("run", str(five), "--store", str(store))
+                wall, _ = timed("run", str(five), "--store", str(store), tree=tree)
                 n, seconds = stored(store)
                 n, seconds = n - before[0], seconds - before[1]
             else:
-                target = folder / f"alone-{r}.sqlite"
-                wall, _ = timed("run", str(two), "--store", str(target))
+                target = folder / f"alone-{tree.name}-{r}.sqlite"
+                wall, _ = timed("run", str(two), "--store", str(target), tree=tree)
                 n, seconds = stored(target)
             best[mode] = min(best[mode], wall)
             trained[mode] = min(trained[mode], seconds)
@@ -195,7 +198,9 @@ def main() -> None:
     parser = argparse.ArgumentParser()
     parser.add_argument("--rounds", type=int, default=2)
     parser.add_argument("--only", nargs="*", default=None, help="grid names (default: all), or 'extension'")
+    parser.add_argument("--compare", type=Path, default=None, help="another checkout, timed alternately (paired)")
     args = parser.parse_args()
+    trees = [ROOT] + ([args.compare.resolve()] if args.compare else [])
     cores = len(os.sched_getaffinity(0))
     cpuinfo = Path("/proc/cpuinfo").read_text().splitlines()
     cpu = next((ln.split(":", 1)[1].strip() for ln in cpuinfo if ln.startswith("model name")), "?")
@@ -213,30 +218,33 @@ def main() -> None:
         print(header)
         missed = 0
         for name in names:
-            r = run_grid(folder, name, args.rounds)
-            ratio, extra = r["default"] / r["train"], r["default"] - r["train"]
-            goals = [
-                extra <= 2.0 and (r["jobs"] < 64 or ratio <= 1.5),
-                r["default"] <= r["w1"] * 1.05,  # within 5%: two timings of one thing on a shared machine
-                r["noop"] < 1.5 and r["board"] < 1.5,
-            ]
-            missed += goals.count(False)
-            print(
-                f"{name:<11} {r['jobs']:>4} {r['default']:>8.2f} {r['w1']:>7.2f} {r['train']:>6.2f} "
-                f"{ratio:>7.2f} {extra:>7.2f} {r['default'] / r['w1']:>6.2f} {r['noop']:>6.2f} {r['board']:>6.2f}  "
-                f"wall {verdict(goals[0])}, default {verdict(goals[1])}, read {verdict(goals[2])}; {r['note']}"
-            )
-            sys.stdout.flush()
+            for t, r in enumerate(run_grid(folder, name, args.rounds, trees)):
+                ratio, extra = r["default"] / r["train"], r["default"] - r["train"]
+                goals = [
+                    extra <= 2.0 and (r["jobs"] < 64 or ratio <= 1.5),
+                    r["default"] <= r["w1"] * 1.05,  # within 5%: two timings of one thing on a shared machine
+                    r["noop"] < 1.5 and r["board"] < 1.5,
+                ]
+                missed += goals.count(False) if t == 0 else 0
+                label = name if t == 0 else "  (other)"
+                print(
+                    f"{label:<11} {r['jobs']:>4} {r['default']:>8.2f} {r['w1']:>7.2f} {r['train']:>6.2f} "
+                    f"{ratio:>7.2f} {extra:>7.2f} {r['default'] / r['w1']:>6.2f} {r['noop']:>6.2f} {r['board']:>6.2f}  "
+                    f"wall {verdict(goals[0])}, default {verdict(goals[1])}, read {verdict(goals[2])}; {r['note']}"
+                )
+                sys.stdout.flush()
         if args.only is None or "extension" in args.only:
-            e = extension(folder, args.rounds)
-            ok = e["extend"] <= 1.2 * e["alone"]
-            missed += not ok
-            print(
-                f"extension 3 -> 5 seeds (16 configurations, {e['new_jobs']} new jobs): {e['extend']:.2f} s, "
-                f"the 2 seeds alone {e['alone']:.2f} s, ratio {e['extend'] / e['alone']:.2f} ({verdict(ok)}); "
-                f"stored training of the new jobs {e['train_extend']:.2f} s vs alone {e['train_alone']:.2f} s"
-            )
-        print(f"{missed} goal(s) missed")
+            for t, tree in enumerate(trees):
+                e = extension(folder, args.rounds, tree)
+                ok = e["extend"] <= 1.2 * e["alone"]
+                missed += not ok if t == 0 else 0
+                print(
+                    f"{'' if t == 0 else '(other) '}extension 3 -> 5 seeds (16 configurations, {e['new_jobs']} new "
+                    f"jobs): {e['extend']:.2f} s, the 2 seeds alone {e['alone']:.2f} s, ratio "
+                    f"{e['extend'] / e['alone']:.2f} ({verdict(ok)}); stored training of the new jobs "
+                    f"{e['train_extend']:.2f} s vs alone {e['train_alone']:.2f} s"
+                )
+        print(f"{missed} goal(s) missed (this tree)")
 
 
 if __name__ == "__main__":
