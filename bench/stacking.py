@@ -286,9 +286,17 @@ class ProductClock:
         """Seconds the recorded product calls take replayed alone: each distinct call (same
         shapes and strides, random operands) as many times as the run made it, back to back
         with warm caches, best of 3. The best these products can do on this machine inside
-        any training loop that keeps this layout."""
+        any training loop that keeps this layout. One thread for numpy's BLAS as for torch, as
+        in the run (the executor restores the process's own limits after a run, and numpy's
+        default is a thread per core: the replay read 2-4x too fast without this)."""
         import numpy as np
+        from threadpoolctl import threadpool_limits
 
+        torch.set_num_threads(1)
+        with threadpool_limits(1, user_api="blas"):
+            return self._replay(np)
+
+    def _replay(self, np) -> float:
         total = 0.0
         for (name, *layouts), count in self.calls.items():
             operands = [_operand(lay, torch if name == "baddbmm" else np) for lay in layouts]

@@ -347,3 +347,42 @@ def test_bundle_encodes_text_and_empty_cells_as_training_did(tmp_path):
     got = accuracy_score([r["state"] for r in test], [r["predicted"] for r in test])
     assert got == desc["metrics"]["test"]["accuracy"]
     assert "(stored: the same)" in next(ln for ln in predicted.stdout.splitlines() if ln.startswith("test,"))
+
+
+def test_a_stacked_batch_norm_member_exports_its_running_statistics(tmp_path):
+    """A batch-norm MLP trained stacked: the bundle holds nn.BatchNorm1d's weight, bias and
+    running statistics for the member, so the single network it loads into scores the
+    stored accuracies exactly (counted by sklearn.metrics from the predictions file)."""
+    path = write_recipe(
+        tmp_path,
+        """
+        name = "bn-export"
+        seeds = [3, 4]
+        [data]
+        source = "wine"
+        [model]
+        hidden = [17, 9]
+        activation = "elu"
+        batch_norm = true
+        [train]
+        optimizer = "adam"
+        lr = 3e-3
+        batch_size = 13
+        epochs = 3
+        """,
+    )
+    store = tmp_path / "s.sqlite"
+    ran = invoke("run", path, "--store", store, "--workers", 1)
+    assert ran.exit_code == 0 and "stacked group" in ran.stderr and "warning" not in ran.stderr, ran.stderr
+    out = tmp_path / "bundle"
+    assert invoke("export", path, "--store", store, "--out", out).exit_code == 0
+    desc = json.loads((out / "model.json").read_text())
+    state = load_file(out / "weights.safetensors")
+    assert any(k.endswith("running_mean") for k in state) and any(k.endswith("num_batches_tracked") for k in state)
+    preds = tmp_path / "preds.csv"
+    assert invoke("predict", out, "wine", "--out", preds).exit_code == 0
+    rows = read_preds(preds)
+    for split in ("val", "test"):
+        part = [r for r in rows if r["split"] == split]
+        got = accuracy_score([r["target"] for r in part], [r["predicted"] for r in part])
+        assert got == desc["metrics"][split]["accuracy"]

@@ -98,9 +98,9 @@ def test_run_says_how_its_jobs_will_train(tmp_path):
     path = write_recipe(tmp_path, RECIPE)
     stacked = invoke("run", path, "--store", tmp_path / "a.sqlite", "--workers", 1)
     assert stacked.exit_code == 0, stacked.stderr
-    assert "6 jobs, 0 done, 6 to run\ntraining 1 stacked group of 6 jobs\n[1/6]" in stacked.stderr
+    assert "6 jobs, 0 done, 6 to run\ntraining 1 stacked group of 6 jobs in this process\n[1/6]" in stacked.stderr
     alone = invoke("run", path, "--store", tmp_path / "b.sqlite", "--workers", 1, "--no-stack")
-    assert "training 6 jobs one at a time\n" in alone.stderr
+    assert "training 6 jobs one at a time in this process\n" in alone.stderr
     again = invoke("run", path, "--store", tmp_path / "a.sqlite", "--workers", 1)
     assert "training" not in again.stderr  # nothing left to run
     quiet = invoke("run", path, "--store", tmp_path / "c.sqlite", "--workers", 1, "-q")

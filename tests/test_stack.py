@@ -9,6 +9,7 @@ import torch
 from conftest import invoke, write_recipe
 
 from runner.components.optimizers import STACKED_OPTIMIZERS, StackedOptimizer
+from runner.datasets.sources import Dataset
 from runner.execution.executors import prepare_process
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
@@ -44,6 +45,7 @@ def test_stacked_steps_match_torch_optim_member_by_member(kind, fused):
         "momentum": torch.tensor([0.9, 0.5, 0.0], dtype=torch.float64),
         "beta1": torch.tensor([0.9, 0.8, 0.95], dtype=torch.float64),
         "beta2": torch.tensor([0.999, 0.99, 0.9], dtype=torch.float64),
+        "alpha": torch.tensor([0.99, 0.9, 0.5], dtype=torch.float64),
         "eps": torch.tensor([1e-8, 1e-6, 1e-7], dtype=torch.float64),
         "weight_decay": torch.tensor([0.0, 0.1, 0.01], dtype=torch.float64),
     }
@@ -58,7 +60,7 @@ def test_stacked_steps_match_torch_optim_member_by_member(kind, fused):
     for k in range(K):
         w_k = W[k].detach().clone().requires_grad_()
         b_k = b[k].detach().clone().requires_grad_()
-        lr, mu, wd = (float(hyper[n][k]) for n in ("lr", "momentum", "weight_decay"))
+        lr, mu, wd, alpha = (float(hyper[n][k]) for n in ("lr", "momentum", "weight_decay", "alpha"))
         betas, eps = (float(hyper["beta1"][k]), float(hyper["beta2"][k])), float(hyper["eps"][k])
         groups = [{"params": [w_k], "weight_decay": wd}, {"params": [b_k], "weight_decay": 0.0}]
         opt = {
@@ -67,6 +69,8 @@ def test_stacked_steps_match_torch_optim_member_by_member(kind, fused):
             "nesterov": lambda: torch.optim.SGD(groups, lr=lr, momentum=mu, nesterov=True),
             "adam": lambda: torch.optim.Adam(groups, lr=lr, betas=betas, eps=eps),
             "adamw": lambda: torch.optim.AdamW(groups, lr=lr, betas=betas, eps=eps),
+            "rmsprop": lambda: torch.optim.RMSprop(groups, lr=lr, alpha=alpha, eps=eps),
+            "adagrad": lambda: torch.optim.Adagrad(groups, lr=lr, eps=eps),
         }[kind]()
         refs.append((w_k, b_k, opt))
     x = torch.randn(8, 4, dtype=torch.float64, generator=g)
@@ -107,16 +111,17 @@ def test_members_of_mixed_kinds_step_as_each_kind_alone():
     """One group mixing sgd, adam and nesterov members (non-contiguous) moves each member as
     a group of that kind alone would."""
     g = torch.Generator().manual_seed(3)
-    kinds = ["sgd", "adam", "nesterov", "adam", "sgd"]
+    kinds = ["sgd", "adam", "nesterov", "adam", "sgd", "rmsprop", "adagrad", "rmsprop"]
     K = len(kinds)
     hyper = {
         "momentum": torch.full((K,), 0.9),
         "beta1": torch.full((K,), 0.9),
         "beta2": torch.full((K,), 0.999),
+        "alpha": torch.tensor([0.99] * 6 + [0.9, 0.8]),
         "eps": torch.full((K,), 1e-8),
-        "weight_decay": torch.tensor([0.0, 0.01, 0.1, 0.0, 0.2]),
+        "weight_decay": torch.tensor([0.0, 0.01, 0.1, 0.0, 0.2, 0.0, 0.1, 0.01]),
     }
-    lr = torch.tensor([0.1, 1e-3, 0.05, 3e-3, 0.1])
+    lr = torch.tensor([0.1, 1e-3, 0.05, 3e-3, 0.1, 1e-3, 1e-2, 3e-3])
     W0 = torch.randn(K, 4, 3, generator=g, dtype=torch.float64)
     grads = [torch.randn(K, 4, 3, generator=g, dtype=torch.float64) for _ in range(4)]
     W = W0.clone()
@@ -172,15 +177,16 @@ def _loss_rel(a, b) -> float:
     )
 
 
-def test_one_epoch_agrees_with_the_single_job_path(tmp_path):
-    """Every member's first-epoch losses and val accuracy agree with the job run alone."""
-    _, specs, ds = grid_of(tmp_path, MIXED.format(epochs=1))
-    assert len({stack_key(s) for s in specs}) == 1 and len(specs) == 32
+def _agrees_with_single_jobs(specs, ds, explained_only: bool = False) -> None:
+    """Every member's first-epoch losses and val accuracy agree with the job run alone, to
+    the tolerance above; with ``explained_only``, any member may be past ONE_EPOCH_MAX_RTOL
+    if the single path's own sensitivity explains it (and the median is not checked)."""
     stacked = run_group(specs, ds)
     rel, sensitive = [], []
     # the same data with every value scaled by 1 + N(0, 3e-7): a perturbation of float32 rounding's size
     jitter = np.random.default_rng(0).normal(0.0, 3e-7, ds.X.shape)
-    nudged = dataclasses.replace(ds, X=(ds.X * (1.0 + jitter)).astype(ds.X.dtype))
+    nudged = Dataset(**{f.name: getattr(ds, f.name) for f in dataclasses.fields(Dataset)})  # its arrays, loaded
+    nudged = dataclasses.replace(nudged, X=(ds.X * (1.0 + jitter)).astype(ds.X.dtype))
     for spec, r in zip(specs, stacked):
         single = run_job(spec, ds)
         assert r.diagnostics["stacked"] == len(specs)
@@ -194,8 +200,33 @@ def test_one_epoch_agrees_with_the_single_job_path(tmp_path):
             own = _loss_rel(run_job(spec, nudged), single)  # how far rounding alone moves this member
             sensitive.append((spec.key, worst, own))
             assert own >= worst / 10, (spec.key, worst, own)
-    assert len(sensitive) <= 2, sensitive  # an outlier or two, not a pattern
-    assert float(np.median(rel)) < ONE_EPOCH_MEDIAN_RTOL
+    if not explained_only:
+        assert len(sensitive) <= 2, sensitive  # an outlier or two, not a pattern
+        assert float(np.median(rel)) < ONE_EPOCH_MEDIAN_RTOL
+
+
+def test_one_epoch_agrees_with_the_single_job_path(tmp_path):
+    _, specs, ds = grid_of(tmp_path, MIXED.format(epochs=1))
+    assert len({stack_key(s) for s in specs}) == 1 and len(specs) == 32
+    _agrees_with_single_jobs(specs, ds)
+
+
+@pytest.mark.xfail(
+    strict=True,
+    reason="open finding: with the recipe-wide test split, one member (rmsprop, lr 1e-2, l2 1e-4, "
+    "dropout 0.2, seed 2) differs from the single path by 2.5e-4 in its first-epoch loss while "
+    "nudging its inputs by float32 rounding moves it only 2.5e-6; the other 31 members agree to "
+    "at most 4e-5 (median 5e-7). Not yet explained; kept failing on purpose until it is.",
+)
+def test_rmsprop_and_adagrad_agree_with_the_single_job_path(tmp_path):
+    body = MIXED.format(epochs=1).replace('"model.init" = ["glorot_uniform", "he_normal"]', "")
+    body = body.replace(
+        '"train.lr" = [1e-3, 3e-3]', '"train.lr" = [1e-3, 1e-2]\n    "train.optimizer" = ["rmsprop", "adagrad"]'
+    )
+    _, specs, ds = grid_of(tmp_path, body)
+    assert {s.settings.train.optimizer for s in specs} == {"rmsprop", "adagrad"} and len(specs) == 32
+    assert len({stack_key(s) for s in specs}) == 1
+    _agrees_with_single_jobs(specs, ds)
 
 
 def test_same_final_ranking_as_single_jobs(tmp_path):
@@ -308,20 +339,60 @@ def test_what_is_not_stacked(tmp_path):
         seeds = [1]
         [data]
         source = "digits"
+        [model]
+        batch_norm = true
+        [train]
+        optimizer = "rmsprop"
         [factors]
-        "train.optimizer" = ["adam", "rmsprop"]
-        "model.batch_norm" = [false, true]
+        "model.kind" = ["mlp", "cnn"]
+        "train.checkpoint_every" = [0, 2]
     """,
     )
-    keyed = {(s.settings.train.optimizer, s.settings.model.batch_norm): stack_key(s) for s in specs}
-    assert keyed[("adam", False)] is not None
-    assert keyed[("rmsprop", False)] is None and keyed[("adam", True)] is None
+    keyed = {(s.settings.model.kind, s.settings.train.checkpoint_every): stack_key(s) for s in specs}
+    assert keyed[("mlp", 0)] is not None  # batch norm and rmsprop stack
+    assert keyed[("cnn", 0)] is None and keyed[("mlp", 2)] is None
     items = group_specs(specs, {specs[0].data_id: ds})
     assert sorted(len(i) for i in items) == [1, 1, 1, 1]
     stacked = [i for i in items if isinstance(i, Stacked)]
-    assert len(stacked) == 1 and stacked[0][0].settings.train.optimizer == "adam"
+    assert len(stacked) == 1 and stacked[0][0].settings.model.kind == "mlp"
     plain = group_specs(specs, {specs[0].data_id: ds}, enabled=False)
     assert plain == [(s,) for s in specs] and not any(isinstance(i, Stacked) for i in plain)
+
+
+BATCH_NORM = """
+    name = "bn"
+    seeds = [1, 2]
+    [data]
+    source = "digits"
+    [model]
+    hidden = [64, 32]
+    batch_norm = true
+    [train]
+    epochs = 1
+    batch_size = 32
+    [factors]
+    "train.optimizer" = {optimizers}
+    "model.dropout" = [0.0, 0.2]
+    "model.activation" = ["relu", "tanh"]
+"""
+
+
+def test_batch_norm_agrees_with_the_single_job_path(tmp_path):
+    """Per-member batch statistics, running statistics for evaluation: as nn.BatchNorm1d."""
+    _, specs, ds = grid_of(tmp_path, BATCH_NORM.format(optimizers='["sgd", "momentum"]'))
+    assert len(specs) == 16 and len({stack_key(s) for s in specs}) == 2  # one group per activation
+    for act in ("relu", "tanh"):
+        _agrees_with_single_jobs([s for s in specs if s.settings.model.activation == act], ds)
+
+
+def test_batch_norm_with_adam_differs_only_as_rounding_moves_it(tmp_path):
+    """A hidden layer's bias before batch normalization has a true gradient of 0 and a
+    computed one of rounding noise, which Adam scales up to a step of about lr whatever its
+    size: both paths then move those biases by rounding's whim, and every member differs
+    from its single-path run no more than ten times what float32 rounding of the inputs
+    alone does to that run."""
+    _, specs, ds = grid_of(tmp_path, BATCH_NORM.format(optimizers='["adam"]'))
+    _agrees_with_single_jobs([s for s in specs if s.settings.model.activation == "relu"], ds, explained_only=True)
 
 
 @pytest.mark.parametrize("source", ["wine", "diabetes"])

@@ -7,8 +7,7 @@ import subprocess
 import pytest
 from conftest import PYTHON, invoke, subprocess_env, write_recipe
 
-from runner.execution.forkserver import default_workers, wants_workers
-from runner.recipe.loader import RunSettings
+from runner.execution.forkserver import default_workers
 
 
 def _modules_after(code: str) -> set[str]:
@@ -22,16 +21,16 @@ def _modules_after(code: str) -> set[str]:
     return set(proc.stdout.split())
 
 
-def _cli_alone(args: list[str]) -> tuple[list[str], str]:
+def _cli_alone(args: list[str], heavy: tuple[str, ...] = ("torch",)) -> tuple[list[str], str]:
     """Run one CLI command in a fresh interpreter: (its exit code, the worker fork server's
-    pid or None, whether torch got imported), and its stderr."""
+    pid or None, whether each of ``heavy`` got imported), and its stderr."""
     code = (
         f"import sys\nfrom runner.cli.app import cli\nimport multiprocessing.forkserver as f\n"
         f"try:\n    cli({args!r})\nexcept SystemExit as e:\n"
-        f"    print(e.code, f._forkserver._forkserver_pid, 'torch' in sys.modules)"
+        f"    print(e.code, f._forkserver._forkserver_pid, *(m in sys.modules for m in {heavy!r}))"
     )
     proc = subprocess.run([PYTHON, "-c", code], env=subprocess_env(), capture_output=True, text=True)
-    return proc.stdout.split()[-3:], proc.stderr
+    return proc.stdout.split()[-2 - len(heavy) :], proc.stderr
 
 
 @pytest.mark.slow
@@ -65,23 +64,6 @@ def test_deterministic_switch_matches_the_public_one():
     assert ours.stdout.split() == public.stdout.split() == ["True", "False", "True"]
 
 
-@pytest.mark.parametrize(
-    "run, workers, on, expected",
-    [
-        ({}, 2, None, True),
-        ({}, 1, None, False),
-        ({"workers": 1}, None, None, False),
-        ({"workers": 3}, None, None, True),
-        ({"workers": 3}, 1, None, False),  # the option wins over the recipe
-        ({"on": "dask-local"}, 2, None, False),
-        ({}, 2, "dask://127.0.0.1:8786", False),
-        ({"on": "dask-local"}, 2, "local", True),
-    ],
-)
-def test_when_the_fork_server_starts_early(run, workers, on, expected):
-    assert wants_workers(workers, on, RunSettings(**run)) is expected
-
-
 @pytest.mark.slow
 def test_validating_a_recipe_needs_no_torch_and_a_bad_one_starts_no_workers(tmp_path):
     # a typo in a recipe is reported at once, by every command, and starts no worker server
@@ -103,22 +85,23 @@ def test_default_worker_count_is_the_usable_cores():
     assert default_workers() == len(os.sched_getaffinity(0))
 
 
+LIGHT = """
+    name = "light"
+    seeds = [1]
+    [data]
+    source = "iris"
+    [model]
+    hidden = [8]
+    [train]
+    epochs = 2
+"""
+
+
 @pytest.mark.slow
-def test_reading_results_needs_no_torch(tmp_path):
-    # board, status and diff read the store: a practitioner's most frequent commands stay quick
-    path = write_recipe(
-        tmp_path,
-        """
-        name = "light"
-        seeds = [1, 2]
-        [data]
-        source = "iris"
-        [model]
-        hidden = [8]
-        [train]
-        epochs = 2
-    """,
-    )
+def test_reading_results_needs_no_torch_nor_sklearn(tmp_path):
+    # board, status and diff read the store: a practitioner's most frequent commands stay
+    # quick (the bundled data set is described, not loaded: datasets/bundled.py)
+    path = write_recipe(tmp_path, LIGHT)
     assert invoke("run", path, "--workers", 1, "-q").exit_code == 0
     board = tmp_path / "board.json"
     for args in (
@@ -126,6 +109,21 @@ def test_reading_results_needs_no_torch(tmp_path):
         ["status", path],
         ["board", path, "--format", "json", "--out", board],
         ["diff", board, board],
+        ["run", path],  # nothing left to train: no workers, no torch
     ):
-        state, err = _cli_alone([str(a) for a in args])
-        assert state[0] == "0" and state[2] == "False", (args, err[-300:])
+        state, err = _cli_alone([str(a) for a in args], ("torch", "sklearn", "scipy.stats"))
+        assert state == ["0", "None", "False", "False", "False"], (args, err[-300:])
+
+
+@pytest.mark.slow
+def test_a_small_plan_trains_in_process_and_a_pool_run_leaves_torch_to_its_workers(tmp_path):
+    path = write_recipe(tmp_path, LIGHT)
+    state, err = _cli_alone(["run", str(path), "--store", str(tmp_path / "a.sqlite")], ("torch", "sklearn", "scipy"))
+    assert state == ["0", "None", "True", "False", "False"], err[-300:]  # one small group: trained here, no
+    # server; the split and the bundled data need no scikit-learn (datasets/partition.py, bundled.py)
+    assert "in this process" in err
+    wide = write_recipe(tmp_path, LIGHT + '[factors]\n"model.hidden" = [[8], [9], [10]]\n', name="wide.toml")
+    state, err = _cli_alone(["run", str(wide), "--store", str(tmp_path / "b.sqlite"), "--workers", "2"])
+    assert state[0] == "0" and state[1] != "None", err[-300:]  # three items, two worker processes
+    assert state[2] == "False", "the main process of a pool run imports no torch"
+    assert "on 2 worker processes" in err

@@ -129,7 +129,6 @@ def _run(
     verbose,
     fmt,
 ):
-    from runner.execution.forkserver import start_early, wants_workers
     from runner.recipe.loader import load_recipe
 
     try:
@@ -137,12 +136,11 @@ def _run(
         on = checked_on(on)
     except UserError as err:
         fail(err)
-    if wants_workers(workers, on, recipe.run):
-        start_early()  # its imports overlap with this process's from here on (see forkserver.py)
+    # Nothing here imports torch: a run with nothing to train never does, and a run with
+    # workers leaves it to them (their fork server starts once the plan asks for workers).
     from runner.datasets.feasibility import check_grid_splits
     from runner.evidence.leaderboard import leaderboard
-    from runner.execution.executors import default_workers
-    from runner.execution.planning import execute, make_executor, plan
+    from runner.execution.planning import execute, executor_for, plan, work_items
     from runner.execution.progress import Progress
     from runner.outputs.mlflow_export import RunLogger
     from runner.outputs.text import render
@@ -152,45 +150,50 @@ def _run(
     try:
         grid = expand(recipe)
         check_grid_splits(grid)  # every split the jobs will make, before any job trains
-        where = on or recipe.run.on
-        workers = workers or recipe.run.workers or default_workers()
         # the lock is held from before --fresh deletes anything and before the plan is shown
         db, lock = _open_for_run(store_path(recipe, store))
         if lock is None:
             _read_only_run(db, grid, fresh, retry_failed, quiet, fmt)
             return
-        executor = make_executor(where, workers, threads, max_attempts, time_limit)
+        where, asked = on or recipe.run.on, workers or recipe.run.workers or None
+        # a cluster that cannot be reached is refused before the plan is shown
+        cluster = executor_for(where, [], grid, asked, threads, max_attempts, time_limit) if where != "local" else None
         tracker = RunLogger(mlflow_uri or recipe.tracking.mlflow, grid, db)
         if fresh:
             _confirm_fresh(db, grid, yes)
         todo = plan(grid, db, retry_failed)
         if not quiet:
             click.echo(todo.summary_line(), err=True)
-        progress = Progress(
-            len(todo.to_run), grid.rank_by, grid.goal, quiet=quiet, live=False if verbose else None, verbose=verbose
-        )
-        try:
-            execute(
-                grid,
-                db,
-                todo.to_run,
-                executor,
-                progress,
-                time_limit,
-                on_stored=tracker.stored,
-                stack=not no_stack,
-                keep_weights=recipe.run.keep_weights != "none",
+        if todo.to_run:
+            keep = recipe.run.keep_weights != "none"
+            items = work_items(grid, db, todo.to_run, not no_stack, time_limit, keep)
+            executor = cluster or executor_for(where, items, grid, asked, threads, max_attempts, time_limit)
+            progress = Progress(
+                len(todo.to_run), grid.rank_by, grid.goal, quiet=quiet, live=False if verbose else None, verbose=verbose
             )
-            _report_tracking(tracker.finish(), tracker.uri, recipe_path, quiet)
-        except KeyboardInterrupt as exc:
-            tracker.interrupted()
-            done = len(db.finished_keys() & {j.key for j in grid})
-            click.echo(
-                f"\nInterrupted: {done} of {todo.total} jobs are stored. Run the same "
-                f"command again to resume; finished jobs are not repeated.",
-                err=True,
-            )
-            sys.exit(exit_status(exc))
+            try:
+                execute(
+                    grid,
+                    db,
+                    todo.to_run,
+                    executor,
+                    progress,
+                    time_limit,
+                    on_stored=tracker.stored,
+                    keep_weights=keep,
+                    items=items,
+                )
+            except KeyboardInterrupt as exc:
+                tracker.interrupted()
+                done = len(db.finished_keys() & {j.key for j in grid})
+                click.echo(
+                    f"\nInterrupted: {done} of {todo.total} jobs are stored (jobs still in training are "
+                    f"not: a stacked group's results are stored when the group ends). Run the same "
+                    f"command again to resume; finished jobs are not repeated.",
+                    err=True,
+                )
+                sys.exit(exit_status(exc))
+        _report_tracking(tracker.finish(), tracker.uri, recipe_path, quiet)
         doc = leaderboard(grid, db)
         _retain(grid, db, doc, recipe.run.keep_weights, quiet)
         click.echo(render(doc, fmt or "table"), nl=False)

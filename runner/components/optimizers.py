@@ -24,13 +24,17 @@ tensors. The update rules are torch.optim's (tests compare them step by step):
 - nesterov: b as momentum, p -= lr (g' + mu b)                         (Sutskever et al. 2013)
 - adam:     m, v moving averages of g', bias-corrected (Kingma & Ba 2015, Algorithm 1)
 - adamw:    p *= 1 - lr wd, then adam on g (Loshchilov & Hutter 2019)
+- rmsprop:  s = alpha s + (1 - alpha) g'^2, p -= lr g' / (sqrt(s) + eps)   (torch's, not centered)
+- adagrad:  s += g'^2, p -= lr g' / (sqrt(s) + eps)                       (Duchi et al. 2011)
 Weight decay acts only where ``decays`` says, per tensor: True, False, or a 0/1 mask over
 the tensor's trailing axes (weights 1, biases 0 in a stacked network's (K, P) buffer).
 
 Members of one kind with the same settings step together, on contiguous runs of members
 (slices, not copies): the sgd family with a per-member learning-rate column, the adam family
 through torch's fused Adam kernel (the one torch.optim.Adam(fused=True) runs), one call per
-distinct (lr, betas, eps). Inactive members are left out, so they do not move at all.
+distinct (lr, betas, eps), rmsprop and adagrad one run per distinct (lr, alpha, eps).
+Inactive members are left out, so they do not move at all. A member's step does not depend
+on which members share its run (see stacked_network.aligned).
 """
 
 from __future__ import annotations
@@ -180,8 +184,9 @@ def split_parameters(model: torch.nn.Module) -> tuple[list, list]:
 
 # The stacked form: every optimizer in STACKED_OPTIMIZERS, over K members at once.
 
-STACKED_OPTIMIZERS = ("adam", "adamw", "momentum", "nesterov", "sgd")
+STACKED_OPTIMIZERS = ("adagrad", "adam", "adamw", "momentum", "nesterov", "rmsprop", "sgd")
 _ADAM = ("adam", "adamw")
+_SQUARES = ("adagrad", "rmsprop")  # a running sum or average of squared gradients per weight
 
 
 def member_column(values: Sequence[float], like: torch.Tensor) -> torch.Tensor:
@@ -223,7 +228,7 @@ class StackedOptimizer:
         self.params, self.grads, self.decays = params, grads, decays
         h = {
             name: hyper[name].tolist() if name in hyper else [0.0] * K
-            for name in ("momentum", "beta1", "beta2", "eps", "weight_decay")
+            for name in ("momentum", "beta1", "beta2", "alpha", "eps", "weight_decay")
         }
         self.h = h
         wd = h["weight_decay"]
@@ -238,6 +243,9 @@ class StackedOptimizer:
             self.moments = ([torch.zeros_like(p) for p in params], [torch.zeros_like(p) for p in params])
         if any(k in ("momentum", "nesterov") for k in self.kinds):
             self.buffers = [torch.zeros_like(p) for p in params]
+        self.squares = None  # (running squares, scratch for their root) per tensor
+        if any(k in _SQUARES for k in self.kinds):
+            self.squares = ([torch.zeros_like(p) for p in params], [torch.empty_like(p) for p in params])
         self._coupled = (
             [self._decay_coef(self.coupled, p, d) for p, d in zip(params, decays)] if any(self.coupled) else None
         )
@@ -287,14 +295,22 @@ class StackedOptimizer:
         for k, kind in enumerate(self.kinds):
             if not active[k]:
                 continue
-            ckey = (kind, lr[k], self.h["beta1"][k], self.h["beta2"][k], self.h["eps"][k]) if kind in _ADAM else (kind,)
+            if kind in _ADAM:
+                ckey = (kind, lr[k], self.h["beta1"][k], self.h["beta2"][k], self.h["eps"][k])
+            elif kind in _SQUARES:
+                ckey = (kind, lr[k], self.h["alpha"][k], self.h["eps"][k])
+            else:
+                ckey = (kind,)
             classes.setdefault(ckey, []).append(k)
         actions = []
         for ckey, rows in classes.items():
             for run in member_runs(rows):
-                actions.append(
-                    self._adam_action(run, *ckey[1:]) if ckey[0] in _ADAM else self._sgd_action(ckey[0], run, neg_lr)
-                )
+                if ckey[0] in _ADAM:
+                    actions.append(self._adam_action(run, *ckey[1:]))
+                elif ckey[0] in _SQUARES:
+                    actions.append(self._squares_action(ckey[0], run, *ckey[1:]))
+                else:
+                    actions.append(self._sgd_action(ckey[0], run, neg_lr))
         self._plan_key, self._plan_actions = key, actions
         return actions
 
@@ -317,13 +333,34 @@ class StackedOptimizer:
 
         return step
 
+    def _squares_action(self, kind: str, run: slice, lr: float, alpha: float, eps: float):
+        """torch.optim.RMSprop (alpha, not centered, no momentum) or torch.optim.Adagrad
+        (no lr decay, accumulator from 0), written as their single-tensor steps are."""
+        import torch
+
+        parts = [(p[run], g[run], s[run], r[run]) for p, g, s, r in zip(self.params, self.grads, *self.squares)]
+
+        def step():
+            for p, g, square, root in parts:
+                if kind == "rmsprop":
+                    square.mul_(alpha).addcmul_(g, g, value=1 - alpha)
+                else:
+                    square.addcmul_(g, g, value=1)
+                p.addcdiv_(g, torch.sqrt(square, out=root).add_(eps), value=-lr)
+
+        return step
+
     def _adam_action(self, run: slice, lr: float, beta1: float, beta2: float, eps: float):
         import torch
 
-        ps = [p[run] for p in self.params]
-        gs = [g[run] for g in self.grads]
-        ms = [m[run] for m in self.moments[0]]
-        vs = [v[run] for v in self.moments[1]]
+        # one tensor per member and parameter: a run's rows back to back would put a member's
+        # elements wherever the kernel's vector blocks and scalar tail fall for that run, so its
+        # bits would depend on its neighbours; row by row, every member is stepped alike
+        members = range(run.start, run.stop)
+        ps = [p[k] for p in self.params for k in members]
+        gs = [g[k] for g in self.grads for k in members]
+        ms = [m[k] for m in self.moments[0] for k in members]
+        vs = [v[k] for v in self.moments[1] for k in members]
         steps = [self.step_count] * len(ps)
         if self.fused and ps[0].dtype in (torch.float32, torch.float64):
             return lambda: torch._fused_adam_(

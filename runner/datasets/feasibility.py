@@ -16,11 +16,11 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from runner.components.metrics import Task
+from runner.datasets.sources import Dataset
 from runner.datasets.splits import split_and_scale
 from runner.errors import DataError
 
 if TYPE_CHECKING:
-    from runner.datasets.sources import Dataset
     from runner.recipe.grid import Grid
     from runner.recipe.settings import DataSettings
 
@@ -53,7 +53,10 @@ def check_splits(ds: Dataset, data: DataSettings, seeds) -> None:
     """Make every seed's split of ``ds`` as the jobs will; raise for the first that fails."""
     # Only a layout's encodings look at feature values; otherwise one column stands in for
     # X, so checking many seeds of a large dataset costs only the row draws.
-    proxy = ds if ds.layout is not None else dataclasses.replace(ds, X=np.zeros((len(ds.y), 1), np.float32))
+    proxy = ds
+    if ds.layout is None:
+        column = np.zeros((len(ds.y), 1), np.float32)
+        proxy = Dataset(column, ds.y, ds.task, ds.classes, ("x",), ds.fingerprint, ds.label)
     folds = range(data.split.folds) if data.split.validation == "folds" else [None]
     for seed, fold in ((s, f) for s in seeds for f in folds):
         try:

@@ -4,13 +4,13 @@ and circles.
 ``load_dataset`` reads a source once (in the main process) into a ``Dataset`` with a
 fingerprint of its bytes; splits.py cuts it per seed. The readers live beside this module
 (csv_reader, parquet_reader, npz_reader, images) and share the checks of columns.py and
-targets.py.
+targets.py. Bundled sets are described at once and loaded on first use (bundled.py).
 """
 
 from __future__ import annotations
 
+import copy
 import csv
-import dataclasses
 import hashlib
 from dataclasses import dataclass
 from pathlib import Path
@@ -58,6 +58,11 @@ class Dataset:
     def image_shape(self) -> tuple[int, ...] | None:
         return tuple(self.X.shape[1:]) if self.X.ndim == 4 else None
 
+    @property
+    def shape(self) -> tuple[int, ...]:
+        """X's shape (known without loading a bundled set's arrays: bundled.py)."""
+        return tuple(self.X.shape)
+
 
 def source_key(data: DataSettings) -> tuple:
     """The settings that decide which rows are loaded and how (not how they are split)."""
@@ -89,9 +94,10 @@ def load_dataset(data: DataSettings, base_dir: Path) -> Dataset:
     folder = source not in BUNDLED and (base_dir / source).is_dir()
     if not folder:
         _refuse_image_options(data)
-    if source in BUNDLED:
-        X, y, names, classes, task, fp = _bundled(source, data)
-        label = source
+    if source in BUNDLED:  # described now, loaded on first use (bundled.py)
+        from runner.datasets.bundled import bundled
+
+        return bundled(data)
     else:
         path = base_dir / source
         label = str(source)
@@ -160,7 +166,9 @@ def same_bytes_other_reading(ds: Dataset, key: tuple) -> Dataset:
     """``ds`` with a fingerprint of its bytes and of how they were read (``source_key``),
     for a grid that reads one file in two ways."""
     fp = hashlib.sha256(f"{ds.fingerprint}|{key!r}".encode()).hexdigest()
-    return dataclasses.replace(ds, fingerprint=fp)
+    out = copy.copy(ds)  # a bundled set stays lazy (dataclasses.replace would rebuild it)
+    object.__setattr__(out, "fingerprint", fp)
+    return out
 
 
 def column_cells(path: Path, shown: str) -> dict[str, list[str]]:
@@ -196,37 +204,3 @@ def _refuse_image_options(data: DataSettings) -> None:
                 value=list(value) if isinstance(value, tuple) else value,
                 hint="Remove it, or point data.source at a folder with one subfolder of images per class",
             )
-
-
-def _bundled(name: str, data: DataSettings):
-    import sklearn
-    from sklearn import datasets
-
-    fp_text = f"{name}|sklearn={sklearn.__version__}"
-    if name in ("moons", "circles"):
-        make = datasets.make_moons if name == "moons" else datasets.make_circles
-        kwargs = {"factor": 0.5} if name == "circles" else {}
-        # A fixed generator seed: the dataset is the same for every job; seeds vary the split.
-        X, y = make(n_samples=data.n_samples, noise=data.noise, random_state=0, **kwargs)
-        fp_text += f"|n={data.n_samples}|noise={data.noise}"
-        return (
-            X.astype(np.float32),
-            y.astype(np.int64),
-            ("x1", "x2"),
-            ("0", "1"),
-            Task.CLASSIFICATION,
-            hashlib.sha256(fp_text.encode()).hexdigest(),
-        )
-    bunch = getattr(datasets, f"load_{name}")()
-    X = bunch.data.astype(np.float32)
-    fp = hashlib.sha256(fp_text.encode()).hexdigest()
-    if name == "diabetes":
-        return X, bunch.target.astype(np.float64), tuple(bunch.feature_names), (), Task.REGRESSION, fp
-    if name == "digits":
-        # Kept as 8x8 single-channel images; an MLP flattens them.
-        X = X.reshape(-1, 1, 8, 8)
-        names = tuple(f"pixel{i}" for i in range(64))
-    else:
-        names = tuple(bunch.feature_names)
-    classes = tuple(str(c) for c in bunch.target_names)
-    return X, bunch.target.astype(np.int64), names, classes, Task.CLASSIFICATION, fp

@@ -62,14 +62,11 @@ class Splits:
 
 def _split_off(idx: np.ndarray, share: float, seed: int, strat: np.ndarray | None):
     """(kept, split off) rows of ``idx``: exactly sklearn's train_test_split(idx,
-    test_size=share, random_state=seed, stratify=strat), through the splitter it uses,
-    without its argument checks (about a millisecond a call, paid once per job)."""
-    from sklearn.model_selection import ShuffleSplit, StratifiedShuffleSplit
+    test_size=share, random_state=seed, stratify=strat), drawn as its splitters draw
+    (partition.py; without importing scikit-learn, which costs as much as torch)."""
+    from runner.datasets.partition import shuffle_split, stratified_shuffle_split
 
-    splitter = (ShuffleSplit if strat is None else StratifiedShuffleSplit)(
-        n_splits=1, test_size=share, random_state=seed
-    )
-    kept, off = next(splitter.split(idx, strat))
+    kept, off = shuffle_split(len(idx), share, seed) if strat is None else stratified_shuffle_split(strat, share, seed)
     return idx[kept], idx[off]
 
 

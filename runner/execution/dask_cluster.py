@@ -88,7 +88,8 @@ class DaskExecutor:
                 hint="Start one with 'dask scheduler' and workers with 'dask worker ADDRESS'",
             ) from None
 
-    def run(self, items, datasets, on_result, on_start=None) -> None:
+    def run(self, items, datasets, on_result, on_start=None, on_progress=None) -> None:
+        """``on_progress`` is not called: a task reports only its end."""
         from distributed import as_completed
         from distributed.client import FutureCancelledError
 

@@ -67,13 +67,11 @@ def _seconds_per_member_epoch(item, grid: Grid) -> float:
 
 def work_items(grid: Grid, todo: list, stack: bool = True) -> list[tuple]:
     """The work items `recipe run` would make of ``todo``: stacked groups formed as
-    execute() forms them (over the whole grid, a group running whole if any member is to
-    run), one job at a time otherwise."""
+    execute() forms them (from the jobs to run, long groups cut), one job at a time otherwise."""
+    from runner.execution.sizing import cut_long_groups
     from runner.training.grouping import group_specs
 
-    keys = {j.key for j in todo}
-    specs = [j.spec() for j in grid] if stack else [j.spec() for j in todo]
-    return [it for it in group_specs(specs, grid.datasets, enabled=stack) if any(s.key in keys for s in it)]
+    return cut_long_groups(group_specs([j.spec() for j in todo], grid.datasets, enabled=stack), grid.datasets)
 
 
 def probe_rates(items: list[tuple], grid: Grid) -> dict[str, float]:

@@ -6,6 +6,8 @@ of job specs trained together (one spec, or a stacked group; see stack.py):
 - ``PoolExecutor`` runs worker processes that import torch once and take many jobs;
 - ``DaskExecutor`` (dask_executor.py) sends jobs to a dask.distributed cluster.
 The caller's ``on_result`` writes the store, so only the main process ever writes results.
+The main process of a pool run needs no torch: only the workers (and the serial executor)
+import it.
 """
 
 from __future__ import annotations
@@ -20,9 +22,6 @@ from collections import deque
 from collections.abc import Callable
 from multiprocessing.connection import wait
 
-import threadpoolctl
-import torch
-
 from runner.datasets.sources import Dataset
 from runner.execution.forkserver import default_workers, start_early, worker_context
 from runner.training.job import JobResult, JobSpec, Status
@@ -31,6 +30,8 @@ __all__ = ["PoolExecutor", "SerialExecutor", "default_workers", "deterministic_k
 
 OnResult = Callable[[JobSpec, JobResult, int], None]  # spec, result, attempts used
 OnStart = Callable[[JobSpec], None]
+OnProgress = Callable[[tuple, float], None]  # a work item, the share of its epochs done
+PROGRESS_EVERY = 0.5  # seconds between a worker's progress messages at most
 
 _DATASETS: dict[str, Dataset] = {}
 
@@ -45,6 +46,8 @@ def deterministic_kernels() -> None:
     configuration (about a second, in every process that starts; the tool compiles
     nothing, so that setting is never read). Where torch lacks the internal switch, the
     public function."""
+    import torch
+
     switch = getattr(torch._C, "_set_deterministic_algorithms", None)
     if switch is None:
         torch.use_deterministic_algorithms(True)
@@ -55,14 +58,15 @@ def deterministic_kernels() -> None:
 def prepare_process(threads: int, datasets: dict[str, Dataset] | None = None, worker: bool = False) -> None:
     """Fixed threads and deterministic kernels: the conditions for bitwise-equal reruns."""
     global _DATASETS
+    import threadpoolctl
+    import torch
+
     torch.set_num_threads(threads)
     threadpoolctl.threadpool_limits(threads, user_api="blas")  # numpy's BLAS (the stacked path's products)
     deterministic_kernels()
     if datasets is not None:
         _DATASETS = datasets
     warnings.filterwarnings("ignore", module="sklearn")
-    import sklearn.model_selection  # noqa: F401  (each job's split: imported here, not in a job's time)
-
     if worker:  # the main process decides what Ctrl-C (or a stop signal to the whole group) does
         for sig in (signal.SIGINT, signal.SIGTERM, getattr(signal, "SIGHUP", None)):
             if sig is not None:
@@ -76,27 +80,61 @@ def ready_for(item: tuple[JobSpec, ...]) -> None:
     """Import what this work item's path needs before its clock starts. The single-job path's
     torch.optim imports torch's compiler front end when it builds its first optimizer (over
     a second, enough to trip a short time limit); stacked groups never need it, so workers
-    and the fork server do not import it unless a single job comes."""
+    and the fork server do not import it unless a single job comes. A bundled data set is
+    loaded here too, on its first use in this process (datasets/bundled.py)."""
     global _SINGLE_PATH_READY
     from runner.training.grouping import Stacked
 
+    ds = _DATASETS.get(item[0].data_id)
+    if ds is not None:
+        ds.X  # noqa: B018  (loads it, if it is loaded lazily)
+
     if not _SINGLE_PATH_READY and not isinstance(item, Stacked):
+        import torch
+
         torch.optim.SGD([torch.zeros(1, requires_grad=True)], lr=0.1)
         _SINGLE_PATH_READY = True
 
 
-def _work(item: tuple[JobSpec, ...]) -> list[JobResult]:
+def _work(item: tuple[JobSpec, ...], on_epoch=None) -> list[JobResult]:
     from runner.training.loop import train_item
 
     ready_for(item)
-    return train_item(item, _DATASETS)
+    return train_item(item, _DATASETS, on_epoch)
+
+
+def _throttled(send: Callable[[float], None]) -> Callable[[float], None]:
+    """``send`` at most every PROGRESS_EVERY seconds (a short group's epochs come faster
+    than the progress line needs them)."""
+    last = [time.monotonic()]
+
+    def report(share: float) -> None:
+        now = time.monotonic()
+        if now - last[0] >= PROGRESS_EVERY:
+            last[0] = now
+            send(share)
+
+    return report
 
 
 class SerialExecutor:
     def __init__(self, threads: int = 1):
         self.threads = threads
 
-    def run(self, items, datasets, on_result: OnResult, on_start: OnStart | None = None) -> None:
+    def where(self, items) -> str:
+        return "in this process"
+
+    def run(
+        self,
+        items,
+        datasets,
+        on_result: OnResult,
+        on_start: OnStart | None = None,
+        on_progress: OnProgress | None = None,
+    ) -> None:
+        import threadpoolctl
+        import torch
+
         previous = torch.get_num_threads()
         blas = threadpoolctl.threadpool_limits(None)  # remembers the current limits
         prepare_process(self.threads, datasets)
@@ -105,7 +143,8 @@ class SerialExecutor:
                 for spec in item:
                     if on_start:
                         on_start(spec)
-                for spec, result in zip(item, _work(item)):
+                share = None if on_progress is None else _throttled(lambda f, item=item: on_progress(item, f))
+                for spec, result in zip(item, _work(item, share)):
                     on_result(spec, result, 1)
         finally:
             torch.set_num_threads(previous)
@@ -135,7 +174,7 @@ def _worker_main(conn, threads: int, datasets: dict) -> None:
             return
         ready_for(item)
         _talk(conn.send, ("start", None))  # the job's clock starts here, not while the worker boots
-        _talk(conn.send, ("result", _work(item)))
+        _talk(conn.send, ("result", _work(item, _throttled(lambda share: _talk(conn.send, ("epoch", share))))))
 
 
 def _talk(op, *args):
@@ -155,6 +194,7 @@ class _Worker:
         child.close()
         self.spec: tuple[JobSpec, ...] | None = None  # the work item it holds
         self.started: float | None = None
+        self.share = 0.0  # of the item's epochs done
 
     def read(self) -> tuple[list[JobResult] | None, bool]:
         """(the finished item's results or None, whether the pipe broke)."""
@@ -163,6 +203,8 @@ class _Worker:
                 kind, payload = self.conn.recv()
                 if kind == "start":
                     self.started = time.monotonic()
+                elif kind == "epoch":
+                    self.share = payload
                 else:
                     return payload, False
         except (EOFError, OSError):
@@ -201,7 +243,18 @@ class PoolExecutor:
         self.max_attempts = max_attempts
         self.hard_limit = hard_limit
 
-    def run(self, items, datasets, on_result: OnResult, on_start: OnStart | None = None) -> None:
+    def where(self, items) -> str:
+        n = min(self.workers, len(items))
+        return f"on {n} worker process{'es' if n > 1 else ''}"
+
+    def run(
+        self,
+        items,
+        datasets,
+        on_result: OnResult,
+        on_start: OnStart | None = None,
+        on_progress: OnProgress | None = None,
+    ) -> None:
         ctx = worker_context()
         start_early()  # if `recipe run` has not already: with Ctrl-C ignored (see forkserver.py)
         queue = deque(items)
@@ -211,14 +264,17 @@ class PoolExecutor:
             while queue or any(w.spec for w in pool):
                 for w in pool:
                     if w.spec is None and queue:
-                        w.spec, w.started = queue.popleft(), None
+                        w.spec, w.started, w.share = queue.popleft(), None, 0.0
                         if on_start:
                             for spec in w.spec:
                                 on_start(spec)
                         w.conn.send(w.spec)
                 ready = set(wait([w.conn for w in pool] + [w.proc.sentinel for w in pool], timeout=1.0))
                 for i, w in enumerate(list(pool)):
+                    share = w.share
                     result, broken = w.read() if w.conn in ready else (None, False)
+                    if on_progress is not None and w.share != share and w.spec is not None and result is None:
+                        on_progress(w.spec, w.share)
                     if result is not None:
                         item, w.spec = w.spec, None
                         for spec, res in zip(item, result):

@@ -5,11 +5,10 @@ Workers fork from a server process that has imported torch and the tool once
 seconds; where forkserver is not available, fresh interpreters are spawned. Both start clean
 of the main process's threads and state.
 
-This module imports nothing heavy, and neither does validating a recipe, so ``recipe run``
-starts the server as soon as the recipe is valid and before it imports torch itself: the
-server's imports (about 2.5 s on a 2-core machine) then overlap with the main process's own
-imports, data loading and planning instead of following them, and a recipe with an error
-starts no server at all.
+This module imports nothing heavy. ``recipe run`` starts the server only once its plan asks
+for worker processes (execution/sizing.py), and the main process of such a run imports no
+torch itself: the server's imports are the run's only ones, and a recipe with an error, a
+run with nothing to train or a plan small enough to train in-process starts no server.
 """
 
 from __future__ import annotations
@@ -18,12 +17,8 @@ import multiprocessing
 import os
 import signal
 import threading
-from typing import TYPE_CHECKING
 
-if TYPE_CHECKING:
-    from runner.recipe.loader import RunSettings
-
-__all__ = ["default_workers", "start_early", "wants_workers", "worker_context"]
+__all__ = ["default_workers", "start_early", "worker_context"]
 
 _PRELOAD = ["runner.execution.preload"]
 
@@ -68,10 +63,3 @@ def default_workers() -> int:
     if hasattr(os, "sched_getaffinity"):
         return max(1, len(os.sched_getaffinity(0)))
     return max(1, os.cpu_count() or 1)
-
-
-def wants_workers(workers: int | None, on: str | None, run: RunSettings) -> bool:
-    """Whether ``recipe run`` will use local worker processes: from its options and the
-    recipe's validated [run] table (the option wins)."""
-    where = on or run.on
-    return where == "local" and (workers or run.workers or default_workers()) > 1

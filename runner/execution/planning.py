@@ -15,7 +15,7 @@ from runner.recipe.grid import Grid, Job
 from runner.store import RunnerLock, Store
 from runner.training.job import FINISHED, Status
 
-__all__ = ["Plan", "checkpoint_dir", "execute", "forget", "make_executor", "plan"]
+__all__ = ["Plan", "checkpoint_dir", "execute", "executor_for", "forget", "make_executor", "plan", "work_items"]
 
 
 @dataclass(frozen=True)
@@ -33,6 +33,10 @@ def plan(grid: Grid, store: Store, retry_failed: bool = False) -> Plan:
     jobs = list(grid)
     todo = [j for j in jobs if j.key not in finished]
     return Plan(total=len(jobs), done=len(jobs) - len(todo), to_run=todo)
+
+
+def item_keys(item) -> tuple[str, ...]:
+    return tuple(spec.key for spec in item)
 
 
 def checkpoint_dir(store: Store) -> Path:
@@ -64,6 +68,57 @@ def make_executor(on: str, workers: int, threads: int = 1, max_attempts: int = 2
     return DaskExecutor(on, workers, threads, max_attempts)
 
 
+def executor_for(
+    on: str,
+    items: list,
+    grid: Grid,
+    workers: int | None,
+    threads: int = 1,
+    max_attempts: int = 2,
+    hard_limit: float | None = None,
+):
+    """The executor for these work items: ``workers`` as asked (1: in this process), or when
+    not asked, locally, as many worker processes as pay for themselves (sizing.py; none,
+    training here, for a small plan, unless a hard time limit needs a process to kill)."""
+    from runner.execution.forkserver import default_workers
+
+    if on != "local" or workers is not None:
+        return make_executor(on, workers or default_workers(), threads, max_attempts, hard_limit)
+    from runner.execution.sizing import choose_workers
+
+    chosen = choose_workers(items, grid.datasets, default_workers())
+    if chosen == 1 and hard_limit:
+        from runner.execution.executors import PoolExecutor
+
+        return PoolExecutor(1, threads, max_attempts, hard_limit)
+    return make_executor(on, chosen, threads, max_attempts, hard_limit)
+
+
+def work_items(
+    grid: Grid,
+    store: Store,
+    todo: list[Job],
+    stack: bool = True,
+    time_limit: float | None = None,
+    keep_weights: bool = True,
+):
+    """What the executor runs: ``todo`` as work items, stacked groups of same-shaped jobs
+    (training/stacked.py) or single jobs. Groups are formed from what is left to run: a
+    stacked member's numbers do not depend on its group (grouping.group_specs), so a resumed
+    or extended grid trains only its missing jobs; groups long enough to lose much to a
+    Ctrl-C are cut (sizing.cut_long_groups)."""
+    from runner.execution.sizing import cut_long_groups
+    from runner.training.grouping import group_specs
+
+    ckpt_dir = checkpoint_dir(store)
+
+    def spec_of(j):
+        ckpt = ckpt_dir / f"{j.key}.pt" if j.config.settings.train.checkpoint_every else None
+        return j.spec(checkpoint=str(ckpt) if ckpt else None, time_limit=time_limit, keep_weights=keep_weights)
+
+    return cut_long_groups(group_specs([spec_of(j) for j in todo], grid.datasets, enabled=stack), grid.datasets)
+
+
 def execute(
     grid: Grid,
     store: Store,
@@ -74,58 +129,50 @@ def execute(
     on_stored=None,
     stack: bool = True,
     keep_weights: bool = True,
+    items: list | None = None,
 ) -> None:
-    """Run ``todo``; each result is committed to the store as soon as it arrives. With
-    ``stack``, same-shaped jobs train together as one stacked computation (training/stacked.py).
-    With ``keep_weights``, each done job's trained weights come back with its result and
-    are stored beside it, in the same transaction."""
-    from runner.training import checkpoints as checkpoint
-    from runner.training.grouping import group_specs, training_note
+    """Run ``todo`` (as ``items``, or as work_items makes them); each result is committed to
+    the store as soon as it arrives. With ``keep_weights``, each done job's trained weights
+    come back with its result and are stored beside it, in the same transaction."""
+    from runner.training.grouping import training_note
     from runner.training.weights import encode
 
     if not todo:
         return
     by_key = {j.key: j for j in todo}
     split, metric = grid.rank_by.split(".", 1)
-    ckpt_dir = checkpoint_dir(store)
 
     def on_start(spec):
-        if spec.key in by_key:
-            store.mark_running(spec.key)
+        store.mark_running(spec.key)
 
     def on_result(spec, result, attempts):
-        if spec.key not in by_key:
-            return  # a stacked group's member that is already stored: written once, never again
         job = by_key[spec.key]
         labels = grid.labels(job.config)
         blob = encode(result.weights) if result.weights is not None else None
         store.write_result(job, labels, grid.recipe.hash, result, attempts, weights=blob)
-        checkpoint.remove(spec.checkpoint)  # the result is safe: its checkpoint is not needed
+        if spec.checkpoint:  # the result is safe: its checkpoint is not needed
+            from runner.training import checkpoints  # torch: only for jobs that keep checkpoints
+
+            checkpoints.remove(spec.checkpoint)
         if progress is not None:
             for note in result.notes:
                 progress.warn(note)
             value = result.metrics.get(split, {}).get(metric)
             label = ", ".join(labels.values()) or "base"
-            progress.update(label, job.seed, result.status, value, result.duration, result.error)
+            progress.update(label, job.seed, result.status, value, result.duration, result.error, key=spec.key)
         if on_stored is not None:
             on_stored(job, result)
 
-    def spec_of(j):
-        ckpt = ckpt_dir / f"{j.key}.pt" if j.config.settings.train.checkpoint_every else None
-        return j.spec(checkpoint=str(ckpt) if ckpt else None, time_limit=time_limit, keep_weights=keep_weights)
-
-    # Groups are formed over the whole grid (see stack.group_specs); a group with any job to run
-    # runs whole, and only its unfinished members' results are written.
-    everything = [spec_of(j) for j in grid] if stack else [spec_of(j) for j in todo]
-    items = [
-        item for item in group_specs(everything, grid.datasets, enabled=stack) if any(s.key in by_key for s in item)
-    ]
+    if items is None:
+        items = work_items(grid, store, todo, stack, time_limit, keep_weights)
     if progress is not None:
-        progress.note(training_note(items))
+        where = getattr(executor, "where", None)
+        progress.note(training_note(items) + (f" {where(items)}" if where else ""))
     with RunnerLock(store):
         store.remember_recipe(grid.recipe)
         try:
-            executor.run(items, grid.datasets, on_result, on_start)
+            on_progress = None if progress is None else (lambda item, share: progress.advance(item_keys(item), share))
+            executor.run(items, grid.datasets, on_result, on_start, on_progress)
         finally:
             if progress is not None:
                 progress.close()

@@ -47,6 +47,7 @@ class Progress:
         self.values: dict[str, list[float]] = {}
         self.finished = 0
         self.warned: set[str] = set()
+        self.partial: dict[tuple[str, ...], float] = {}  # work items in flight: their job keys -> share done
 
     def note(self, text: str) -> None:
         """A line about the run as a whole, before its jobs' lines (not when quiet)."""
@@ -65,12 +66,45 @@ class Progress:
         self.stream.write(f"warning: {text}\n")
         self.stream.flush()
 
+    def advance(self, keys: tuple[str, ...], share: float) -> None:
+        """A work item in flight (its jobs' keys) has done ``share`` of its epochs: the live
+        line moves while a long stacked group trains, before any of its jobs finishes."""
+        self.partial[keys] = share
+        if self.live and not self.quiet:
+            self._draw()
+
+    def _done(self) -> float:
+        """Jobs finished, counting those in flight by the share of their epochs done."""
+        return self.finished + sum(len(keys) * share for keys, share in self.partial.items())
+
+    def _draw(self) -> None:
+        elapsed = time.monotonic() - self.start
+        done = self._done()
+        left = f"~{_clock(elapsed / done * (self.total - done))}" if done > 0 else "?"
+        best = self._best()
+        training = f" (+{done - self.finished:.1f} in training)" if self.partial else ""
+        line = (
+            f"[{self.finished}/{self.total}]{training} failed {self.counts[Status.FAILED]}, diverged "
+            f"{self.counts[Status.DIVERGED]} | {_clock(elapsed)} elapsed, {left} left"
+            + (f" | best {best[0]}: {best[1]:.4f}" if best else "")
+        )
+        self.stream.write("\r\033[K" + line)
+        self.stream.flush()
+
     def update(
-        self, label: str, seed: int, status: Status, value: float | None, seconds: float, error: str | None = None
+        self,
+        label: str,
+        seed: int,
+        status: Status,
+        value: float | None,
+        seconds: float,
+        error: str | None = None,
+        key: str | None = None,
     ) -> None:
         status = Status(status)
         self.finished += 1
         self.counts[status] += 1
+        self.partial = {keys: share for keys, share in self.partial.items() if key not in keys}
         if value is not None and status is Status.DONE:
             self.values.setdefault(label, []).append(value)
         if self.quiet:
@@ -78,13 +112,7 @@ class Progress:
         elapsed = time.monotonic() - self.start
         left = elapsed / self.finished * (self.total - self.finished)
         if self.live:
-            best = self._best()
-            line = (
-                f"[{self.finished}/{self.total}] failed {self.counts[Status.FAILED]}, diverged "
-                f"{self.counts[Status.DIVERGED]} | {_clock(elapsed)} elapsed, ~{_clock(left)} left"
-                + (f" | best {best[0]}: {best[1]:.4f}" if best else "")
-            )
-            self.stream.write("\r\033[K" + line)
+            self._draw()
         else:
             shown = f"{self.metric}={value:.4f}" if value is not None else ""
             self.stream.write(

@@ -11,8 +11,9 @@ __all__ = ["environment"]
 
 
 def environment() -> dict[str, Any]:
+    from importlib import metadata
+
     import numpy as np
-    import sklearn
     import torch
 
     cpu = platform.processor() or platform.machine()
@@ -26,9 +27,9 @@ def environment() -> dict[str, Any]:
         pass
     return {
         "python": sys.version.split()[0],
-        "torch": torch.__version__,
+        "torch": str(torch.__version__),  # a str subclass of torch's: unpickling it would import torch
         "numpy": np.__version__,
-        "sklearn": sklearn.__version__,
+        "sklearn": metadata.version("scikit-learn"),  # without importing it (as much as torch)
         "threads": torch.get_num_threads(),
         "cpu": cpu,
         "pid": os.getpid(),

@@ -44,7 +44,6 @@ def stack_key(spec: JobSpec) -> str | None:
     m, t = spec.settings.model, spec.settings.train
     if (
         m.kind != "mlp"
-        or m.batch_norm
         or t.optimizer not in STACKED_OPTIMIZERS
         or t.checkpoint_every
         or t.time_limit
@@ -70,23 +69,24 @@ def member_bytes(spec: JobSpec, ds: Dataset) -> int:
     """A generous estimate of one member's tensors: parameters with gradients, optimizer
     moments, a best-epoch copy and momentum buffer (6 copies), its data splits, and the
     activations of one mini-batch with their gradients and masks (4 copies)."""
-    features = int(np.prod(ds.X.shape[1:]))
+    rows, features = ds.shape[0], int(np.prod(ds.shape[1:]))  # no array loaded (bundled.py)
     widths = [features, *spec.settings.model.hidden, max(1, len(ds.classes))]
     params = sum((a + 1) * b for a, b in zip(widths, widths[1:]))
     bs = spec.settings.train.batch_size
-    batch = len(ds.y) if bs == "full" else min(int(bs), len(ds.y))
-    return 4 * (6 * params + len(ds.y) * features + 4 * batch * sum(widths))
+    batch = rows if bs == "full" else min(int(bs), rows)
+    return 4 * (6 * params + rows * features + 4 * batch * sum(widths))
 
 
 def group_specs(
     specs: Sequence[JobSpec], datasets: dict[str, Dataset], enabled: bool = True
 ) -> list[tuple[JobSpec, ...]]:
-    """Work items over the grid's jobs in grid order: stackable jobs in groups of up to
+    """Work items over these jobs in their order: stackable jobs in groups of up to
     GROUP_SIZE (fewer when the memory estimate says so), others alone.
 
-    Groups depend only on the grid, never on which jobs are already stored or on the worker
-    count: a member's numbers depend (in the last bits) on its place in its group, so a fixed
-    grouping keeps resumed and uninterrupted runs bitwise equal."""
+    A member's numbers do not depend on its group (its size, its other members, its place
+    in it: stacked_network.aligned and the per-member optimizer steps see to that, and
+    tests/test_stack.py checks it bit for bit), so the caller may group whatever is left
+    to run: a resumed or extended grid trains only its missing jobs."""
     if not enabled:
         return [(s,) for s in specs]
     buckets: dict[str, list[JobSpec]] = {}

@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import math
 import time
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Protocol
 
@@ -31,7 +31,7 @@ from runner.training import checkpoints, summaries
 from runner.training.environment import environment
 from runner.training.job import JobResult, JobSpec, Status
 
-__all__ = ["Backend", "new_members", "train_group", "train_item", "train_job", "train_members"]
+__all__ = ["Backend", "OnEpoch", "new_members", "train_group", "train_item", "train_job", "train_members"]
 
 
 class Backend(Protocol):
@@ -124,12 +124,20 @@ def new_members(specs: Sequence[JobSpec], env: dict[str, Any]) -> list[_Member]:
     return out
 
 
+OnEpoch = Callable[[float], None]  # the share of a work item's epochs done, 0 to 1
+
+
 def train_members(
-    backend: Backend, members: list[_Member], start: float, checkpoint: str | None = None
+    backend: Backend,
+    members: list[_Member],
+    start: float,
+    checkpoint: str | None = None,
+    on_epoch: OnEpoch | None = None,
 ) -> list[JobResult]:
     """Train the backend's members through every epoch; one JobResult per member. If it
     raises, ``members`` keep what was recorded so far. ``checkpoint``: a single job's
-    checkpoint file (train.checkpoint_every)."""
+    checkpoint file (train.checkpoint_every). ``on_epoch``: told the share of epochs done
+    after each epoch (a long stacked group reports progress before any member finishes)."""
     train0 = members[0].spec.settings.train
     every = train0.checkpoint_every if checkpoint else 0
     step, start_epoch = 0, 0
@@ -154,6 +162,8 @@ def train_members(
         if not any(m.active for m in members):
             break
         _after_validation(backend, members, epoch)
+        if on_epoch is not None:
+            on_epoch((epoch + 1) / train0.epochs)
         if every and (epoch + 1) % every == 0 and epoch + 1 < train0.epochs and members[0].active:
             _save(backend, members[0], checkpoint, step, epoch)
     _finish(backend, members)
@@ -300,7 +310,7 @@ def _resume(backend: Backend, m: _Member, saved: dict[str, Any]) -> tuple[int, i
     return saved["step"], saved["epoch"]
 
 
-def train_job(spec: JobSpec, ds: Dataset, keep_model: bool = False):
+def train_job(spec: JobSpec, ds: Dataset, keep_model: bool = False, on_epoch: OnEpoch | None = None):
     """Train one job on the single path. Never raises for the job's own failure: it is
     returned as status "failed". With ``keep_model``: (trained network or None, result)."""
     from runner.training.single import SingleBackend
@@ -311,12 +321,12 @@ def train_job(spec: JobSpec, ds: Dataset, keep_model: bool = False):
     try:
         try:
             backend = SingleBackend(spec, ds)
-            result = train_members(backend, members, start, checkpoint=spec.checkpoint)[0]
+            result = train_members(backend, members, start, checkpoint=spec.checkpoint, on_epoch=on_epoch)[0]
         except checkpoints.Unfit as unfit:  # a damaged checkpoint costs the head start, not the job
             checkpoints.remove(spec.checkpoint)
             members = new_members([spec], environment())
             backend = SingleBackend(spec, ds)
-            result = train_members(backend, members, start, checkpoint=spec.checkpoint)[0]
+            result = train_members(backend, members, start, checkpoint=spec.checkpoint, on_epoch=on_epoch)[0]
             result.notes.append(f"its checkpoint did not fit the model ({unfit}); trained from scratch")
     except Exception as exc:  # a job's bug or bad numbers must not stop the grid
         result = members[0].result  # what was recorded before the failure
@@ -328,7 +338,7 @@ def train_job(spec: JobSpec, ds: Dataset, keep_model: bool = False):
     return result
 
 
-def train_group(specs: Sequence[JobSpec], ds: Dataset) -> list[JobResult]:
+def train_group(specs: Sequence[JobSpec], ds: Dataset, on_epoch: OnEpoch | None = None) -> list[JobResult]:
     """Train same-shaped jobs together on the stacked path. If the stacked computation
     itself fails, each job is retrained on its own and its result carries a note saying so."""
     from runner.training.stacked import StackedBackend
@@ -337,7 +347,7 @@ def train_group(specs: Sequence[JobSpec], ds: Dataset) -> list[JobResult]:
     start = time.perf_counter()
     try:
         backend = StackedBackend(specs, ds)
-        results = train_members(backend, new_members(specs, environment()), start)
+        results = train_members(backend, new_members(specs, environment()), start, on_epoch=on_epoch)
         for r in results:
             r.group = tuple(s.key for s in specs)
         return results
@@ -346,17 +356,28 @@ def train_group(specs: Sequence[JobSpec], ds: Dataset) -> list[JobResult]:
             f"the stacked path failed for its group of {len(specs)} ({type(exc).__name__}: {exc}); "
             "trained on its own instead"
         )
-        results = [train_job(s, ds) for s in specs]
+        results = _one_by_one(specs, ds, on_epoch)
         for r in results:
             r.notes.append(note)
         return results
 
 
-def train_item(item: tuple[JobSpec, ...], datasets: dict[str, Dataset]) -> list[JobResult]:
+def _one_by_one(specs: Sequence[JobSpec], ds: Dataset, on_epoch: OnEpoch | None) -> list[JobResult]:
+    """Each job on the single path in turn; progress counted over all of them."""
+    results: list[JobResult] = []
+    for i, spec in enumerate(specs):
+        share = None if on_epoch is None else (lambda f, i=i: on_epoch((i + f) / len(specs)))
+        results.append(train_job(spec, ds, on_epoch=share))
+    return results
+
+
+def train_item(
+    item: tuple[JobSpec, ...], datasets: dict[str, Dataset], on_epoch: OnEpoch | None = None
+) -> list[JobResult]:
     """Train one work item: a single job, or a stacked group of same-shaped jobs."""
     from runner.training.grouping import Stacked
 
     ds = datasets[item[0].data_id]
     if isinstance(item, Stacked):
-        return train_group(item, ds)
-    return [train_job(spec, ds) for spec in item]
+        return train_group(item, ds, on_epoch)
+    return _one_by_one(item, ds, on_epoch)

@@ -36,7 +36,7 @@ from runner.training import diagnostics
 from runner.training.job import JobSpec
 from runner.training.models import build_model
 from runner.training.scoring import score_members
-from runner.training.stacked_network import StackedMLP, cross_entropy_grad, mse_grad
+from runner.training.stacked_network import StackedMLP, aligned, cross_entropy_grad, mse_grad
 from runner.training.streams import streams
 
 __all__ = ["StackedBackend"]
@@ -72,7 +72,12 @@ def _splits(specs: list[JobSpec], ds: Dataset):
 
 
 def _stacked_inputs(arrays) -> torch.Tensor:
-    return torch.stack([torch.from_numpy(np.ascontiguousarray(X.reshape(len(X), -1))) for X in arrays])
+    """Each member's rows, flattened, in its own aligned block (stacked_network.aligned)."""
+    first = arrays[0].reshape(len(arrays[0]), -1)
+    out = aligned(len(arrays), first.shape, torch.from_numpy(first[:0]).dtype)
+    for k, X in enumerate(arrays):
+        out[k].copy_(torch.from_numpy(np.ascontiguousarray(X.reshape(len(X), -1))))
+    return out
 
 
 class _Dropout:
@@ -130,7 +135,7 @@ class StackedBackend:
         # Initialized member by member with each member's own generator, in the single-job
         # path's layer order and (out, in) layout, so both paths start from the same weights.
         self.widths = widths = [features, *model_s.hidden, n_out]
-        self.net = net = StackedMLP(K, widths, model_s.activation, model_s.leaky_slope)
+        self.net = net = StackedMLP(K, widths, model_s.activation, model_s.leaky_slope, batch_norm=model_s.batch_norm)
         act_gain = gain(model_s.activation, model_s.leaky_slope)
         for i, w in enumerate(net.weights):
             for k, s in enumerate(specs):
@@ -142,18 +147,19 @@ class StackedBackend:
                     gens[k][0],
                 )
         self.probe = min(diagnostics.PROBE_ROWS, n)
-        hyper = {h: _hyper(specs, h) for h in ("momentum", "beta1", "beta2", "eps", "weight_decay")}
+        hyper = {h: _hyper(specs, h) for h in ("momentum", "beta1", "beta2", "alpha", "eps", "weight_decay")}
         self.opt = StackedOptimizer([t.optimizer for t in T], [net.flat], [net.gflat], [net.is_weight], hyper)
         self.penalties = regularizers.StackedPenalties(T, net.flat, net.gflat, net.is_weight)
         self.clip = [t.clip_norm for t in T]
         self.dropout = _Dropout(specs, gens, widths)
         self.batch = T[0].batch_rows(n)
         self.steps_per_epoch = -(-n // self.batch)
-        self._X_rows, self._y_rows = self.Xtr.view(K * n, features), self.ytr.view(K * n)
-        self._offsets = (torch.arange(K) * n).unsqueeze(1)  # member k's rows start at k * n
-        self.X_epoch, self.y_epoch = torch.empty_like(self.Xtr), torch.empty_like(self.ytr)
+        self.X_epoch, self.y_epoch = aligned(K, (n, features)), torch.empty_like(self.ytr)
         self._dout: torch.Tensor | None = None
         self._state_names: dict = {}  # model settings -> the single network's state_dict names
+        self.steps = 0  # training steps taken by the group
+        self._steps_at: dict[int, int] = {}  # member -> steps at its last snapshot
+        self._restored: dict[int, int] = {}  # member -> steps at the snapshot it was restored to
 
     def split_records(self) -> list[dict[str, Any]]:
         return [sp.rows.record() for sp in self.splits]
@@ -191,17 +197,18 @@ class StackedBackend:
     def begin_epoch(self) -> None:
         """Each member's rows in its own order for this epoch, gathered once: mini-batches
         are then slices (K, m, features) of it."""
-        K, n = self.members, self.n
-        order = (torch.stack([torch.randperm(n, generator=g[1]) for g in self.gens]) + self._offsets).view(-1)
-        torch.index_select(self._X_rows, 0, order, out=self.X_epoch.view(K * n, -1))
-        torch.index_select(self._y_rows, 0, order, out=self.y_epoch.view(K * n))
+        for k, g in enumerate(self.gens):
+            order = torch.randperm(self.n, generator=g[1])
+            torch.index_select(self.Xtr[k], 0, order, out=self.X_epoch[k])
+            torch.index_select(self.ytr[k], 0, order, out=self.y_epoch[k])
 
     def losses(self, step: int) -> tuple[list[float], int]:
         bs = self.batch
         xb, yb = self.X_epoch[:, step * bs : (step + 1) * bs], self.y_epoch[:, step * bs : (step + 1) * bs]
         m = xb.shape[1]  # this mini-batch's rows per member
-        logits = self.net.forward(xb, self.dropout.masks(m), keep=True)
+        logits = self.net.forward(xb, self.dropout.masks(m), keep=True, train=True)
         values, self._dout = self.loss_grad(logits, yb)
+        self.steps += 1  # batch norm's num_batches_tracked, as the single network counts it
         return values.tolist(), m
 
     def update(self, lrs: list[float], active: list[bool]) -> None:
@@ -222,10 +229,12 @@ class StackedBackend:
         )
 
     def snapshot(self, k: int) -> torch.Tensor:
+        self._steps_at[k] = self.steps
         return self.net.member(k)
 
     def restore(self, k: int, state: torch.Tensor) -> None:
         self.net.load_member(k, state)
+        self._restored[k] = self._steps_at[k]
 
     def final_metrics(self) -> list[dict[str, dict[str, float]]]:
         splits = self.splits
@@ -263,7 +272,15 @@ class StackedBackend:
             skeleton = build_model(model_s, (self.widths[0],), self.widths[-1], g, g)
             self._state_names[model_s] = list(skeleton.state_dict())
         names = self._state_names[model_s]
-        tensors = [t[k] for pair in zip(self.net.weights, self.net.biases) for t in pair]
+        net = self.net
+        tensors = []
+        for i, (w, b) in enumerate(zip(net.weights, net.biases)):
+            tensors += [w[k], b[k]]
+            if i < len(net.norms):  # nn.BatchNorm1d's weight, bias, running_mean, running_var, num_batches_tracked
+                n = net.norms[i]
+                seen = self._restored.get(k, self.steps)
+                tensors += [n.gamma[k].reshape(-1), n.beta[k].reshape(-1), n.running_mean[k], n.running_var[k]]
+                tensors.append(torch.tensor(seen, dtype=torch.int64))
         if len(tensors) != len(names):
             raise RuntimeError(f"stacked layers {len(tensors)} do not match the network's {names}")
         return {name: t.numpy().copy() for name, t in zip(names, tensors)}
