@@ -6,7 +6,7 @@ from pathlib import Path
 
 import click
 
-from runner.cli.common import fail, load_grid, store_option, store_path
+from runner.cli.common import fail, load_grid, own_networks, store_option, store_path
 from runner.errors import UserError
 
 
@@ -20,6 +20,7 @@ def check(recipe_path, store, workers, no_probe, no_stack):
     """Validate RECIPE and print its plan: factors, jobs, what is stored, a time estimate."""
     try:
         recipe, grid = load_grid(recipe_path)
+        networks = own_networks(grid)
         from runner.execution.estimate import describe_plan
         from runner.execution.executors import default_workers
         from runner.store.database import Store
@@ -34,6 +35,8 @@ def check(recipe_path, store, workers, no_probe, no_stack):
     except UserError as err:
         fail(err)
     click.echo(f"{recipe_path}: valid.")
+    for line in networks:
+        click.echo(line)
     click.echo(text, nl=False)
 
 

@@ -6,7 +6,7 @@ import sys
 
 import click
 
-from runner.cli.common import fail, format_option, store_option, store_path
+from runner.cli.common import fail, format_option, own_networks, store_option, store_path
 from runner.errors import UserError
 
 
@@ -142,6 +142,9 @@ def _run(
 
     try:
         grid = expand(recipe)
+        for line in own_networks(grid):
+            if not quiet:
+                click.echo(line, err=True)
         where = on or recipe.run.on
         workers = workers or recipe.run.workers or default_workers()
         with Store(store_path(recipe, store)) as db:

@@ -20,6 +20,7 @@ from runner.components.optimizers import check_optimizer
 from runner.datasets.sources import Dataset, load_dataset, source_key
 from runner.errors import DataError, RecipeError, UserError
 from runner.recipe.loader import Recipe, resolve
+from runner.recipe.module_file import ModuleSource, check_python_settings, read_module
 from runner.recipe.settings import Settings
 from runner.training.job import JobSpec
 
@@ -48,6 +49,12 @@ class Config:
     assignments: Mapping[str, Any]  # path -> value set by the factors
     settings: Settings
     data_id: str
+    module: ModuleSource | None = None  # model.kind = "python": the network's file, read once
+
+    @property
+    def module_id(self) -> str | None:
+        """The hash of the network file's bytes, part of the identity (None: no file)."""
+        return self.module.sha256 if self.module is not None else None
 
 
 @dataclass(frozen=True)
@@ -66,6 +73,7 @@ class Job:
             data_id=self.config.data_id,
             checkpoint=checkpoint,
             time_limit=time_limit,
+            module=self.config.module,
         )
 
 
@@ -100,16 +108,16 @@ class Grid:
 
 
 def job_key(config: Config, seed: int, monitor: str) -> str:
-    text = canonical(
-        {
-            "v": KEY_VERSION,
-            "settings": config.settings.identity(),
-            "data": config.data_id,
-            "seed": seed,
-            "monitor": monitor,
-        }
-    )
-    return hashlib.sha256(text.encode()).hexdigest()[:24]
+    ident = {
+        "v": KEY_VERSION,
+        "settings": config.settings.identity(),
+        "data": config.data_id,
+        "seed": seed,
+        "monitor": monitor,
+    }
+    if config.module is not None:  # only then: other recipes keep their keys
+        ident["module"] = config.module_id
+    return hashlib.sha256(canonical(ident).encode()).hexdigest()[:24]
 
 
 def _excluded(assign: Mapping[str, Any], rules) -> bool:
@@ -128,6 +136,7 @@ def _expand(recipe: Recipe) -> Grid:
     factors = recipe.factors
     datasets: dict[str, Dataset] = {}
     by_source: dict[tuple, Dataset] = {}
+    modules: dict[str, ModuleSource] = {}
     configs: list[Config] = []
     task = None
     for combo in itertools.product(*(range(len(f.levels)) for f in factors)):
@@ -140,6 +149,7 @@ def _expand(recipe: Recipe) -> Grid:
         try:
             settings = resolve(recipe.sections, assign)
             _check_rules(settings)
+            module = _module(settings, recipe, modules)
         except RecipeError as err:
             if where:
                 err.hint = (err.hint + "; " if err.hint else "") + f"in the configuration {where}"
@@ -167,16 +177,25 @@ def _expand(recipe: Recipe) -> Grid:
                 value="cnn",
                 allowed='"digits" or an NPZ file with X of shape (N, H, W) or (N, C, H, W)',
             )
-        ident = hashlib.sha256(canonical({"settings": settings.identity(), "data": ds.fingerprint}).encode())
+        ident = {"settings": settings.identity(), "data": ds.fingerprint}
+        if module is not None:
+            ident["module"] = module.sha256
         configs.append(
             Config(
                 index=len(configs),
-                id=ident.hexdigest()[:12],
+                id=hashlib.sha256(canonical(ident).encode()).hexdigest()[:12],
                 levels=combo,
                 assignments=assign,
                 settings=settings,
                 data_id=ds.fingerprint,
+                module=module,
             )
+        )
+    if not modules and any(c.settings.model.file is not None for c in configs):
+        raise RecipeError(
+            'is set, but no configuration has model.kind = "python", so it is never used',
+            key="model.file",
+            hint='Add kind = "python" to [model] to train the network in that file',
         )
     if not configs:
         raise RecipeError(
@@ -194,6 +213,17 @@ def _expand(recipe: Recipe) -> Grid:
             allowed=", ".join(f'"val.{m}"' for m in for_task(task)),
         )
     return Grid(recipe, configs, datasets, rank_by, task)
+
+
+def _module(settings: Settings, recipe: Recipe, seen: dict[str, ModuleSource]) -> ModuleSource | None:
+    """The configuration's network file (read once per file), or None for the tool's own."""
+    model = settings.model
+    check_python_settings(model)
+    if model.kind != "python":
+        return None
+    if model.file not in seen:
+        seen[model.file] = read_module(model.file, recipe.base_dir)
+    return seen[model.file]
 
 
 def _check_rules(settings: Settings) -> None:

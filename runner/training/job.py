@@ -11,6 +11,7 @@ from enum import Enum
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
+    from runner.recipe.module_file import ModuleSource
     from runner.recipe.settings import Settings
 
 __all__ = ["FINISHED", "JobResult", "JobSpec", "Status"]
@@ -41,6 +42,7 @@ class JobSpec:
     data_id: str  # the dataset's fingerprint
     checkpoint: str | None = None  # file for mid-job checkpoints (train.checkpoint_every)
     time_limit: float | None = None  # overrides train.time_limit when set (--time-limit)
+    module: ModuleSource | None = None  # model.kind = "python": the network's source travels with the job
 
 
 @dataclass
