@@ -44,6 +44,14 @@ class ModuleSource:
 def check_python_settings(model) -> None:
     """Rules between the model settings of one configuration (``ModelSettings``)."""
     if model.kind != "python":
+        if model.init == "module":
+            raise RecipeError(
+                "keeps a user network's own initialization; the tool's networks need an initializer",
+                key="model.init",
+                value="module",
+                allowed='"module" only with model.kind = "python"',
+                hint='Choose an initializer such as "glorot_uniform", or set model.kind = "python"',
+            )
         return
     for key in ("file", "class_name"):
         if getattr(model, key) is None:

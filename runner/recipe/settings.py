@@ -74,7 +74,11 @@ MODEL = {
     "hidden": Param(IntList(low=1, min_len=0), (64, 64), "dense hidden layer widths; [] is a linear model"),
     "activation": Param(Choice(tuple(ACTIVATIONS)), "relu", "hidden-layer activation"),
     "leaky_slope": Param(Real(0, 1, low_open=True, high_open=True), 0.01, "negative slope of leaky_relu"),
-    "init": Param(Choice(tuple(INITIALIZERS)), "glorot_uniform", "weight initializer; biases start at 0"),
+    "init": Param(
+        Choice((*INITIALIZERS, "module")),
+        "glorot_uniform",
+        'weight initializer; biases start at 0; "module" (python only): keep your module\'s own',
+    ),
     "init_scale": Param(Real(0, None, low_open=True), 0.01, "std (normal) or bound (uniform) for those two inits"),
     "dropout": Param(Real(0, 1, high_open=True), 0.0, "inverted-dropout rate after each hidden layer"),
     "input_dropout": Param(Real(0, 1, high_open=True), 0.0, "inverted-dropout rate on the inputs"),

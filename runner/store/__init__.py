@@ -1,6 +1,6 @@
 """The results store: one SQLite file per recipe, touched only through ``Store``."""
 
-from runner.store.database import SCHEMA_VERSION, Store, StoredJob
+from runner.store.database import SCHEMA_VERSION, Store, StoredJob, StoredModule
 from runner.store.lock import STALE_AFTER, RunnerLock
 
-__all__ = ["SCHEMA_VERSION", "STALE_AFTER", "RunnerLock", "Store", "StoredJob"]
+__all__ = ["SCHEMA_VERSION", "STALE_AFTER", "RunnerLock", "Store", "StoredJob", "StoredModule"]

@@ -1,7 +1,9 @@
 """The results store: one SQLite file per recipe.
 
 Tables: recipes (each recipe text seen), jobs (identity, settings, status, timings, error,
-environment, diagnostics), metrics (final metric per split), curves (per-epoch values).
+environment, diagnostics), metrics (final metric per split), curves (per-epoch values),
+modules (the source text of each user network file seen, by hash) and job_modules (which
+one a job of model.kind = "python" trained: ``Store.job_module``).
 A job's whole result is written in one transaction when it finishes, so a killed process
 leaves either the complete result or none of it. Only finished jobs are stored.
 """
@@ -21,7 +23,7 @@ from typing import Any
 from runner.errors import StoreError
 from runner.training.job import FINISHED, JobResult, Status
 
-__all__ = ["SCHEMA_VERSION", "Store", "StoredJob"]
+__all__ = ["SCHEMA_VERSION", "Store", "StoredJob", "StoredModule"]
 
 SCHEMA_VERSION = 1
 
@@ -44,6 +46,11 @@ CREATE TABLE IF NOT EXISTS running (
 CREATE TABLE IF NOT EXISTS curves (
     job_key TEXT NOT NULL REFERENCES jobs(key) ON DELETE CASCADE, name TEXT NOT NULL,
     epoch INTEGER NOT NULL, value REAL, PRIMARY KEY (job_key, name, epoch));
+CREATE TABLE IF NOT EXISTS modules (
+    sha256 TEXT PRIMARY KEY, file TEXT NOT NULL, source TEXT NOT NULL, first_seen REAL NOT NULL);
+CREATE TABLE IF NOT EXISTS job_modules (
+    job_key TEXT PRIMARY KEY REFERENCES jobs(key) ON DELETE CASCADE,
+    sha256 TEXT NOT NULL REFERENCES modules(sha256));
 CREATE TABLE IF NOT EXISTS exports (
     uri TEXT NOT NULL, job_key TEXT NOT NULL, run_id TEXT NOT NULL, exported REAL NOT NULL,
     PRIMARY KEY (uri, job_key));
@@ -66,6 +73,21 @@ class StoredJob:
     env: dict[str, Any]
     diagnostics: dict[str, Any]
     recipe_hash: str
+
+
+@dataclass(frozen=True)
+class StoredModule:
+    """What rebuilds a job's own network (model.kind = "python"): exec ``source`` as a
+    module, take its class ``class_name`` and call it with ``args`` as keyword arguments
+    (the tool then initializes and trains it; a trained model's weights are not kept here).
+    ``file`` is the path the recipe gave, relative to the recipe; ``sha256`` hashes the
+    file's bytes and is part of the job's key."""
+
+    file: str
+    class_name: str
+    args: dict[str, Any]
+    source: str
+    sha256: str
 
 
 def _num(value):
@@ -151,6 +173,13 @@ class Store:
                     json.dumps(diagnostics, sort_keys=True),
                 ),
             )
+            module = getattr(job.config, "module", None)
+            if module is not None:
+                c.execute(
+                    "INSERT OR IGNORE INTO modules VALUES (?, ?, ?, ?)",
+                    (module.sha256, module.file, module.source, time.time()),
+                )
+                c.execute("INSERT INTO job_modules VALUES (?, ?)", (job.key, module.sha256))
             c.executemany(
                 "INSERT INTO metrics VALUES (?,?,?,?)",
                 [(job.key, split, name, _num(v)) for split, vals in result.metrics.items() for name, v in vals.items()],
@@ -191,6 +220,21 @@ class Store:
                 )
             )
         return out
+
+    def job_module(self, key: str) -> StoredModule | None:
+        """The network a stored job of model.kind = "python" trained, or None (the tool's own
+        network, or no such job)."""
+        row = self.conn.execute(
+            "SELECT j.settings, m.file, m.source, m.sha256 FROM job_modules x JOIN jobs j ON j.key = x.job_key"
+            " JOIN modules m ON m.sha256 = x.sha256 WHERE x.job_key = ?",
+            (key,),
+        ).fetchone()
+        if row is None:
+            return None
+        model = json.loads(row[0])["model"]
+        return StoredModule(
+            file=row[1], class_name=model["class_name"], args=model["args"], source=row[2], sha256=row[3]
+        )
 
     def latest_recipe(self) -> tuple[str, str] | None:
         """(text, path) of the recipe this store saw last, or None."""

@@ -14,7 +14,7 @@ What the tool does to it, so that every setting means what it means for its own 
   order) is then initialized by ``model.init`` from the job's init stream, with the gain of
   ``model.activation`` (the last such layer gain 1, as the output layer) and its bias set to
   zero; other layers (normalization, embeddings, recurrent cells, bare parameters) keep
-  their own initialization;
+  their own initialization, and ``model.init = "module"`` keeps the module's own for all;
 - each ``nn.Dropout`` becomes the tool's Dropout at the same rate, whose masks come from the
   job's dropout stream; torch's global generator is then seeded from the job's seed, so
   random draws inside ``forward`` (functional dropout, noise) are reproducible too.
@@ -163,7 +163,7 @@ def build_user_model(
     seed = init_gen.initial_seed()
     net = _construct(cls, module, model.args, _derived_seed(seed, 1))
     _own_dropout(net, dropout_gen)
-    weighted = layers_with_weights(net)
+    weighted = layers_with_weights(net) if model.init != "module" else []
     for i, layer in enumerate(weighted):
         layer_gain = 1.0 if i == len(weighted) - 1 else gain(model.activation, model.leaky_slope)
         initialize(model.init, layer.weight, layer_gain, model.init_scale, init_gen)
@@ -216,10 +216,12 @@ def _probe(net: nn.Module, x: torch.Tensor, n_out: int, classify: bool, label: s
 def _describe(net: nn.Module, model, label: str, shapes: tuple) -> list[str]:
     params = sum(p.numel() for p in net.parameters())
     weighted = layers_with_weights(net)
-    lines = [
-        f"  {label}: {params:,} parameters; {len(weighted)} Linear/Conv layers initialized by model.init "
-        f'"{model.init}"; probe batch {shapes[0]} -> {shapes[1]}'
-    ]
+    how = (
+        'its own initialization (model.init = "module")'
+        if model.init == "module"
+        else f'{len(weighted)} Linear/Conv layers initialized by model.init "{model.init}"'
+    )
+    lines = [f"  {label}: {params:,} parameters; {how}; probe batch {shapes[0]} -> {shapes[1]}"]
     names = activation_names(net)
     if not names:
         lines.append(
