@@ -22,7 +22,7 @@ from runner.errors import RecipeError
 
 __all__ = ["ModuleSource", "check_python_settings", "read_module"]
 
-CONTRACT = "the class named by model.class_name in a .py file in the recipe's folder or below it"
+CONTRACT = "a .py file in the recipe's folder or below it"
 
 
 @dataclass(frozen=True, slots=True)

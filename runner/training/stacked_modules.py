@@ -139,7 +139,15 @@ class ModuleStackBackend:
             self.masks.pending = list(m)
             return functional_call(self.base, (p, b), (x,))
 
-        return vmap(one, randomness="error")(params, self.buffers, X, masks)
+        try:
+            return vmap(one, randomness="error")(params, self.buffers, X, masks)
+        except RuntimeError as exc:
+            if "random" not in str(exc):
+                raise
+            raise RuntimeError(
+                "the network draws random numbers in forward (other than through nn.Dropout), which "
+                "cannot come from each member's own seed here"
+            ) from None
 
     def _losses(self, out: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
         """Each member's mean loss (K,), as the single path's cross-entropy or MSE."""

@@ -10,10 +10,10 @@ What the tool does to it, so that every setting means what it means for its own 
 - construction draws from torch's global generator (as torch's layers do by default); the
   tool seeds it from the job's initialization stream for the constructor's duration and
   restores it afterwards, so the module's own initialization is seeded too;
-- every Linear and Conv layer (``models.layers_with_weights``, in the module's registration
-  order) is then initialized by ``model.init`` from the job's init stream, with the gain of
-  ``model.activation`` (the last such layer gain 1, as the output layer) and its bias set to
-  zero; other layers (normalization, embeddings, recurrent cells, bare parameters) keep
+- every Linear and Conv layer (``models.layers_with_weights``) is then initialized by
+  ``model.init`` from the job's init stream, in the order the forward pass first calls them,
+  with the gain of ``model.activation`` (the last one called gets gain 1: it is the output
+  layer) and its bias set to zero; other layers (normalization, embeddings, recurrent cells, bare parameters) keep
   their own initialization, and ``model.init = "module"`` keeps the module's own for all;
 - each ``nn.Dropout`` becomes the tool's Dropout at the same rate, whose masks come from the
   job's dropout stream; torch's global generator is then seeded from the job's seed, so
@@ -80,7 +80,9 @@ def _run_source(module: ModuleSource) -> types.ModuleType:
         raise UserCodeError(
             f"running {module.file} failed: {summarize_exception(exc, module.file)}",
             key="model.file",
-            hint="The file must import only installed packages (not other files beside it)",
+            hint="The file may import installed packages, not other files beside it"
+            if isinstance(exc, ImportError)
+            else None,
         ) from None
     _LOADED[module.sha256] = mod
     return mod
@@ -142,6 +144,32 @@ def _own_dropout(net: nn.Module, generator: torch.Generator) -> None:
                 setattr(parent, name, Dropout(child.p, generator))
 
 
+def _forward_order(net: nn.Module, in_shape: tuple[int, ...], file: str) -> list[nn.Module]:
+    """The Linear/Conv layers in the order a forward pass first calls them (on two rows of
+    zeros, in eval mode), then any it never calls in registration order: the output layer is
+    the last one called, whatever order the module defines its layers in."""
+    called: dict[nn.Module, None] = {}
+    layers = layers_with_weights(net)
+    hooks = [m.register_forward_hook(lambda m, _i, _o: called.setdefault(m)) for m in layers]
+    was_training = net.training
+    net.eval()
+    try:
+        with torch.no_grad(), torch.random.fork_rng(devices=[]):
+            net(torch.zeros(2, *in_shape))
+    except Exception as exc:
+        raise UserCodeError(
+            f"{type(net).__name__}'s forward pass on two rows of zeros of shape {(2, *in_shape)} failed: "
+            f"{summarize_exception(exc, file)}",
+            key="model.class_name",
+            allowed=f"a forward taking rows of shape {in_shape} as the data gives them",
+        ) from None
+    finally:
+        for h in hooks:
+            h.remove()
+        net.train(was_training)
+    return list(called) + [m for m in layers if m not in called]
+
+
 def _derived_seed(seed: int, purpose: int) -> int:
     return int(np.random.SeedSequence([seed, purpose]).generate_state(1)[0])
 
@@ -163,7 +191,7 @@ def build_user_model(
     seed = init_gen.initial_seed()
     net = _construct(cls, module, model.args, _derived_seed(seed, 1))
     _own_dropout(net, dropout_gen)
-    weighted = layers_with_weights(net) if model.init != "module" else []
+    weighted = _forward_order(net, in_shape, module.file) if model.init != "module" else []
     for i, layer in enumerate(weighted):
         layer_gain = 1.0 if i == len(weighted) - 1 else gain(model.activation, model.leaky_slope)
         initialize(model.init, layer.weight, layer_gain, model.init_scale, init_gen)
@@ -236,6 +264,15 @@ def _describe(net: nn.Module, model, label: str, shapes: tuple) -> list[str]:
     return lines
 
 
+def _line(recipe, key: str | None) -> int | None:
+    """The recipe line of a key; for the arguments, their [model.args] table if it has one."""
+    if key == "model.args":
+        for n, line in enumerate(recipe.text.splitlines(), 1):
+            if line.strip().replace(" ", "") == "[model.args]":
+                return n
+    return recipe.line_of(key)
+
+
 def check_user_modules(grid) -> list[str]:
     """Validate every configuration's own network, running its file's code in this process:
     import, construction with its arguments, the output shape on a probe batch and a
@@ -266,7 +303,7 @@ def check_user_modules(grid) -> list[str]:
             where = ", ".join(f"{f.name} = {f.label(i)}" for f, i in zip(recipe.factors, config.levels))
             if where and len(grid.configs) > 1:
                 err.hint = (err.hint + "; " if err.hint else "") + f"in the configuration {where}"
-            raise err.located(where=recipe.path.name, line=recipe.line_of(err.key)) from None
+            raise err.located(where=recipe.path.name, line=_line(recipe, err.key)) from None
         seen[key] = _describe(net, model, label, (tuple(x.shape), out_shape))
     if not files:
         return []
