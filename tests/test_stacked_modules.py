@@ -17,8 +17,9 @@ from runner.training.loop import train_group, train_job
 
 # The same tolerance, and the same reasoning, as tests/test_stack.py's for the tool's stacked
 # MLP: the kernels sum in another order, so float32 results differ in the last bits and
-# training can amplify that. Measured here on 80 members of MIXED after one epoch (AMD EPYC,
-# 2 cores): median relative difference of the loss curves 1.3e-8, largest 7e-7. A member past
+# training can amplify that. Measured on the 80 members of MIXED after one epoch (AMD EPYC,
+# 2 cores): median relative difference of the loss curves 1.4e-8, largest 6e-7 (the test runs
+# its first seed, 40 members, to keep the fast loop short). A member past
 # 1e-5 is allowed only if the single path alone moves it at least a tenth as much when its
 # inputs are nudged by float32 rounding (the member is that sensitive, whatever the path).
 ONE_EPOCH_MAX_RTOL = 1e-5
@@ -107,10 +108,10 @@ def _agree(items, ds, max_sensitive: int) -> list[float]:
 
 def test_one_epoch_agrees_with_the_single_path(tmp_path):
     """Mixed optimizers, learning rates, L2, L1, weight decay, clipping, two initializers,
-    input and hidden dropout (masks from each member's own stream): 80 jobs in 5 groups."""
-    _, specs, ds = grid_of(tmp_path, MIXED.format(epochs=1))
+    input and hidden dropout (masks from each member's own stream): 40 jobs in 3 groups."""
+    _, specs, ds = grid_of(tmp_path, MIXED.format(epochs=1).replace("seeds = [1, 2]", "seeds = [1]"))
     items = group_specs(specs, {ds.fingerprint: ds})
-    assert [len(i) for i in items] == [16] * 5 and len({stack_key(s) for s in specs}) == 1
+    assert [len(i) for i in items] == [13, 14, 13] and len({stack_key(s) for s in specs}) == 1
     rel = _agree(items, ds, max_sensitive=2)
     assert float(np.median(rel)) < ONE_EPOCH_MEDIAN_RTOL
 
