@@ -82,7 +82,7 @@ GRIDS = {
     "args = { widths = [64, 128, 128, 10] }\n",
     "C: user CNN 8-16 + linear": '[model]\nkind = "python"\nfile = "nets.py"\nclass_name = "Small"\n'
     "args = { channels = [8, 16], classes = 10 }\n",
-    "M as model.kind = mlp": '[model]\nhidden = [128, 128]\n',
+    "M as model.kind = mlp": "[model]\nhidden = [128, 128]\n",
 }
 
 

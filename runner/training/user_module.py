@@ -45,6 +45,7 @@ from runner.training.models import Dropout, layers_with_weights
 __all__ = ["UserCodeError", "build_user_model", "check_user_modules", "load_class", "summarize_exception"]
 
 PROBE_BATCH = 4  # rows of the probe batch at validation
+SHOWN = 6  # networks described one by one by `recipe check` and `recipe run`
 
 _LOADED: dict[str, types.ModuleType] = {}  # sha256 -> the module run from that source, per process
 
@@ -312,4 +313,8 @@ def check_user_modules(grid) -> list[str]:
         "every worker; only files in the recipe's folder are loaded"
         for m in files.values()
     ]
-    return lines + [line for described in seen.values() for line in described]
+    described = list(seen.values())
+    shown = [line for lines_of_one in described[:SHOWN] for line in lines_of_one]
+    if len(described) > SHOWN:
+        shown.append(f"  ... and {len(described) - SHOWN} more networks (other arguments), each probed the same way")
+    return lines + shown
