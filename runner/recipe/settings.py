@@ -261,14 +261,23 @@ class Settings:
         for section, keys in NOT_IDENTITY.items():
             for key in keys:
                 out[section].pop(key)
-        for section, defaults in ADDED_LATER.items():
-            for key, default in defaults.items():
-                if getattr(getattr(self, section), key) == default:
-                    out[section].pop(key)
+        for section, key in self.unused_later():
+            out[section].pop(key)
         return out
 
+    def unused_later(self) -> list[tuple[str, str]]:
+        """The ADDED_LATER settings that hold their default, as (section, key)."""
+        return [
+            (section, key)
+            for section, defaults in ADDED_LATER.items()
+            for key, default in defaults.items()
+            if getattr(getattr(self, section), key) == default
+        ]
+
     def flat(self) -> dict[str, Any]:
-        """Every setting by dotted path, e.g. {"train.lr": 0.001, "data.split.val": 0.2}."""
+        """Every setting by dotted path, e.g. {"train.lr": 0.001, "data.split.val": 0.2};
+        ADDED_LATER settings only when they are set (boards and MLflow runs of recipes that
+        do not use them look as they did)."""
         out: dict[str, Any] = {}
 
         def walk(node: Mapping[str, Any], prefix: str) -> None:
@@ -279,6 +288,8 @@ class Settings:
                     out[f"{prefix}{key}"] = value
 
         walk(self.to_dict(), "")
+        for section, key in self.unused_later():
+            out.pop(f"{section}.{key}", None)
         return out
 
     def with_train(self, **changes: Any) -> Settings:
