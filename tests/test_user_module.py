@@ -341,6 +341,7 @@ def test_check_and_run_say_that_the_file_runs_and_which_class(tmp_path):
         class_name = "Dense"
         activation = "tanh"
         init = "he_normal"
+        hidden = [32]
         [model.args]
         widths = [4, 8, 3]
         [train]
@@ -348,6 +349,7 @@ def test_check_and_run_say_that_the_file_runs_and_which_class(tmp_path):
     """,
     )
     checked = invoke("check", path, "--no-probe")
+    assert "note: your network ignores model.hidden (settings of the tool's own networks)" in checked.stdout
     assert checked.exit_code == 0, checked.stderr
     assert "this recipe runs the code of nets.py (sha256 " in checked.stdout
     assert "Dense(widths=[4, 8, 3]): 67 parameters; 2 Linear/Conv layers initialized" in checked.stdout

@@ -274,6 +274,22 @@ def _line(recipe, key: str | None) -> int | None:
     return recipe.line_of(key)
 
 
+TOOL_ONLY = ("hidden", "batch_norm", "channels", "kernel_size", "pool")  # the tool's own networks' shape
+
+
+def _ignored(grid) -> list[str]:
+    """A note when the recipe sets the tool's own networks' shape while every configuration
+    trains the user's: those settings change nothing (a user may think they do)."""
+    if any(c.module is None for c in grid.configs):
+        return []
+    recipe = grid.recipe
+    given = {f"model.{k}" for k in recipe.sections.get("model", {}) if k in TOOL_ONLY}
+    given |= {p for f in recipe.factors for p in f.paths if p.split(".", 1)[1] in TOOL_ONLY and p.startswith("model.")}
+    if not given:
+        return []
+    return [f"note: your network ignores {', '.join(sorted(given))} (settings of the tool's own networks)"]
+
+
 def check_user_modules(grid) -> list[str]:
     """Validate every configuration's own network, running its file's code in this process:
     import, construction with its arguments, the output shape on a probe batch and a
@@ -308,7 +324,7 @@ def check_user_modules(grid) -> list[str]:
         seen[key] = _describe(net, model, label, (tuple(x.shape), out_shape))
     if not files:
         return []
-    lines = [
+    lines = _ignored(grid) + [
         f"model.file: this recipe runs the code of {m.file} (sha256 {m.short}) in this process and in "
         "every worker; only files in the recipe's folder are loaded"
         for m in files.values()
