@@ -38,11 +38,20 @@ from runner.components.activations import gain
 from runner.components.initializers import initialize
 from runner.components.metrics import Task
 from runner.errors import RecipeError
+from runner.recipe.constraints import ArgValue
 from runner.recipe.module_file import ModuleSource
 from runner.training.diagnostics import activation_kind
 from runner.training.models import Dropout, layers_with_weights
 
-__all__ = ["UserCodeError", "build_user_model", "check_user_modules", "load_class", "summarize_exception"]
+__all__ = [
+    "UserCodeError",
+    "activation_names",
+    "build_user_model",
+    "check_user_modules",
+    "load_class",
+    "rebuild_network",
+    "summarize_exception",
+]
 
 PROBE_BATCH = 4  # rows of the probe batch at validation
 SHOWN = 6  # networks described one by one by `recipe check` and `recipe run`
@@ -131,6 +140,19 @@ def _construct(cls: type[nn.Module], module: ModuleSource, args: Sequence[tuple[
     if not any(True for _ in net.parameters()):
         raise UserCodeError(f"{cls.__name__} has no parameters to train", key="model.class_name", value=cls.__name__)
     return net
+
+
+def rebuild_network(file: str, source: str, class_name: str, args: dict[str, Any]) -> nn.Module:
+    """A user's network rebuilt from what a job stores (``Store.job_module``): the class from
+    the source text, constructed with the arguments, untrained. A trained model's
+    ``state_dict`` loads into it (the tool's dropout and initialization add no parameter or
+    buffer). Runs the source's code."""
+    import hashlib
+
+    module = ModuleSource(file=file, source=source, sha256=hashlib.sha256(source.encode()).hexdigest())
+    cls = load_class(module, class_name)
+    frozen = tuple(sorted((k, ArgValue().check(v)) for k, v in args.items()))
+    return _construct(cls, module, frozen, 0)
 
 
 def _as_list(value: Any) -> Any:
