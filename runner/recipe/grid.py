@@ -191,11 +191,12 @@ def _expand(recipe: Recipe) -> Grid:
                 module=module,
             )
         )
-    if not modules and any(c.settings.model.file is not None for c in configs):
+    unused = [k for k in ("file", "class_name", "args") if any(getattr(c.settings.model, k) for c in configs)]
+    if not modules and unused:
         raise RecipeError(
             'is set, but no configuration has model.kind = "python", so it is never used',
-            key="model.file",
-            hint='Add kind = "python" to [model] to train the network in that file',
+            key=f"model.{unused[0]}",
+            hint='Add kind = "python" to [model] to train your own network',
         )
     if not configs:
         raise RecipeError(

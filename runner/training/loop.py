@@ -5,9 +5,9 @@ A backend trains K members: one job on the single path (single.py, torch autogra
 stacked group of same-shaped jobs (stacked.py; stacked_modules.py for a user's own network).
 The loop owns everything that must mean the same on all of them: each step's learning
 rate, divergence (a loss that is not finite or exceeds ``diverge_factor`` times the
-member's first loss), time limits, the per-epoch curves, early
-stopping with the best epoch's weights restored, checkpoints, final scoring on every split,
-the train-val gap and the end-of-training diagnostics. A new stopping rule, curve or flag is
+member's first loss), time limits, the per-epoch curves, early stopping with the best
+epoch's weights restored, checkpoints, final scoring on every split, the train-val gap and
+the end-of-training diagnostics. A new stopping rule, curve or flag is
 written here once; a backend only computes.
 
 ``train_item`` is the entry point for a work item (see grouping.py): a stacked group that
