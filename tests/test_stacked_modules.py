@@ -189,3 +189,25 @@ def test_a_network_drawing_random_numbers_trains_one_at_a_time_and_says_so(tmp_p
     with sqlite3.connect(store) as c:
         notes = [json.loads(d)["notes"] for (d,) in c.execute("SELECT diagnostics FROM jobs")]
     assert len(notes) == 2 and all("trained on its own instead" in n[0] for n in notes)
+
+
+def test_regression_members_agree_with_the_single_path(tmp_path):
+    """(batch, 1) outputs and the squared-error loss on standardized targets, per member."""
+    text = """
+        name = "reg"
+        seeds = [1, 2]
+        [data]
+        source = "diabetes"
+        [model]
+        kind = "python"
+        file = "nets.py"
+        class_name = "Dense"
+        args = { widths = [10, 16, 1], p = 0.1 }
+        [train]
+        epochs = 2
+        [factors]
+        "train.optimizer" = ["sgd", "adam"]
+    """
+    _, specs, ds = grid_of(tmp_path, text)
+    rel = _agree(group_specs(specs, {ds.fingerprint: ds}), ds, max_sensitive=0)
+    assert float(np.median(rel)) < ONE_EPOCH_MEDIAN_RTOL
