@@ -610,3 +610,28 @@ def test_a_killed_user_network_job_resumes_from_its_checkpoint_bit_for_bit(tmp_p
     a, b = _stored(killed), _stored(clean)
     assert a[0] == b[0] and a[1] == b[1]
     assert '"resumed_from_epoch": 6' in a[2][0][2]
+
+
+@pytest.mark.slow
+def test_reading_results_runs_none_of_the_networks_code(tmp_path):
+    """board and status hash the file's bytes for the job keys but never import it (nor torch)."""
+    import subprocess
+
+    from conftest import PYTHON, subprocess_env
+
+    marker = tmp_path / "imported"
+    source = f"open({str(marker)!r}, 'a').write('x')\n" + (NETWORKS / "nets.py").read_text()
+    (tmp_path / "nets.py").write_text(source)
+    path = write_recipe(tmp_path, ARGS_STUDY.format(args="widths = [4, 8, 3]"))
+    assert invoke("run", path, "--workers", 1, "-q").exit_code == 0
+    assert marker.exists()
+    marker.unlink()
+    for command in ("board", "status"):
+        code = (
+            f"import sys\nfrom runner.cli.app import cli\ntry:\n    cli([{command!r}, {str(path)!r}])\n"
+            "except SystemExit as e:\n    print(e.code, 'torch' in sys.modules)"
+        )
+        proc = subprocess.run([PYTHON, "-c", code], env=subprocess_env(), capture_output=True, text=True)
+        assert proc.stdout.split()[-2:] == ["0", "False"], proc.stderr
+        assert "4 done" in proc.stdout or "2/2" in proc.stdout
+    assert not marker.exists()
