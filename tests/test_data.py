@@ -175,10 +175,10 @@ def test_new_data_settings_join_the_identity_only_when_set():
     """categorical, missing, image_size and color at their defaults are left out of a
     job's identity (results stored before they existed keep their keys); set to anything
     else, they are in it."""
-    from runner.recipe.settings import IDENTITY_FROM
+    from runner.recipe.settings import ADDED_LATER
 
     base = resolve({"data": {"source": "iris"}}, {})
-    assert not set(IDENTITY_FROM["data"]) & set(base.identity()["data"])
+    assert not set(ADDED_LATER["data"]) & set(base.identity()["data"])
     for key, value in (("categorical", "onehot"), ("missing", "impute"), ("color", "rgb"), ("image_size", [4, 4])):
         changed = resolve({"data": {"source": "iris", key: value}}, {})
         assert key in changed.identity()["data"] and changed.identity() != base.identity()

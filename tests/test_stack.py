@@ -1,6 +1,5 @@
 """stack: stacked training against torch.optim and against the single-job path."""
 
-import dataclasses
 import json
 
 import numpy as np
@@ -9,7 +8,6 @@ import torch
 from conftest import invoke, write_recipe
 
 from runner.components.optimizers import STACKED_OPTIMIZERS, StackedOptimizer
-from runner.datasets.sources import Dataset
 from runner.execution.executors import prepare_process
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
@@ -185,8 +183,7 @@ def _agrees_with_single_jobs(specs, ds, explained_only: bool = False) -> None:
     rel, sensitive = [], []
     # the same data with every value scaled by 1 + N(0, 3e-7): a perturbation of float32 rounding's size
     jitter = np.random.default_rng(0).normal(0.0, 3e-7, ds.X.shape)
-    nudged = Dataset(**{f.name: getattr(ds, f.name) for f in dataclasses.fields(Dataset)})  # its arrays, loaded
-    nudged = dataclasses.replace(nudged, X=(ds.X * (1.0 + jitter)).astype(ds.X.dtype))
+    nudged = ds.replaced(X=(ds.X * (1.0 + jitter)).astype(ds.X.dtype))
     for spec, r in zip(specs, stacked):
         single = run_job(spec, ds)
         assert r.diagnostics["stacked"] == len(specs)

@@ -6,7 +6,7 @@ from pathlib import Path
 
 import click
 
-from runner.cli.common import fail, load_grid, store_option, store_path
+from runner.cli.common import fail, load_grid, own_networks, store_option, store_path
 from runner.errors import UserError
 from runner.files import write_output
 
@@ -24,6 +24,7 @@ def check(recipe_path, store, workers, no_probe, no_stack):
         from runner.datasets.feasibility import check_grid_splits
 
         check_grid_splits(grid)  # every split the run would make, before any probe trains
+        networks = own_networks(grid)
         from runner.execution.estimate import plan_report
         from runner.execution.executors import default_workers
         from runner.store.database import Store
@@ -38,6 +39,8 @@ def check(recipe_path, store, workers, no_probe, no_stack):
     except UserError as err:
         fail(err)
     click.echo(f"{recipe_path}: valid.")
+    for line in networks:
+        click.echo(line)
     click.echo(text, nl=False)
 
 

@@ -10,7 +10,7 @@ import click
 
 from runner.errors import UserError
 
-__all__ = ["checked_on", "fail", "format_option", "load_grid", "store_option", "store_path"]
+__all__ = ["checked_on", "fail", "format_option", "load_grid", "own_networks", "store_option", "store_path"]
 
 
 def fail(err: UserError) -> None:
@@ -44,6 +44,16 @@ def load_grid(recipe_path: str):
     from runner.recipe.grid import expand
 
     return recipe, expand(recipe)
+
+
+def own_networks(grid) -> list[str]:
+    """Validate the recipe's own networks (model.kind = "python") by running their code;
+    lines saying so for the user. Torch is imported only when the recipe has one."""
+    if all(c.module is None for c in grid.configs):
+        return []
+    from runner.training.user_module import check_user_modules
+
+    return check_user_modules(grid)
 
 
 store_option = click.option(

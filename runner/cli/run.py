@@ -7,7 +7,7 @@ import sys
 
 import click
 
-from runner.cli.common import checked_on, fail, format_option, store_option, store_path
+from runner.cli.common import checked_on, fail, format_option, own_networks, store_option, store_path
 from runner.cli.stops import exit_status, stop_on_signals
 from runner.errors import UserError
 
@@ -150,6 +150,9 @@ def _run(
     try:
         grid = expand(recipe)
         check_grid_splits(grid)  # every split the jobs will make, before any job trains
+        for line in own_networks(grid):
+            if not quiet:
+                click.echo(line, err=True)
         # the lock is held from before --fresh deletes anything and before the plan is shown
         db, lock = _open_for_run(store_path(recipe, store))
         if lock is None:

@@ -174,10 +174,12 @@ def split_parameters(model: torch.nn.Module) -> tuple[list, list]:
     """(weights of linear/conv layers, everything else: biases and normalization)."""
     import torch
 
+    nn = torch.nn
+    weighted = (nn.Linear, nn.Conv1d, nn.Conv2d, nn.Conv3d)  # as training.models.WEIGHTED
     decay, no_decay = [], []
     for module in model.modules():
         for name, param in module.named_parameters(recurse=False):
-            is_weight = name == "weight" and isinstance(module, (torch.nn.Linear, torch.nn.Conv2d))
+            is_weight = name == "weight" and isinstance(module, weighted)
             (decay if is_weight else no_decay).append(param)
     return decay, no_decay
 

@@ -55,8 +55,7 @@ def check_splits(ds: Dataset, data: DataSettings, seeds) -> None:
     # X, so checking many seeds of a large dataset costs only the row draws.
     proxy = ds
     if ds.layout is None:
-        column = np.zeros((len(ds.y), 1), np.float32)
-        proxy = Dataset(column, ds.y, ds.task, ds.classes, ("x",), ds.fingerprint, ds.label)
+        proxy = ds.replaced(X=np.zeros((len(ds.y), 1), np.float32), feature_names=("x",))
     folds = range(data.split.folds) if data.split.validation == "folds" else [None]
     for seed, fold in ((s, f) for s in seeds for f in folds):
         try:
@@ -124,7 +123,7 @@ def _explain(ds: Dataset, data: DataSettings, seed: int) -> DataError:
 
 def _works(ds: Dataset, data: DataSettings, seed: int) -> bool:
     try:
-        split_and_scale(dataclasses.replace(ds, X=np.zeros((len(ds.y), 1), np.float32), layout=None), data, seed)
+        split_and_scale(ds.replaced(X=np.zeros((len(ds.y), 1), np.float32), layout=None), data, seed)
     except DataError:
         return False
     return True

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import copy
 import csv
+import dataclasses
 import hashlib
 from dataclasses import dataclass
 from pathlib import Path
@@ -57,6 +58,11 @@ class Dataset:
     @property
     def image_shape(self) -> tuple[int, ...] | None:
         return tuple(self.X.shape[1:]) if self.X.ndim == 4 else None
+
+    def replaced(self, **changes) -> Dataset:
+        """A plain Dataset of these arrays (a bundled set's, loaded) with ``changes`` made."""
+        fields = {f.name: getattr(self, f.name) for f in dataclasses.fields(Dataset)}
+        return Dataset(**{**fields, **changes})
 
     @property
     def shape(self) -> tuple[int, ...]:

@@ -167,7 +167,11 @@ def read_bundle(path: str | Path) -> tuple[Bundle, dict[str, np.ndarray]]:
         )
     network = _need(doc, "network", dict, where)
     try:
-        model = validate_table(_need(network, "model", dict, where), MODEL, "network.model")
+        given = _need(network, "model", dict, where)
+        # settings left unset are written as null or [] (model.file, model.args of the tool's own networks)
+        unset = {k for k, v in given.items() if k in MODEL and MODEL[k].default in (None, ()) and v in (None, [])}
+        given = {k: v for k, v in given.items() if k not in unset}
+        model = validate_table(given, MODEL, "network.model")
     except UserError as err:
         raise BundleError(err.problem, where=where, key=err.key, value=err.value, allowed=err.allowed) from None
     settings = ModelSettings(**{k: tuple(v) if isinstance(v, list) else v for k, v in model.items()})

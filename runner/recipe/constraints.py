@@ -16,6 +16,8 @@ from typing import Any
 from runner.errors import MISSING, RecipeError
 
 __all__ = [
+    "ArgValue",
+    "Arguments",
     "Boolean",
     "Choice",
     "Constraint",
@@ -36,11 +38,15 @@ __all__ = [
 class Invalid(ValueError):
     """A value broke a constraint; ``problem`` says how, ``allowed`` says what would do."""
 
-    def __init__(self, problem: str, allowed: str, hint: str | None = None):
+    def __init__(
+        self, problem: str, allowed: str, hint: str | None = None, key: str | None = None, value: Any = MISSING
+    ):
         super().__init__(problem)
         self.problem = problem
         self.allowed = allowed
         self.hint = hint
+        self.key = key  # an entry inside the checked value (e.g. one constructor argument)
+        self.value = value  # that entry's value
 
 
 class Constraint:
@@ -206,6 +212,65 @@ class Either(Constraint):
 
 
 @dataclass(frozen=True, slots=True)
+class ArgValue(Constraint):
+    """One constructor argument of a user's network: a TOML string, finite number or
+    boolean, or a list of them (lists may nest). Lists become tuples, so settings holding
+    them stay hashable; the network's constructor gets them back as lists."""
+
+    def check(self, value: Any) -> Any:
+        if isinstance(value, (list, tuple)):
+            return tuple(self.check(v) for v in value)
+        if isinstance(value, float) and not math.isfinite(value):
+            raise Invalid("must be finite", self.allowed())
+        if not isinstance(value, (str, int, float, bool)):
+            raise Invalid("must be a string, number, boolean or a list of them", self.allowed())
+        return value
+
+    def allowed(self) -> str:
+        return "a string, a finite number, true/false, or a list of these"
+
+
+@dataclass(frozen=True, slots=True)
+class Arguments(Constraint):
+    """A free-form table of keyword arguments (``[model.args]``): names that are Python
+    identifiers, each an ``ArgValue``. Normalized to a tuple of (name, value) pairs sorted by
+    name: frozen, hashable, and the same whatever order the recipe writes them in."""
+
+    def check(self, value: Any) -> tuple[tuple[str, Any], ...]:
+        import keyword
+
+        if isinstance(value, tuple):  # already normalized (a resolved configuration)
+            value = dict(value)
+        if not isinstance(value, Mapping):
+            raise Invalid("must be a table of name = value", self.allowed())
+        out = []
+        for name in sorted(value):
+            if not (isinstance(name, str) and name.isidentifier() and not keyword.iskeyword(name)):
+                raise Invalid(
+                    "is not a Python argument name",
+                    "names of letters, digits and _ that are not Python keywords",
+                    key=str(name),
+                    value=value[name],
+                )
+            try:
+                out.append((name, ArgValue().check(value[name])))
+            except Invalid as bad:
+                raise Invalid(bad.problem, bad.allowed, key=name, value=value[name]) from None
+        return tuple(out)
+
+    def allowed(self) -> str:
+        return "a table of argument = value, each " + ArgValue().allowed()
+
+    def entry(self, name: str) -> Param | None:
+        """The setting of one argument, as a factor path ``model.args.<name>`` names it."""
+        import keyword
+
+        if not name.isidentifier() or keyword.iskeyword(name):
+            return None
+        return Param(ArgValue(), doc=f"constructor argument {name}")
+
+
+@dataclass(frozen=True, slots=True)
 class Param:
     """One setting: its constraint, default (MISSING = required) and a one-line doc."""
 
@@ -264,5 +329,6 @@ def validate_table(raw: Any, table: Mapping[str, Param], prefix: str) -> dict[st
         try:
             out[key] = constraint.check(value)
         except Invalid as bad:
-            raise RecipeError(bad.problem, key=path, value=value, allowed=bad.allowed, hint=bad.hint) from None
+            where, shown = (f"{path}.{bad.key}", bad.value) if bad.key else (path, value)
+            raise RecipeError(bad.problem, key=where, value=shown, allowed=bad.allowed, hint=bad.hint) from None
     return out

@@ -22,6 +22,7 @@ from runner.datasets.sources import Dataset, load_dataset, same_bytes_other_read
 from runner.errors import DataError, RecipeError, UserError
 from runner.recipe.footprint import check_footprint
 from runner.recipe.loader import Recipe, resolve
+from runner.recipe.module_file import ModuleSource, check_python_settings, read_module
 from runner.recipe.settings import Settings
 from runner.training.job import JobSpec
 
@@ -53,6 +54,12 @@ class Config:
     assignments: Mapping[str, Any]  # path -> value set by the factors
     settings: Settings
     data_id: str
+    module: ModuleSource | None = None  # model.kind = "python": the network's file, read once
+
+    @property
+    def module_id(self) -> str | None:
+        """The hash of the network file's bytes, part of the identity (None: no file)."""
+        return self.module.sha256 if self.module is not None else None
 
 
 @dataclass(frozen=True)
@@ -76,6 +83,7 @@ class Job:
             time_limit=time_limit,
             fold=self.fold,
             keep_weights=keep_weights,
+            module=self.config.module,
         )
 
 
@@ -133,11 +141,13 @@ class Grid:
 
 def job_key(config: Config, seed: int, monitor: str, fold: int | None = None) -> str:
     """The job's identity: its resolved settings, data, seed and fold (k-fold validation),
-    and the monitored metric when early stopping watches it (otherwise the metric changes
-    nothing the job computes)."""
+    the monitored metric when early stopping watches it (otherwise the metric changes
+    nothing the job computes), and a user network's source when there is one."""
     watched = monitor if config.settings.train.patience > 0 else None
     ident = {"v": KEY_VERSION, "settings": config.settings.identity(), "data": config.data_id, "seed": seed,
              "monitor": watched, "fold": fold}  # fmt: skip
+    if config.module is not None:  # only then: other recipes keep their keys
+        ident["module"] = config.module_id
     return hashlib.sha256(canonical(ident).encode()).hexdigest()[:24]
 
 
@@ -157,6 +167,7 @@ def _expand(recipe: Recipe) -> Grid:
     factors = recipe.factors
     datasets: dict[str, Dataset] = {}
     by_source: dict[tuple, Dataset] = {}
+    modules: dict[str, ModuleSource] = {}
     configs: list[Config] = []
     task = None
     for combo in itertools.product(*(range(len(f.levels)) for f in factors)):
@@ -169,6 +180,7 @@ def _expand(recipe: Recipe) -> Grid:
         try:
             settings = resolve(recipe.sections, assign)
             _check_rules(settings)
+            module = _module(settings, recipe, modules)
         except RecipeError as err:
             if where:
                 err.hint = (err.hint + "; " if err.hint else "") + f"in the configuration {where}"
@@ -200,22 +212,33 @@ def _expand(recipe: Recipe) -> Grid:
                 value="cnn",
                 allowed='"digits" or an NPZ file with X of shape (N, H, W) or (N, C, H, W)',
             )
-        try:
-            check_footprint(settings, len(ds.y), tuple(ds.X.shape[1:]), max(1, len(ds.classes)))
-        except RecipeError as err:
-            if where:
-                err.hint = (err.hint + "; " if err.hint else "") + f"in the configuration {where}"
-            raise
-        ident = hashlib.sha256(canonical({"settings": settings.identity(), "data": ds.fingerprint}).encode())
+        if settings.model.kind != "python":  # a user's network is sized once it is built
+            try:
+                check_footprint(settings, ds.shape[0], tuple(ds.shape[1:]), max(1, len(ds.classes)))
+            except RecipeError as err:
+                if where:
+                    err.hint = (err.hint + "; " if err.hint else "") + f"in the configuration {where}"
+                raise
+        ident = {"settings": settings.identity(), "data": ds.fingerprint}
+        if module is not None:
+            ident["module"] = module.sha256
         configs.append(
             Config(
                 index=len(configs),
-                id=ident.hexdigest()[:12],
+                id=hashlib.sha256(canonical(ident).encode()).hexdigest()[:12],
                 levels=combo,
                 assignments=assign,
                 settings=settings,
                 data_id=ds.fingerprint,
+                module=module,
             )
+        )
+    unused = [k for k in ("file", "class_name", "args") if any(getattr(c.settings.model, k) for c in configs)]
+    if not modules and unused:
+        raise RecipeError(
+            'is set, but no configuration has model.kind = "python", so it is never used',
+            key=f"model.{unused[0]}",
+            hint='Add kind = "python" to [model] to train your own network',
         )
     if not configs:
         raise RecipeError(
@@ -253,6 +276,19 @@ def _check_one_protocol(configs: list[Config]) -> None:
                 value=sorted(values, key=str),
                 hint="Set it once under [data.split] and run a second recipe to compare protocols",
             )
+
+
+def _module(settings: Settings, recipe: Recipe, seen: dict[str, ModuleSource]) -> ModuleSource | None:
+    """The configuration's network file (read once per file), or None for the tool's own."""
+    model = settings.model
+    check_python_settings(model)
+    if model.kind != "python":
+        return None
+    file = model.file
+    assert file is not None  # check_python_settings requires it
+    if file not in seen:
+        seen[file] = read_module(file, recipe.base_dir)
+    return seen[file]
 
 
 def _check_rules(settings: Settings) -> None:

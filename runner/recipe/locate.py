@@ -26,16 +26,16 @@ def line_of(text: str, key: str | None) -> int | None:
             ):
                 return n
         return None
-    section, name = parts[0], parts[1]
-    inside = False
+    for cut in range(len(parts) - 1, 0, -1):  # "model.args.width": [model.args] width =, else [model] args =
+        section, name, inside = ".".join(parts[:cut]), parts[cut], False
+        for n, line in enumerate(lines, 1):
+            header = re.match(r"\s*\[+\s*([^\]]+?)\s*\]+", line)
+            if header:
+                inside = header.group(1) == section
+                continue
+            if inside and re.match(rf'\s*"?{re.escape(name)}"?\s*=', line):
+                return n
     for n, line in enumerate(lines, 1):
-        header = re.match(r"\s*\[+\s*([^\]]+?)\s*\]+", line)
-        if header:
-            inside = header.group(1) == section
-            continue
-        if inside and re.match(rf'\s*"?{re.escape(name)}"?\s*=', line):
-            return n
-    for n, line in enumerate(lines, 1):
-        if re.match(rf"\s*\[\s*{re.escape(section)}\s*\]", line):
+        if re.match(rf"\s*\[\s*{re.escape(parts[0])}\s*\]", line):
             return n
     return None

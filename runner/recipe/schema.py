@@ -13,13 +13,31 @@ from typing import Any
 
 from runner.components.metrics import METRICS
 from runner.errors import MISSING
-from runner.recipe.constraints import Boolean, Choice, Either, Integer, IntList, Param, Pattern, Real, Text
+from runner.recipe.constraints import (
+    Arguments,
+    ArgValue,
+    Boolean,
+    Choice,
+    Either,
+    Integer,
+    IntList,
+    Param,
+    Pattern,
+    Real,
+    Text,
+)
 from runner.recipe.loader import DIAGNOSTICS, RUN, TRACKING, VERDICTS
 from runner.recipe.settings import SECTIONS, all_paths, param_at
 
 __all__ = ["recipe_schema"]
 
 SCHEMA_ID = "https://recipe-runner.invalid/schema/recipe-1.json"
+
+IDENTIFIER = "[A-Za-z_][A-Za-z0-9_]*"  # ASCII only here; the validator also refuses Python keywords
+ARGS_PATH = rf"^model\.args\.{IDENTIFIER}$"  # a factor over one constructor argument
+ARG_VALUE = {  # a TOML string, number or boolean, or a list of them (lists may nest)
+    "anyOf": [{"type": ["string", "number", "boolean"]}, {"type": "array", "items": {"$ref": "#/$defs/arg"}}]
+}
 
 
 def _constraint(c) -> dict:
@@ -54,6 +72,14 @@ def _constraint(c) -> dict:
         return {"type": "string", "pattern": f"^(?:{c.regex})$"}
     if isinstance(c, Either):
         return {"anyOf": [_constraint(o) for o in c.options]}
+    if isinstance(c, ArgValue):
+        return {"$ref": "#/$defs/arg"}
+    if isinstance(c, Arguments):
+        return {
+            "type": "object",
+            "propertyNames": {"pattern": f"^{IDENTIFIER}$"},
+            "additionalProperties": {"$ref": "#/$defs/arg"},
+        }
     raise TypeError(f"no schema for {c!r}")
 
 
@@ -63,7 +89,9 @@ def _param(p: Param) -> dict:
     out = _constraint(p.constraint)
     if p.doc:
         out["description"] = p.doc
-    if p.default is not None and p.default is not MISSING:
+    if isinstance(p.constraint, Arguments):
+        out["default"] = {}
+    elif p.default is not None and p.default is not MISSING:
         out["default"] = list(p.default) if isinstance(p.default, tuple) else p.default
     return out
 
@@ -83,6 +111,8 @@ def _table(table: Mapping[str, Param], doc: str = "") -> dict:
 
 
 def _levels(path: str) -> dict:
+    if path == ARGS_PATH:
+        return {"type": "array", "minItems": 1, "items": _constraint(ArgValue())}
     param = param_at(path)
     assert param is not None and param.constraint is not None, path
     return {"type": "array", "minItems": 1, "items": _constraint(param.constraint)}
@@ -95,7 +125,8 @@ def recipe_schema() -> dict:
         "minProperties": 1,
         "description": "a linked factor: paths whose level lists move together, position by position",
         "properties": {"labels": {"type": "array", "items": {"type": "string", "minLength": 1}, "uniqueItems": True}},
-        "propertyNames": {"enum": ["labels", *paths]},
+        "propertyNames": {"anyOf": [{"enum": ["labels", *paths]}, {"pattern": ARGS_PATH}]},
+        "patternProperties": {ARGS_PATH: _levels(ARGS_PATH)},
         "additionalProperties": {"type": "array", "minItems": 1},
     }
     for p in paths:
@@ -105,12 +136,14 @@ def recipe_schema() -> dict:
         "description": "each key is a setting's dotted path with a list of levels, or a linked "
         "factor's name with a table of paths",
         "properties": {p: _levels(p) for p in paths},
+        "patternProperties": {ARGS_PATH: _levels(ARGS_PATH)},
         "additionalProperties": linked,
     }
     scalar = {"type": ["string", "number", "boolean", "array"]}
     return {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
         "$id": SCHEMA_ID,
+        "$defs": {"arg": ARG_VALUE},
         "title": "recipe: a seeded training study",
         "type": "object",
         "additionalProperties": False,
@@ -136,7 +169,7 @@ def recipe_schema() -> dict:
                 "items": {
                     "type": "object",
                     "minProperties": 1,
-                    "propertyNames": {"enum": paths},
+                    "propertyNames": {"anyOf": [{"enum": paths}, {"pattern": ARGS_PATH}]},
                     "additionalProperties": scalar,
                 },
             },

@@ -19,12 +19,12 @@ from runner.components import lr_schedules, regularizers
 from runner.components.activations import ACTIVATIONS
 from runner.components.initializers import INITIALIZERS
 from runner.components.optimizers import HYPERPARAMS, OPTIMIZERS
-from runner.recipe.constraints import Boolean, Choice, Either, Integer, IntList, Param, Real, Text
+from runner.recipe.constraints import Arguments, Boolean, Choice, Either, Integer, IntList, Param, Real, Text
 
 __all__ = [
+    "ADDED_LATER",
     "BUNDLED",
     "DATA",
-    "IDENTITY_FROM",
     "MODEL",
     "NOT_IDENTITY",
     "SECTIONS",
@@ -98,11 +98,22 @@ DATA = {
 }
 
 MODEL = {
-    "kind": Param(Choice(("cnn", "mlp")), "mlp", "mlp: dense layers; cnn: conv layers then a dense head"),
+    "kind": Param(
+        Choice(("cnn", "mlp", "python")),
+        "mlp",
+        "mlp: dense layers; cnn: conv layers then a dense head; python: your own torch.nn.Module",
+    ),
+    "file": Param(Text(), None, "python: the .py file holding your network, in the recipe's folder (runs its code)"),
+    "class_name": Param(Text(), None, "python: the nn.Module subclass in model.file to train"),
+    "args": Param(Arguments(), (), "python: the class's keyword arguments, e.g. [model.args] width = 64"),
     "hidden": Param(IntList(low=1, min_len=0), (64, 64), "dense hidden layer widths; [] is a linear model"),
     "activation": Param(Choice(tuple(ACTIVATIONS)), "relu", "hidden-layer activation"),
     "leaky_slope": Param(Real(0, 1, low_open=True, high_open=True), 0.01, "negative slope of leaky_relu"),
-    "init": Param(Choice(tuple(INITIALIZERS)), "glorot_uniform", "weight initializer; biases start at 0"),
+    "init": Param(
+        Choice((*INITIALIZERS, "module")),
+        "glorot_uniform",
+        'weight initializer; biases start at 0; "module" (python only): keep your module\'s own',
+    ),
     "init_scale": Param(Real(0, None, low_open=True), 0.01, "std (normal) or bound (uniform) for those two inits"),
     "dropout": Param(Real(0, 1, high_open=True), 0.0, "inverted-dropout rate after each hidden layer"),
     "input_dropout": Param(Real(0, 1, high_open=True), 0.0, "inverted-dropout rate on the inputs"),
@@ -136,20 +147,30 @@ NOT_IDENTITY: dict[str, tuple[str, ...]] = {"train": ("time_limit", "checkpoint_
 # Settings added after results were stored, left out of a job's identity while at their
 # default: the default computes exactly what the tool computed before the setting existed,
 # so results stored then keep their keys and are not rerun.
-IDENTITY_FROM: dict[str, tuple[str, ...]] = {"data": ("categorical", "missing", "image_size", "color")}
+
+# Settings added after job keys were first handed out: left out of a job's identity while they
+# hold their default, so recipes that do not use them keep the keys (and stored results) they
+# had. A recipe that sets one gets new keys, as any changed setting does. (A default can stay
+# out because it changes nothing: the data ones read text cells and images, the model ones
+# a user's network.)
+ADDED_LATER = {
+    "data": {key: DATA[key].default for key in ("categorical", "missing", "image_size", "color")},
+    "model": {"file": None, "class_name": None, "args": ()},
+}
 
 SECTIONS = {"data": DATA, "model": MODEL, "train": TRAIN}
 
 
 def all_paths() -> list[str]:
-    """Every dotted path that can be set or used as a factor, e.g. "data.split.val"."""
+    """Every dotted path that can be set or used as a factor, e.g. "data.split.val";
+    besides these, each constructor argument ``model.args.<name>``."""
     out = []
 
     def walk(table, prefix):
         for key, param in table.items():
             if param.table is not None:
                 walk(param.table, f"{prefix}.{key}")
-            else:
+            elif not isinstance(param.constraint, Arguments):  # its entries are, by their own names
                 out.append(f"{prefix}.{key}")
 
     for section, table in SECTIONS.items():
@@ -158,15 +179,21 @@ def all_paths() -> list[str]:
 
 
 def param_at(path: str) -> Param | None:
+    """The setting at a dotted path, or None. A free-form table (``model.args``) is not a
+    setting itself; each of its entries is (``model.args.width``)."""
     parts = path.split(".")
     table: Mapping[str, Param] | None = SECTIONS.get(parts[0])
     param = None
-    for part in parts[1:]:
+    for i, part in enumerate(parts[1:], 2):
+        if table is None and param is not None and isinstance(param.constraint, Arguments) and i == len(parts):
+            return param.constraint.entry(part)
         if table is None or part not in table:
             return None
         param = table[part]
         table = param.table
-    return param if param is not None and param.table is None else None
+    if param is None or param.table is not None or isinstance(param.constraint, Arguments):
+        return None
+    return param
 
 
 @dataclass(frozen=True, slots=True)
@@ -201,7 +228,10 @@ class DataSettings:
 
 @dataclass(frozen=True, slots=True)
 class ModelSettings:
-    kind: str
+    kind: str  # "mlp", "cnn" or "python"
+    file: str | None  # python: the network's file, relative to the recipe
+    class_name: str | None  # python: its nn.Module class
+    args: tuple[tuple[str, Any], ...]  # python: constructor arguments, sorted by name; lists as tuples
     hidden: tuple[int, ...]
     activation: str
     leaky_slope: float
@@ -275,28 +305,36 @@ class Settings:
         return cls(DataSettings(**data), ModelSettings(**model), TrainSettings(**raw["train"]))
 
     def to_dict(self) -> dict[str, dict[str, Any]]:
-        """The plain nested form: what job keys are hashed from and the store keeps."""
-        return {
-            "data": dataclasses.asdict(self.data),
-            "model": dataclasses.asdict(self.model),
-            "train": dataclasses.asdict(self.train),
-        }
+        """The plain nested form: what job keys are hashed from and the store keeps. The
+        constructor arguments appear as a table, {"width": 64}, as the recipe writes them."""
+        model = dataclasses.asdict(self.model)
+        model["args"] = {name: _plain(value) for name, value in self.model.args}
+        return {"data": dataclasses.asdict(self.data), "model": model, "train": dataclasses.asdict(self.train)}
 
     def identity(self) -> dict[str, dict[str, Any]]:
-        """``to_dict`` without NOT_IDENTITY, and without IDENTITY_FROM settings at their
-        default: what a job's key is hashed from."""
+        """``to_dict`` without NOT_IDENTITY, and without ADDED_LATER settings at their
+        defaults: what a job's key is hashed from."""
         out = self.to_dict()
         for section, keys in NOT_IDENTITY.items():
             for key in keys:
                 out[section].pop(key)
-        for section, keys in IDENTITY_FROM.items():
-            for key in keys:
-                if out[section][key] == SECTIONS[section][key].default:
-                    out[section].pop(key)
+        for section, key in self.unused_later():
+            out[section].pop(key)
         return out
 
+    def unused_later(self) -> list[tuple[str, str]]:
+        """The ADDED_LATER settings that hold their default, as (section, key)."""
+        return [
+            (section, key)
+            for section, defaults in ADDED_LATER.items()
+            for key, default in defaults.items()
+            if getattr(getattr(self, section), key) == default
+        ]
+
     def flat(self) -> dict[str, Any]:
-        """Every setting by dotted path, e.g. {"train.lr": 0.001, "data.split.val": 0.2}."""
+        """Every setting by dotted path, e.g. {"train.lr": 0.001, "data.split.val": 0.2};
+        ADDED_LATER settings only when they are set (boards and MLflow runs of recipes that
+        do not use them look as they did)."""
         out: dict[str, Any] = {}
 
         def walk(node: Mapping[str, Any], prefix: str) -> None:
@@ -307,11 +345,18 @@ class Settings:
                     out[f"{prefix}{key}"] = value
 
         walk(self.to_dict(), "")
+        for section, key in self.unused_later():
+            out.pop(f"{section}.{key}", None)
         return out
 
     def with_train(self, **changes: Any) -> Settings:
         """A copy with some [train] settings changed (e.g. the estimate's short probes)."""
         return dataclasses.replace(self, train=dataclasses.replace(self.train, **changes))
+
+
+def _plain(value: Any) -> Any:
+    """A constructor argument as TOML wrote it: tuples back to lists."""
+    return [_plain(v) for v in value] if isinstance(value, tuple) else value
 
 
 _TYPED = {"data": DataSettings, "model": ModelSettings, "train": TrainSettings}

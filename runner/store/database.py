@@ -7,6 +7,8 @@ weights (a finished job's trained weights as safetensors bytes, when kept), trai
 A job's whole result, its weights included, is written in one transaction when it
 finishes, so a killed process leaves either the complete result or none of it: never a
 half-written weights blob. Only finished jobs are stored.
+modules (the source text of each user network file seen, by hash) and job_modules (which
+one a job of model.kind = "python" trained: ``Store.job_module``).
 """
 
 from __future__ import annotations
@@ -36,7 +38,7 @@ from runner.store.opening import (
 )
 from runner.training.job import FINISHED, JobResult, Status
 
-__all__ = ["SCHEMA_VERSION", "Store", "StoredJob"]
+__all__ = ["SCHEMA_VERSION", "Store", "StoredJob", "StoredModule"]
 
 SCHEMA_VERSION = 1
 
@@ -64,6 +66,11 @@ CREATE TABLE IF NOT EXISTS weights (
     sha256 TEXT NOT NULL, data BLOB NOT NULL);
 CREATE TABLE IF NOT EXISTS trained_as (
     job_key TEXT PRIMARY KEY REFERENCES jobs(key) ON DELETE CASCADE, members TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS modules (
+    sha256 TEXT PRIMARY KEY, file TEXT NOT NULL, source TEXT NOT NULL, first_seen REAL NOT NULL);
+CREATE TABLE IF NOT EXISTS job_modules (
+    job_key TEXT PRIMARY KEY REFERENCES jobs(key) ON DELETE CASCADE,
+    sha256 TEXT NOT NULL REFERENCES modules(sha256));
 CREATE TABLE IF NOT EXISTS exports (
     uri TEXT NOT NULL, job_key TEXT NOT NULL, run_id TEXT NOT NULL, exported REAL NOT NULL,
     PRIMARY KEY (uri, job_key));
@@ -86,6 +93,21 @@ class StoredJob:
     env: dict[str, Any]
     diagnostics: dict[str, Any]
     recipe_hash: str
+
+
+@dataclass(frozen=True)
+class StoredModule:
+    """What rebuilds a job's own network (model.kind = "python"): exec ``source`` as a
+    module, take its class ``class_name`` and call it with ``args`` as keyword arguments
+    (the tool then initializes and trains it; a trained model's weights are not kept here).
+    ``file`` is the path the recipe gave, relative to the recipe; ``sha256`` hashes the
+    file's bytes and is part of the job's key."""
+
+    file: str
+    class_name: str
+    args: dict[str, Any]
+    source: str
+    sha256: str
 
 
 def _num(value):
@@ -298,6 +320,13 @@ class Store:
                     json.dumps(diagnostics, sort_keys=True),
                 ),
             )
+            module = getattr(job.config, "module", None)
+            if module is not None:
+                c.execute(
+                    "INSERT OR IGNORE INTO modules VALUES (?, ?, ?, ?)",
+                    (module.sha256, module.file, module.source, time.time()),
+                )
+                c.execute("INSERT OR REPLACE INTO job_modules VALUES (?, ?)", (job.key, module.sha256))
             c.executemany(
                 "INSERT INTO metrics VALUES (?,?,?,?)",
                 [(job.key, split, name, _num(v)) for split, vals in result.metrics.items() for name, v in vals.items()],
@@ -349,6 +378,21 @@ class Store:
             env=json.loads(r[9]),
             diagnostics=json.loads(r[10]),
             recipe_hash=r[11],
+        )
+
+    def job_module(self, key: str) -> StoredModule | None:
+        """The network a stored job of model.kind = "python" trained, or None (the tool's own
+        network, or no such job)."""
+        row = self.conn.execute(
+            "SELECT j.settings, m.file, m.source, m.sha256 FROM job_modules x JOIN jobs j ON j.key = x.job_key"
+            " JOIN modules m ON m.sha256 = x.sha256 WHERE x.job_key = ?",
+            (key,),
+        ).fetchone()
+        if row is None:
+            return None
+        model = json.loads(row[0])["model"]
+        return StoredModule(
+            file=row[1], class_name=model["class_name"], args=model["args"], source=row[2], sha256=row[3]
         )
 
     def latest_recipe(self) -> tuple[str, str] | None:

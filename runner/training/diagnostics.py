@@ -28,7 +28,7 @@ from torch import nn
 from runner.components.activations import ACTIVATIONS, SATURATING, make_activation
 from runner.training.models import layers_with_weights
 
-__all__ = ["PROBE_ROWS", "at_end", "at_init", "end_stats", "init_stats", "scales"]
+__all__ = ["PROBE_ROWS", "activation_kind", "at_end", "at_init", "end_stats", "init_stats", "scales"]
 
 PROBE_ROWS = 512
 _ACT_TYPES = tuple({type(make_activation(name)) for name in ACTIVATIONS})
@@ -39,18 +39,23 @@ def _activation_modules(net: nn.Module) -> list[nn.Module]:
 
 
 def _capture(net: nn.Module, x: torch.Tensor, grad: bool, loss_fn=None, y=None):
-    """Each activation module's output on ``x`` in eval mode; with ``grad``, after a backward
-    pass of the loss, also the gradient norm at each of those outputs (same order)."""
-    outputs: list[torch.Tensor] = []
+    """One pass on the probe batch in eval mode: each activation module's output with that
+    module, in call order (a module called twice gives two); with ``grad``, after a backward
+    pass of the loss, the gradient norm at each of those outputs (same order); and the
+    weighted layers in the order the forward pass first calls them (a user's network may
+    register its layers in another order; layers it never calls are left out)."""
+    outputs: list[tuple[nn.Module, torch.Tensor]] = []
     back: dict[int, float] = {}
+    called: dict[nn.Module, None] = {}
 
-    def keep(_m, _i, out):
+    def keep(m, _i, out):
         if grad:  # the gradient with respect to this output, as the backward pass meets it
             i = len(outputs)
             out.register_hook(lambda g: back.__setitem__(i, float(g.norm())))
-        outputs.append(out.detach())
+        outputs.append((m, out.detach()))
 
     hooks = [m.register_forward_hook(keep) for m in _activation_modules(net)]
+    hooks += [m.register_forward_hook(lambda m, _i, _o: called.setdefault(m)) for m in layers_with_weights(net)]
     was_training = net.training
     net.eval()
     try:
@@ -64,19 +69,23 @@ def _capture(net: nn.Module, x: torch.Tensor, grad: bool, loss_fn=None, y=None):
         for h in hooks:
             h.remove()
         net.train(was_training)
-    return outputs, [back.get(i, 0.0) for i in range(len(outputs))]
+    return outputs, [back.get(i, 0.0) for i in range(len(outputs))], list(called)
 
 
 def at_init(net: nn.Module, x: torch.Tensor, y: torch.Tensor, loss_fn) -> dict:
-    outputs, back = _capture(net, x, grad=True, loss_fn=loss_fn, y=y)
+    outputs, back, layers = _capture(net, x, grad=True, loss_fn=loss_fn, y=y)
     norms, weight_norms = [], []
-    for layer in layers_with_weights(net):
+    for layer in layers:
         g = layer.weight.grad
         norms.append(float(g.norm()) if g is not None else 0.0)
         weight_norms.append(float(layer.weight.detach().norm()))
     net.zero_grad(set_to_none=True)
     return init_stats(
-        [o.reshape(1, -1) for o in outputs], [norms], x.reshape(1, -1), backprop=[back], weight_norms=[weight_norms]
+        [o.reshape(1, -1) for _, o in outputs],
+        [norms],
+        x.reshape(1, -1),
+        backprop=[back],
+        weight_norms=[weight_norms],
     )[0]
 
 
@@ -153,11 +162,35 @@ def init_stats(
     return stats
 
 
-def at_end(net: nn.Module, x: torch.Tensor, activation: str) -> dict:
-    outputs, _ = _capture(net, x, grad=False)
+_KINDS = {type(make_activation(name)): name for name in ACTIVATIONS}
+
+
+def activation_kind(module: nn.Module) -> str | None:
+    """The tool's name of an activation module ("relu", "tanh", ...), or None."""
+    return next((name for cls, name in _KINDS.items() if isinstance(module, cls)), None)
+
+
+def at_end(net: nn.Module, x: torch.Tensor, activation: str | None) -> dict:
+    """Dead and saturated fractions on the probe batch. ``activation``: the kind of every
+    activation module (the tool's networks), or None to take each module's own kind (a
+    user's network may mix them: dead units are then counted among its ReLU outputs,
+    saturated ones among its sigmoid and tanh outputs)."""
+    outputs, _, _ = _capture(net, x, grad=False)
     # one unit per feature (dense) or channel (conv): (1, rows x positions, units)
-    units = [(o.movedim(1, -1) if o.dim() > 2 else o).reshape(1, -1, o.shape[1]) for o in outputs]
-    return end_stats(units, activation, 1)[0]
+    units = [(m, (o.movedim(1, -1) if o.dim() > 2 else o).reshape(1, -1, o.shape[1])) for m, o in outputs]
+    if activation is not None:
+        return end_stats([u for _, u in units], activation, 1)[0]
+    by_kind: dict[str, list[torch.Tensor]] = {}
+    for m, u in units:
+        by_kind.setdefault(activation_kind(m), []).append(u)
+    dead = end_stats(by_kind["relu"], "relu", 1)[0]["dead_fraction"] if "relu" in by_kind else None
+    saturated, total = 0.0, 0
+    for kind in SATURATING:
+        if kind in by_kind:
+            n = sum(u.shape[2] for u in by_kind[kind])
+            saturated += end_stats(by_kind[kind], kind, 1)[0]["saturated_fraction"] * n
+            total += n
+    return {"dead_fraction": dead, "saturated_fraction": saturated / total if total else None}
 
 
 def end_stats(outputs: list[torch.Tensor], activation: str, members: int) -> list[dict]:

@@ -42,6 +42,8 @@ class Stacked(tuple):
 def stack_key(spec: JobSpec) -> str | None:
     """Jobs with equal keys can share one stacked computation; None: this job runs alone."""
     m, t = spec.settings.model, spec.settings.train
+    if m.kind == "python" and spec.module is not None:
+        return _module_key(spec)
     if (
         m.kind != "mlp"
         or t.optimizer not in STACKED_OPTIMIZERS
@@ -65,10 +67,45 @@ def stack_key(spec: JobSpec) -> str | None:
     )
 
 
+# The optimizers whose stacked steps the torch.func backend is tested with against the single
+# path (tests/test_stacked_modules.py); rmsprop and adagrad train a user network one job at a time.
+MODULE_STACKED_OPTIMIZERS = ("adam", "adamw", "momentum", "nesterov", "sgd")
+
+
+def _module_key(spec: JobSpec) -> str | None:
+    """A user's network stacks with jobs of the same file, class and arguments (so the same
+    shapes), data, batch size and epochs (stacked_modules.py)."""
+    m, t = spec.settings.model, spec.settings.train
+    if (
+        t.optimizer not in MODULE_STACKED_OPTIMIZERS
+        or t.checkpoint_every
+        or t.time_limit
+        or spec.time_limit
+        or spec.checkpoint
+    ):
+        return None
+    return canonical(
+        {
+            "data": spec.data_id,
+            "split": spec.settings.data,
+            "module": spec.module.sha256,
+            "class": m.class_name,
+            "args": m.args,
+            "bs": t.batch_size,
+            "epochs": t.epochs,
+            "monitor": spec.monitor,
+        }
+    )
+
+
 def member_bytes(spec: JobSpec, ds: Dataset) -> int:
     """A generous estimate of one member's tensors: parameters with gradients, optimizer
     moments, a best-epoch copy and momentum buffer (6 copies), its data splits, and the
     activations of one mini-batch with their gradients and masks (4 copies)."""
+    if spec.settings.model.kind == "python":  # the network's sizes are known once it is built
+        from runner.training.stacked_modules import member_bytes as network_bytes
+
+        return network_bytes(spec, ds)
     rows, features = ds.shape[0], int(np.prod(ds.shape[1:]))  # no array loaded (bundled.py)
     widths = [features, *spec.settings.model.hidden, max(1, len(ds.classes))]
     params = sum((a + 1) * b for a, b in zip(widths, widths[1:]))

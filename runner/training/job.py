@@ -11,6 +11,7 @@ from enum import Enum
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
+    from runner.recipe.module_file import ModuleSource
     from runner.recipe.settings import Settings
 
 __all__ = ["FINISHED", "JobResult", "JobSpec", "Status"]
@@ -43,6 +44,7 @@ class JobSpec:
     time_limit: float | None = None  # overrides train.time_limit when set (--time-limit)
     fold: int | None = None  # k-fold validation: the fold this job validates on
     keep_weights: bool = False  # send the trained weights back with the result
+    module: ModuleSource | None = None  # model.kind = "python": the network's source travels with the job
 
 
 @dataclass

@@ -2,11 +2,12 @@
 computes its steps.
 
 A backend trains K members: one job on the single path (single.py, torch autograd), or a
-stacked group of same-shaped jobs (stacked.py). The loop owns everything that must mean the
-same on both: each step's learning rate, divergence (a loss that is not finite or exceeds
-``diverge_factor`` times the member's first loss), time limits, the per-epoch curves, early
-stopping with the best epoch's weights restored, checkpoints, final scoring on every split,
-the train-val gap and the end-of-training diagnostics. A new stopping rule, curve or flag is
+stacked group of same-shaped jobs (stacked.py; stacked_modules.py for a user's own network).
+The loop owns everything that must mean the same on all of them: each step's learning
+rate, divergence (a loss that is not finite or exceeds ``diverge_factor`` times the
+member's first loss), time limits, the per-epoch curves, early stopping with the best
+epoch's weights restored, checkpoints, final scoring on every split, the train-val gap and
+the end-of-training diagnostics. A new stopping rule, curve or flag is
 written here once; a backend only computes.
 
 ``train_item`` is the entry point for a work item (see grouping.py): a stacked group that
@@ -341,7 +342,10 @@ def train_job(spec: JobSpec, ds: Dataset, keep_model: bool = False, on_epoch: On
 def train_group(specs: Sequence[JobSpec], ds: Dataset, on_epoch: OnEpoch | None = None) -> list[JobResult]:
     """Train same-shaped jobs together on the stacked path. If the stacked computation
     itself fails, each job is retrained on its own and its result carries a note saying so."""
-    from runner.training.stacked import StackedBackend
+    if specs[0].settings.model.kind == "python":  # a user's network: through torch.func
+        from runner.training.stacked_modules import ModuleStackBackend as StackedBackend
+    else:
+        from runner.training.stacked import StackedBackend
 
     specs = list(specs)
     start = time.perf_counter()

@@ -11,7 +11,7 @@ from torch import nn
 from runner.components.activations import gain, make_activation
 from runner.components.initializers import initialize
 
-__all__ = ["Dropout", "build_model", "layers_with_weights", "weight_tensors"]
+__all__ = ["WEIGHTED", "Dropout", "build_model", "layers_with_weights", "weight_tensors"]
 
 
 class Dropout(nn.Module):
@@ -39,7 +39,13 @@ def build_model(
     n_out: int,
     init_gen: torch.Generator,
     dropout_gen: torch.Generator,
-) -> nn.Sequential:
+    module=None,
+) -> nn.Module:
+    """The job's network; ``module``: the source of the user's own (model.kind = "python")."""
+    if model.kind == "python":
+        from runner.training.user_module import build_user_model
+
+        return build_user_model(module, model, in_shape, n_out, init_gen, dropout_gen)
     act = model.activation
     slope = model.leaky_slope
     layers: list[nn.Module] = []
@@ -82,8 +88,12 @@ def build_model(
     return net
 
 
+WEIGHTED = (nn.Linear, nn.Conv1d, nn.Conv2d, nn.Conv3d)  # layers whose weight the tool initializes and penalizes
+
+
 def layers_with_weights(net: nn.Module) -> list[nn.Module]:
-    return [m for m in net.modules() if isinstance(m, (nn.Linear, nn.Conv2d))]
+    """Dense and conv layers in the network's registration order (nn.Module.modules)."""
+    return [m for m in net.modules() if isinstance(m, WEIGHTED)]
 
 
 def weight_tensors(net: nn.Module) -> list[torch.Tensor]:

@@ -47,7 +47,7 @@ class SingleBackend:
         self.Xva, _ = self._tensors(self.sp.X_val, self.sp.y_val)
         _, self.shuffle_gen, self.drop_gen = gens = streams(spec.seed)
         n_out = len(ds.classes) if self.classify else 1
-        self.net = build_model(spec.settings.model, tuple(self.Xtr.shape[1:]), n_out, gens[0], gens[2])
+        self.net = build_model(spec.settings.model, tuple(self.Xtr.shape[1:]), n_out, gens[0], gens[2], spec.module)
         if self.Xtr.dim() == 4:  # images: convolutions and pooling run faster channels-last on a CPU
             self.net = self.net.to(memory_format=torch.channels_last)
             self.Xtr = self.Xtr.contiguous(memory_format=torch.channels_last)
@@ -134,7 +134,8 @@ class SingleBackend:
         return [out]
 
     def end_diagnostics(self) -> list[dict[str, Any]]:
-        ends = diagnostics.at_end(self.net, self.Xtr[self.probe], self.spec.settings.model.activation)
+        model = self.spec.settings.model  # a user's network: each activation module by its own kind
+        ends = diagnostics.at_end(self.net, self.Xtr[self.probe], None if model.kind == "python" else model.activation)
         scales = diagnostics.scales(self.sp, len(self.ds.classes) if self.classify else None)
         return [{**ends, **regularizers.sparsity(self.weights, self.train_s.sparsity_tol), **scales}]
 
@@ -147,6 +148,7 @@ class SingleBackend:
             "optimizer": self.opt.state_dict(),
             "shuffle_rng": self.shuffle_gen.get_state(),
             "dropout_rng": self.drop_gen.get_state(),
+            "global_rng": torch.get_rng_state(),  # draws inside a user network's forward
         }
 
     def load_checkpoint_state(self, saved: dict[str, Any]) -> None:
@@ -154,3 +156,5 @@ class SingleBackend:
         self.opt.load_state_dict(saved["optimizer"])
         self.shuffle_gen.set_state(saved["shuffle_rng"])
         self.drop_gen.set_state(saved["dropout_rng"])
+        if "global_rng" in saved:
+            torch.set_rng_state(saved["global_rng"])

@@ -1,0 +1,6 @@
+from torch import nn
+
+
+class Net(nn.Module):
+    def __init__(self)
+        super().__init__()
