@@ -29,7 +29,7 @@ from runner.errors import DataError
 if TYPE_CHECKING:
     from runner.recipe.settings import DataSettings
 
-__all__ = ["FACTS", "BundledDataset", "load_bundled"]
+__all__ = ["FACTS", "NAMES", "BundledDataset", "load_bundled"]
 
 # name -> (task, class labels, shape of X as loaded: images as (N, C, H, W); N of the
 # generated sets comes from data.n_samples). tests/test_bundled.py holds these equal to
@@ -105,8 +105,7 @@ class BundledDataset(Dataset):
 
     @property
     def feature_names(self) -> tuple[str, ...]:
-        names = self._load()[2]
-        return tuple(names) if isinstance(names, _LazyNames) else names
+        return tuple(self._load()[2])
 
     X = property(lambda self: self._load()[0])
     y = property(lambda self: self._load()[1])
@@ -147,7 +146,7 @@ def load_bundled(name: str, n_samples: int, noise: float) -> tuple[np.ndarray, n
         X, y = arrays
         if name == "digits":  # kept as 8x8 single-channel images; an MLP flattens them
             return X.astype(np.float32).reshape(-1, 1, 8, 8), y.astype(np.int64), tuple(f"pixel{i}" for i in range(64))
-        return X.astype(np.float32), y.astype(np.int64), _LazyNames(name)
+        return X.astype(np.float32), y.astype(np.int64), NAMES[name]
     from sklearn import datasets
 
     if name in ("moons", "circles"):
@@ -165,17 +164,63 @@ def load_bundled(name: str, n_samples: int, noise: float) -> tuple[np.ndarray, n
     return X, bunch.target.astype(np.int64), tuple(bunch.feature_names)
 
 
-class _LazyNames:
-    """A bundled set's column names, which only scikit-learn's loader knows: asked of it
-    (importing it) only if someone reads them."""
-
-    def __init__(self, name: str):
-        self.name = name
-
-    def __iter__(self):
-        from sklearn import datasets
-
-        return iter(getattr(datasets, f"load_{self.name}")().feature_names)
+# The column names scikit-learn's loaders give these sets (tests/test_bundled.py holds them
+# equal), so that naming a column needs no import of scikit-learn.
+NAMES = {
+    "iris": (
+        "sepal length (cm)",
+        "sepal width (cm)",
+        "petal length (cm)",
+        "petal width (cm)",
+    ),
+    "wine": (
+        "alcohol",
+        "malic_acid",
+        "ash",
+        "alcalinity_of_ash",
+        "magnesium",
+        "total_phenols",
+        "flavanoids",
+        "nonflavanoid_phenols",
+        "proanthocyanins",
+        "color_intensity",
+        "hue",
+        "od280/od315_of_diluted_wines",
+        "proline",
+    ),
+    "breast_cancer": (
+        "mean radius",
+        "mean texture",
+        "mean perimeter",
+        "mean area",
+        "mean smoothness",
+        "mean compactness",
+        "mean concavity",
+        "mean concave points",
+        "mean symmetry",
+        "mean fractal dimension",
+        "radius error",
+        "texture error",
+        "perimeter error",
+        "area error",
+        "smoothness error",
+        "compactness error",
+        "concavity error",
+        "concave points error",
+        "symmetry error",
+        "fractal dimension error",
+        "worst radius",
+        "worst texture",
+        "worst perimeter",
+        "worst area",
+        "worst smoothness",
+        "worst compactness",
+        "worst concavity",
+        "worst concave points",
+        "worst symmetry",
+        "worst fractal dimension",
+    ),
+}
 
 
 def bundled(data: DataSettings) -> BundledDataset:

@@ -129,9 +129,12 @@ def upper_error(errors: int, rows: int, level: float = 0.95) -> float:
     with P(Binomial(rows, p) <= errors) = 1 - level."""
     if errors >= rows:
         return 1.0
-    from scipy.special import betaincinv
+    from runner.evidence.distributions import f_isf  # no scipy in a training process
 
-    return float(betaincinv(errors + 1, rows - errors, level))
+    # the beta quantile through the F distribution: p = a F / (b + a F), F ~ F(2a, 2b)
+    a, b = errors + 1, rows - errors
+    f = f_isf(1.0 - level, 2 * a, 2 * b)
+    return a * f / (b + a * f)
 
 
 def fano_bound(error: float, classes: int) -> float:
