@@ -151,16 +151,23 @@ def _run(
                 _confirm_fresh(db, grid, yes)
             todo = plan(grid, db, retry_failed)
             if not quiet:
-                click.echo(todo.summary_line(), err=True)
-            progress = Progress(
-                len(todo.to_run), grid.rank_by, grid.goal, quiet=quiet, live=False if verbose else None, verbose=verbose
-            )
+                click.echo(_summary(grid, db, todo, retry_failed), err=True)
+
+            def progress_for(n: int) -> Progress:
+                live = False if verbose else None
+                return Progress(n, grid.rank_by, grid.goal, quiet=quiet, live=live, verbose=verbose)
+
             executor = make_executor(where, workers, threads, max_attempts, time_limit)
             tracker = RunLogger(mlflow_uri or recipe.tracking.mlflow, grid, db)
             try:
-                execute(
-                    grid, db, todo.to_run, executor, progress, time_limit, on_stored=tracker.stored, stack=not no_stack
-                )
+                if recipe.adaptive is not None:  # seeds on demand: the race's rounds (execution/racing.py)
+                    from runner.execution.racing import run_race
+
+                    note = None if quiet else (lambda text: click.echo(text, err=True))
+                    run_race(grid, db, executor, progress_for, time_limit, tracker.stored, not no_stack, note)
+                else:
+                    execute(grid, db, todo.to_run, executor, progress_for(len(todo.to_run)), time_limit,
+                            on_stored=tracker.stored, stack=not no_stack)  # fmt: skip
                 _report_tracking(tracker.finish(), tracker.uri, recipe_path, quiet)
             except KeyboardInterrupt:
                 done = len(db.finished_keys() & {j.key for j in grid})
@@ -173,6 +180,20 @@ def _run(
             click.echo(render(leaderboard(grid, db), fmt or "table"), nl=False)
     except UserError as err:
         fail(err)
+
+
+def _summary(grid, db, todo, retry_failed: bool) -> str:
+    if grid.recipe.adaptive is None:
+        return todo.summary_line()
+    if retry_failed:
+        raise UserError(
+            "--retry-failed cannot be used with [adaptive]: the race has already decided on those jobs",
+            key="--retry-failed",
+            hint="Start the race over with --fresh, or run without [adaptive]",
+        )
+    from runner.execution.racing import summary_line
+
+    return summary_line(grid, db)
 
 
 def _report_tracking(errors, uri, recipe_path, quiet: bool) -> None:
@@ -202,3 +223,7 @@ def _confirm_fresh(db, grid, yes: bool) -> None:
             )
         click.confirm(f"Delete the {stored} stored results of this grid and start over?", abort=True, err=True)
     forget(grid, db)
+    if grid.recipe.adaptive is not None:
+        from runner.evidence.race_board import race_plan
+
+        db.forget_race(race_plan(grid).key())

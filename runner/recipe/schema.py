@@ -14,7 +14,7 @@ from typing import Any
 from runner.components.metrics import METRICS
 from runner.errors import MISSING
 from runner.recipe.constraints import Boolean, Choice, Either, Integer, IntList, Param, Pattern, Real, Text
-from runner.recipe.loader import DIAGNOSTICS, RUN, TRACKING, VERDICTS
+from runner.recipe.loader import ADAPTIVE, DIAGNOSTICS, RUN, TRACKING, VERDICTS
 from runner.recipe.settings import SECTIONS, all_paths, param_at
 
 __all__ = ["recipe_schema"]
@@ -143,6 +143,7 @@ def recipe_schema() -> dict:
             "baseline": {"type": "object", "additionalProperties": scalar},
             "diagnostics": _table(DIAGNOSTICS),
             "verdicts": _table(VERDICTS),
+            "adaptive": _table(ADAPTIVE),
             "run": _table(RUN),
             "tracking": _table(TRACKING),
         },

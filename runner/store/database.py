@@ -1,7 +1,9 @@
 """The results store: one SQLite file per recipe.
 
 Tables: recipes (each recipe text seen), jobs (identity, settings, status, timings, error,
-environment, diagnostics), metrics (final metric per split), curves (per-epoch values).
+environment, diagnostics), metrics (final metric per split), curves (per-epoch values),
+race_looks (each look of an adaptive run: who stays, who is dropped and why), lr_probes
+(the learning-rate range test's curves).
 A job's whole result is written in one transaction when it finishes, so a killed process
 leaves either the complete result or none of it. Only finished jobs are stored.
 """
@@ -44,6 +46,10 @@ CREATE TABLE IF NOT EXISTS running (
 CREATE TABLE IF NOT EXISTS curves (
     job_key TEXT NOT NULL REFERENCES jobs(key) ON DELETE CASCADE, name TEXT NOT NULL,
     epoch INTEGER NOT NULL, value REAL, PRIMARY KEY (job_key, name, epoch));
+CREATE TABLE IF NOT EXISTS race_looks (
+    race TEXT NOT NULL, round INTEGER NOT NULL, look TEXT NOT NULL, PRIMARY KEY (race, round));
+CREATE TABLE IF NOT EXISTS lr_probes (
+    probe TEXT PRIMARY KEY, optimizer TEXT NOT NULL, result TEXT NOT NULL);
 CREATE TABLE IF NOT EXISTS exports (
     uri TEXT NOT NULL, job_key TEXT NOT NULL, run_id TEXT NOT NULL, exported REAL NOT NULL,
     PRIMARY KEY (uri, job_key));
@@ -261,6 +267,34 @@ class Store:
             c.execute("ROLLBACK")
             raise
         return n
+
+    def record_race_look(self, race: str, round_: int, look: dict[str, Any]) -> None:
+        """One look of race ``race`` (its decisions as plain JSON), in one statement: a killed
+        run leaves a look whole or not at all. A look is decided once and never rewritten."""
+        self.conn.execute(
+            "INSERT OR IGNORE INTO race_looks VALUES (?, ?, ?)", (race, round_, json.dumps(look, sort_keys=True))
+        )
+
+    def race_looks(self, race: str) -> list[dict[str, Any]]:
+        """The stored looks of race ``race``, in round order."""
+        rows = self.conn.execute("SELECT look FROM race_looks WHERE race = ? ORDER BY round", (race,))
+        return [json.loads(r[0]) for r in rows]
+
+    def forget_race(self, race: str) -> None:
+        """Delete a race's looks (``recipe run --fresh``)."""
+        self.conn.execute("DELETE FROM race_looks WHERE race = ?", (race,))
+
+    def record_lr_probe(self, probe: str, optimizer: str, result: dict[str, Any]) -> None:
+        """A learning-rate range test's curve and suggestion, under the probe's identity."""
+        self.conn.execute(
+            "INSERT OR REPLACE INTO lr_probes VALUES (?, ?, ?)", (probe, optimizer, json.dumps(result, sort_keys=True))
+        )
+
+    def lr_probes(self, probes: Iterable[str]) -> dict[str, dict[str, Any]]:
+        """The stored range tests among ``probes``, by identity."""
+        wanted = set(probes)
+        rows = self.conn.execute("SELECT probe, result FROM lr_probes").fetchall()
+        return {p: json.loads(r) for p, r in rows if p in wanted}
 
     def integrity(self) -> str:
         return self.conn.execute("PRAGMA integrity_check").fetchone()[0]
