@@ -188,3 +188,69 @@ def test_a_diverged_seed_drops_its_configuration_at_the_next_look():
     lk = look(_plan(3), 1, values, ["c0", "c1", "c2"], FIXED, used=9)
     assert not lk.decisions[2].kept and "diverged" in lk.decisions[2].reason
     assert advance(_plan(3), values, finished, FIXED).looks[0].decisions[2].kept is False
+
+
+SLOW_RACE = RACE.replace("epochs = 12", "epochs = 150").replace("hidden = [16]", "hidden = [32, 32]\n    dropout = 0.1")
+
+
+def _store_rows(store):
+    with sqlite3.connect(store) as c:
+        metrics = sorted(c.execute("SELECT job_key, split, name, value FROM metrics"))
+        curves = sorted(c.execute("SELECT job_key, name, epoch, value FROM curves"))
+        ok = c.execute("PRAGMA integrity_check").fetchone()[0]
+    return metrics, curves, ok
+
+
+def _count(store, table):
+    try:
+        with sqlite3.connect(store, timeout=1) as c:
+            return c.execute(f"SELECT count(*) FROM {table}").fetchone()[0]
+    except sqlite3.OperationalError:
+        return 0
+
+
+@pytest.mark.slow
+def test_sigkilled_race_resumes_where_it_stopped_and_equals_an_uninterrupted_one(tmp_path):
+    """A real SIGKILL of the runner and its workers after the first look is stored: the
+    resumed race decides nothing twice, and its store (metrics, curves, looks) equals an
+    uninterrupted race's bit for bit."""
+    import os
+    import signal
+    import subprocess
+    import time
+
+    from conftest import PYTHON, subprocess_env
+
+    recipe = write_recipe(tmp_path, SLOW_RACE)
+    killed = tmp_path / "killed.sqlite"
+    proc = subprocess.Popen(
+        [PYTHON, "-m", "runner", "run", str(recipe), "--store", str(killed), "--workers", "2", "-q"],
+        env=subprocess_env(), start_new_session=True, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+    )  # fmt: skip
+    deadline = time.monotonic() + 300
+    while _count(killed, "race_looks") < 1 and time.monotonic() < deadline and proc.poll() is None:
+        time.sleep(0.05)
+    os.killpg(proc.pid, signal.SIGKILL)
+    proc.wait()
+    looks_before = _looks(killed)
+    assert 1 <= len(looks_before) < 4 and _store_rows(killed)[2] == "ok", "the kill should land mid-race"
+
+    result = invoke("run", recipe, "--store", killed, "--workers", 2, "-q")
+    assert result.exit_code == 0, result.stderr
+    assert _looks(killed)[: len(looks_before)] == looks_before  # stored looks are never rewritten
+    clean = tmp_path / "clean.sqlite"
+    assert invoke("run", recipe, "--store", clean, "--workers", 1, "-q").exit_code == 0
+    assert _store_rows(killed) == _store_rows(clean)  # float equality on every stored number
+    assert _looks(killed) == _looks(clean)
+
+
+@pytest.mark.slow
+def test_race_on_a_dask_local_cluster_matches_a_local_race(tmp_path):
+    pytest.importorskip("distributed")
+    recipe = write_recipe(tmp_path, RACE)
+    dask_store, local = tmp_path / "dask.sqlite", tmp_path / "local.sqlite"
+    result = invoke("run", recipe, "--store", dask_store, "--on", "dask-local", "--workers", 2, "-q")
+    assert result.exit_code == 0, result.stderr
+    assert invoke("run", recipe, "--store", local, "--workers", 1, "-q").exit_code == 0
+    assert stored_metrics(dask_store) == stored_metrics(local)
+    assert _looks(dask_store) == _looks(local) and len(_looks(local)) >= 2
