@@ -33,6 +33,7 @@ __all__ = [
     "RaceEntry",
     "RegularizationRow",
     "Row",
+    "SeedsNeeded",
     "Verdict",
 ]
 
@@ -155,6 +156,24 @@ class Row:
     def label(self) -> str:
         """The configuration's level labels in one line ("base" without factors)."""
         return ", ".join(self.labels.values()) or "base"
+
+
+@dataclass(frozen=True)
+class SeedsNeeded:
+    """Seeds advice for one pair (advice.py): ``config`` against the top row ``versus``,
+    from the observed mean gap ``diff`` and sd of paired differences ``sd`` over ``n_seeds``;
+    seeds for 80% power at the board's level (``detect``), at its simultaneous level
+    (``detect_simultaneous``) and for equivalence within the margin; None: none suffices."""
+
+    config: str
+    versus: str
+    diff: float
+    sd: float
+    n_seeds: int
+    detect: int | None
+    detect_simultaneous: int | None
+    equivalence: int | None
+    note: str = ""
 
 
 @dataclass(frozen=True)
@@ -293,6 +312,7 @@ class Leaderboard:
     environment: Environment
     cautions: list[str]
     race: dict[str, Any] | None = None  # adaptive seeding: the plan, the rounds and why it ended
+    advice: list[SeedsNeeded] = field(default_factory=list)  # seeds the top pairs need
     source: str | None = field(default=None, compare=False)  # where it was read from (diff)
 
     @property
@@ -340,6 +360,7 @@ class Leaderboard:
                 environment=Environment(**doc["environment"]),
                 cautions=list(doc["cautions"]),
                 race=doc.get("race"),
+                advice=[SeedsNeeded(**a) for a in doc.get("advice", [])],
                 source=source,
             )
         except (KeyError, TypeError, ValueError) as exc:

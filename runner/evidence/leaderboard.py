@@ -18,6 +18,7 @@ from typing import Any
 from runner.components.metrics import Goal
 from runner.evidence import race_board, stats
 from runner.evidence.ablation import ablation
+from runner.evidence.advice import advise
 from runner.evidence.cautions import cautions
 from runner.evidence.document import Comparison, Counts, Environment, Leaderboard, Row
 from runner.evidence.flags import flags, mean_diagnostics
@@ -71,6 +72,7 @@ def leaderboard(grid: Grid, store: Store, margin: float | None = None) -> Leader
         ablation=ablation(race_board.first_round_grid(grid) if race else grid, store, protocol),
         environment=_environment(stored.values()), cautions=cautions(rows, grid, protocol, found, margin) + extra,
         race=race_board.race_doc(race, labels, sum((r.counts for r in rows), Counts())) if race else None,
+        advice=advise(rows, units, protocol, grid.recipe.verdicts.alpha, margin),
     )  # fmt: skip
 
 

@@ -95,8 +95,14 @@ def _table(doc: Leaderboard) -> str:
     ).rstrip()
     lines = _head(doc) + ["", fmt(header), fmt(["-" * w for w in widths])]
     lines += [fmt(r) for r in body]
-    lines += [""] + [f"* {c}" for c in doc.cautions]
+    lines += [""] + [f"* {c}" for c in doc.cautions] + [f"* {a}" for a in _advice(doc)]
     return "\n".join(lines) + "\n"
+
+
+def _advice(doc: Leaderboard) -> list[str]:
+    from runner.evidence.advice import advice_lines
+
+    return advice_lines(doc.advice, doc.evidence.get("alpha") or 0.05, doc.evidence.get("margin") or 0.0)
 
 
 def _markdown(doc: Leaderboard) -> str:
@@ -111,7 +117,7 @@ def _markdown(doc: Leaderboard) -> str:
         "|" + "|".join("---" for _ in header) + "|",
     ]
     lines += ["| " + " | ".join(esc(c) for c in r) + " |" for r in body]
-    lines += [""] + [f"- {c}" for c in doc.cautions]
+    lines += [""] + [f"- {c}" for c in doc.cautions] + [f"- {a}" for a in _advice(doc)]
     return "\n".join(lines) + "\n"
 
 
