@@ -34,14 +34,32 @@ def check(recipe_path, store, workers, no_probe, no_stack):
         if path.exists():
             with Store(path, create=False) as db:
                 text, _ = plan_report(grid, db, workers, probe=not no_probe, stack=not no_stack)
+                text += _advice(grid, db)
         else:
             text, _ = plan_report(grid, None, workers, probe=not no_probe, stack=not no_stack)
+            text += _advice(grid, None)
     except UserError as err:
         fail(err)
     click.echo(f"{recipe_path}: valid.")
     for line in networks:
         click.echo(line)
     click.echo(text, nl=False)
+
+
+def _advice(grid, db) -> str:
+    """Seeds advice from the stored results, or what a pilot of the recipe's seeds could tell."""
+    from runner.evidence.advice import advice_lines, pilot_lines
+    from runner.evidence.leaderboard import leaderboard, protocol_of
+
+    alpha, margin = grid.recipe.verdicts.alpha, grid.recipe.verdicts.margin
+    stored = db.jobs({j.key for j in grid}) if db is not None else []
+    if stored:
+        lines = advice_lines(leaderboard(grid, db).advice, alpha, margin) or [
+            "Seeds advice: needs two configurations with at least 2 seeds finished in common."
+        ]
+    else:
+        lines = pilot_lines(len(grid.recipe.seeds), alpha, protocol_of(grid, []))
+    return "".join(line + "\n" for line in lines)
 
 
 @click.command()

@@ -140,8 +140,8 @@ def _run(
     # workers leaves it to them (their fork server starts once the plan asks for workers).
     from runner.datasets.feasibility import check_grid_splits
     from runner.evidence.leaderboard import leaderboard
-    from runner.execution.planning import execute, executor_for, plan, work_items
-    from runner.execution.progress import Progress
+    from runner.execution.forkserver import default_workers
+    from runner.execution.planning import execute, executor_for, make_executor, plan, work_items
     from runner.outputs.mlflow_export import RunLogger
     from runner.outputs.text import render
     from runner.recipe.grid import expand
@@ -166,14 +166,23 @@ def _run(
             _confirm_fresh(db, grid, yes)
         todo = plan(grid, db, retry_failed)
         if not quiet:
-            click.echo(todo.summary_line(), err=True)
-        if todo.to_run:
-            keep = recipe.run.keep_weights != "none"
+            click.echo(_summary(grid, db, todo, retry_failed), err=True)
+        keep = recipe.run.keep_weights != "none"
+        if recipe.adaptive is not None and todo.to_run:  # seeds on demand: the race's rounds (execution/racing.py)
+            from runner.execution.racing import run_race
+
+            executor = cluster or make_executor(where, asked or default_workers(), threads, max_attempts, time_limit)
+            note = None if quiet else (lambda text: click.echo(text, err=True))
+            try:
+                run_race(grid, db, executor, _progress_for(grid, quiet, verbose), time_limit, tracker.stored,
+                         not no_stack, note, keep)  # fmt: skip
+            except KeyboardInterrupt as exc:
+                tracker.interrupted()
+                _interrupted(db, grid, todo, exc)
+        elif todo.to_run:
             items = work_items(grid, db, todo.to_run, not no_stack, time_limit, keep)
             executor = cluster or executor_for(where, items, grid, asked, threads, max_attempts, time_limit)
-            progress = Progress(
-                len(todo.to_run), grid.rank_by, grid.goal, quiet=quiet, live=False if verbose else None, verbose=verbose
-            )
+            progress = _progress_for(grid, quiet, verbose)(len(todo.to_run))
             try:
                 execute(
                     grid,
@@ -188,14 +197,7 @@ def _run(
                 )
             except KeyboardInterrupt as exc:
                 tracker.interrupted()
-                done = len(db.finished_keys() & {j.key for j in grid})
-                click.echo(
-                    f"\nInterrupted: {done} of {todo.total} jobs are stored (jobs still in training are "
-                    f"not: a stacked group's results are stored when the group ends). Run the same "
-                    f"command again to resume; finished jobs are not repeated.",
-                    err=True,
-                )
-                sys.exit(exit_status(exc))
+                _interrupted(db, grid, todo, exc)
         _report_tracking(tracker.finish(), tracker.uri, recipe_path, quiet)
         doc = leaderboard(grid, db)
         _retain(grid, db, doc, recipe.run.keep_weights, quiet)
@@ -209,6 +211,27 @@ def _run(
             lock.release()
         if db is not None:
             db.close()
+
+
+def _progress_for(grid, quiet: bool, verbose: bool):
+    """Progress lines for a run (or a race's round) of n jobs."""
+    from runner.execution.progress import Progress
+
+    def make(n: int) -> Progress:
+        return Progress(n, grid.rank_by, grid.goal, quiet=quiet, live=False if verbose else None, verbose=verbose)
+
+    return make
+
+
+def _interrupted(db, grid, todo, exc) -> None:
+    done = len(db.finished_keys() & {j.key for j in grid})
+    click.echo(
+        f"\nInterrupted: {done} of {todo.total} jobs are stored (jobs still in training are "
+        f"not: a stacked group's results are stored when the group ends). Run the same "
+        f"command again to resume; finished jobs are not repeated.",
+        err=True,
+    )
+    sys.exit(exit_status(exc))
 
 
 def _open_for_run(path):
@@ -270,6 +293,20 @@ def _retain(grid, db, doc, keep: str, quiet: bool) -> None:
         click.echo(retained.describe(), err=True)
 
 
+def _summary(grid, db, todo, retry_failed: bool) -> str:
+    if grid.recipe.adaptive is None:
+        return todo.summary_line()
+    if retry_failed:
+        raise UserError(
+            "--retry-failed cannot be used with [adaptive]: the race has already decided on those jobs",
+            key="--retry-failed",
+            hint="Start the race over with --fresh, or run without [adaptive]",
+        )
+    from runner.execution.racing import summary_line
+
+    return summary_line(grid, db)
+
+
 def _report_tracking(errors, uri, recipe_path, quiet: bool) -> None:
     if errors is None:
         return
@@ -297,3 +334,7 @@ def _confirm_fresh(db, grid, yes: bool) -> None:
             )
         click.confirm(f"Delete the {stored} stored results of this grid and start over?", abort=True, err=True)
     forget(grid, db)
+    if grid.recipe.adaptive is not None:
+        from runner.evidence.race_board import race_plan
+
+        db.forget_race(race_plan(grid).key())

@@ -177,6 +177,18 @@ def _protocol(board: Leaderboard) -> Resampling:
     return FIXED  # fixed split; under folds each seed's value is already its fold mean
 
 
+def _diff_seeds(board: Leaderboard) -> list[int]:
+    """The seeds a diff pairs on: an adaptive run's first round (every configuration got
+    those before the race decided anything, so which seeds exist cannot depend on the values)."""
+    return list(board.race["first_seeds"]) if board.race else list(board.seeds)
+
+
+def _on(row: Row, board: Leaderboard) -> list[float]:
+    """A row's per-seed values on the seeds the diff uses (unpaired comparisons)."""
+    seeds = {str(s) for s in _diff_seeds(board)}
+    return [v for s, v in row.per_seed.items() if s in seeds]
+
+
 def _failure_verdict(orow: Row, nrow: Row, goal: Goal) -> tuple[str, str] | None:
     if orow.complete and not nrow.complete:
         return "regressed", "a seed diverged, failed or timed out in the new run"
@@ -199,7 +211,7 @@ def diff(old: Leaderboard, new: Leaderboard, alpha: float = 0.05, min_change: fl
     same_split = bool(new.protocol) and _split_key(old) == _split_key(new) and (
         old.data.get("test_fingerprints") == new.data.get("test_fingerprints"))  # fmt: skip
     same_data = old.data.get("fingerprints") == new.data.get("fingerprints")
-    pair = pairing(old.seeds, new.seeds, same_data, same_split)
+    pair = pairing(_diff_seeds(old), _diff_seeds(new), same_data, same_split)
     judged, verdicts = [], {}
     for key in shared:
         found = _failure_verdict(old_rows[key], new_rows[key], new.goal)
@@ -212,7 +224,7 @@ def diff(old: Leaderboard, new: Leaderboard, alpha: float = 0.05, min_change: fl
         seeds = [str(s) for s in pair.seeds]
         values = [([old_rows[k].per_seed[s] for s in seeds if s in old_rows[k].per_seed and s in new_rows[k].per_seed],
                    [new_rows[k].per_seed[s] for s in seeds if s in old_rows[k].per_seed and s in new_rows[k].per_seed])
-                  if pair.paired else (list(old_rows[k].per_seed.values()), list(new_rows[k].per_seed.values()))
+                  if pair.paired else (_on(old_rows[k], old), _on(new_rows[k], new))
                   for k in judged]  # fmt: skip
         gate = compare_runs([o for o, _ in values], [n for _, n in values], str(new.goal), paired=pair.paired,
                             alpha=alpha, min_change=min_change, protocol=_protocol(new))  # fmt: skip

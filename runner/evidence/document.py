@@ -30,8 +30,10 @@ __all__ = [
     "OneAtATime",
     "OneAtATimeRow",
     "OptimizationRow",
+    "RaceEntry",
     "RegularizationRow",
     "Row",
+    "SeedsNeeded",
     "Verdict",
 ]
 
@@ -48,6 +50,7 @@ class Counts:
     failed: int = 0
     timeout: int = 0
     pending: int = 0
+    skipped: int = 0  # adaptive seeding: jobs the race chose not to train
 
     @property
     def finished(self) -> int:
@@ -55,7 +58,7 @@ class Counts:
 
     @property
     def total(self) -> int:
-        return self.finished + self.pending
+        return self.finished + self.pending + self.skipped
 
     def __add__(self, other: Counts) -> Counts:
         return Counts(*(a + b for a, b in zip(dataclasses.astuple(self), dataclasses.astuple(other))))
@@ -104,6 +107,22 @@ class Flag:
 
 
 @dataclass(frozen=True)
+class RaceEntry:
+    """A configuration in an adaptive run (race.py): the seeds the race gave it, the round
+    after which it was dropped (None: still racing, or in at the end) and the look's reason."""
+
+    seeds: int
+    dropped_round: int | None
+    reason: str
+
+    @property
+    def text(self) -> str:
+        if self.dropped_round is None:
+            return f"{self.seeds} seeds, kept"
+        return f"{self.seeds} seeds, dropped after round {self.dropped_round}"
+
+
+@dataclass(frozen=True)
 class Row:
     """One configuration: its levels, its rank metric over seeds and what went wrong."""
 
@@ -125,6 +144,7 @@ class Row:
     verdict: Verdict | None = None
     vs_best: Comparison | None = None
     best_epoch_median: float | None = None  # under early stopping
+    race: RaceEntry | None = None  # adaptive seeding only
 
     @property
     def possibly_best(self) -> bool | None:
@@ -136,6 +156,24 @@ class Row:
     def label(self) -> str:
         """The configuration's level labels in one line ("base" without factors)."""
         return ", ".join(self.labels.values()) or "base"
+
+
+@dataclass(frozen=True)
+class SeedsNeeded:
+    """Seeds advice for one pair (advice.py): ``config`` against the top row ``versus``,
+    from the observed mean gap ``diff`` and sd of paired differences ``sd`` over ``n_seeds``;
+    seeds for 80% power at the board's level (``detect``), at its simultaneous level
+    (``detect_simultaneous``) and for equivalence within the margin; None: none suffices."""
+
+    config: str
+    versus: str
+    diff: float
+    sd: float
+    n_seeds: int
+    detect: int | None
+    detect_simultaneous: int | None
+    equivalence: int | None
+    note: str = ""
 
 
 @dataclass(frozen=True)
@@ -273,6 +311,8 @@ class Leaderboard:
     ablation: Ablation | None
     environment: Environment
     cautions: list[str]
+    race: dict[str, Any] | None = None  # adaptive seeding: the plan, the rounds and why it ended
+    advice: list[SeedsNeeded] = field(default_factory=list)  # seeds the top pairs need
     source: str | None = field(default=None, compare=False)  # where it was read from (diff)
 
     @property
@@ -322,6 +362,8 @@ class Leaderboard:
                 ablation=None,
                 environment=Environment(**doc["environment"]),
                 cautions=list(doc["cautions"]),
+                race=doc.get("race"),
+                advice=[SeedsNeeded(**a) for a in doc.get("advice", [])],
                 source=source,
             )
         except (KeyError, TypeError, ValueError) as exc:
@@ -378,4 +420,5 @@ def _row(raw: dict[str, Any]) -> Row:
         verdict=Verdict(**verdict) if verdict else None,
         complete=raw.get("complete", True),
         best_epoch_median=raw.get("best_epoch_median"),
+        race=RaceEntry(**raw["race"]) if raw.get("race") else None,
     )

@@ -16,8 +16,9 @@ import statistics
 from typing import Any
 
 from runner.components.metrics import Goal
-from runner.evidence import stats
+from runner.evidence import race_board, stats
 from runner.evidence.ablation import ablation
+from runner.evidence.advice import advise
 from runner.evidence.cautions import cautions
 from runner.evidence.document import Comparison, Counts, Environment, Leaderboard, Row
 from runner.evidence.flags import flags, mean_diagnostics
@@ -46,10 +47,16 @@ def leaderboard(grid: Grid, store: Store, margin: float | None = None) -> Leader
     protocol = protocol_of(grid, stored.values())
     rows = [_row(grid, c, by_config[c.id], stored, metrics, units[c.id], protocol) for c in grid.configs]
     margin = grid.recipe.verdicts.margin if margin is None else margin
-    found = assess(units, {r.config_id: r.complete for r in rows}, str(grid.goal), protocol,
-                   grid.recipe.verdicts.alpha, margin)  # fmt: skip
-    rows = _rank([dataclasses.replace(r, verdict=found.verdicts[r.config_id]) for r in rows], grid.goal)
+    race = race_board.current(grid, store, protocol)  # None unless [adaptive]
+    found = race_board.race_assessment(race) if race is not None and race.plan.metric == grid.rank_by else None
+    if found is None:
+        found = assess(units, {r.config_id: r.complete for r in rows}, str(grid.goal), protocol,
+                       grid.recipe.verdicts.alpha, margin)  # fmt: skip
+    rows = [dataclasses.replace(r, verdict=found.verdicts[r.config_id]) for r in rows]
+    rows = _rank(race_board.with_race(rows, race) if race else rows, grid.goal, race_board.order(race) if race else {})
     rows = _compare_with_top(rows, units, found, protocol)
+    labels = {r.config_id: r.label for r in rows}
+    extra = race_board.caution(race, labels, sum((r.counts for r in rows), Counts()), grid.rank_by) if race else []
     return Leaderboard(
         recipe=grid.recipe.name, recipe_hash=grid.recipe.hash, description=grid.recipe.description,
         metric=grid.rank_by, goal=grid.goal, test_metric=f"test.{grid.metric}", task=str(grid.task),
@@ -61,8 +68,11 @@ def leaderboard(grid: Grid, store: Store, margin: float | None = None) -> Leader
               "test_fingerprints": sorted({r.diagnostics["split"]["test_rows"] for r in stored.values()
                                            if "split" in r.diagnostics})},
         protocol=_protocol_doc(grid, protocol), evidence=_evidence_doc(grid, found, margin), monitor=grid.monitor,
-        jobs=sum((r.counts for r in rows), Counts()), rows=rows, ablation=ablation(grid, store, protocol),
-        environment=_environment(stored.values()), cautions=cautions(rows, grid, protocol, found, margin),
+        jobs=sum((r.counts for r in rows), Counts()), rows=rows,
+        ablation=ablation(race_board.first_round_grid(grid) if race else grid, store, protocol),
+        environment=_environment(stored.values()), cautions=cautions(rows, grid, protocol, found, margin) + extra,
+        race=race_board.race_doc(race, labels, sum((r.counts for r in rows), Counts())) if race else None,
+        advice=advise(rows, units, protocol, grid.recipe.verdicts.alpha, margin),
     )  # fmt: skip
 
 
@@ -142,18 +152,20 @@ def _row(grid: Grid, config: Config, cjobs: list, stored: dict[str, StoredJob], 
     )  # fmt: skip
 
 
-def _rank(rows: list[Row], goal: Goal) -> list[Row]:
+def _rank(rows: list[Row], goal: Goal, dropped: dict[str, int]) -> list[Row]:
     """Rows whose seeds all finished first, by mean (equal means share a rank, the next rank
     skipping as many places); then rows with a seed that did not finish, by their survivors'
-    mean; rows with no finished seed last, unranked."""
+    mean; rows with no finished seed last, unranked. In a race, ``dropped`` orders the
+    configurations it dropped after those still in it, later drops first."""
     sign = -1.0 if goal is Goal.MAX else 1.0
-    rows = sorted(rows, key=lambda r: (r.mean is None, not r.complete, sign * r.mean if r.mean is not None else 0.0))
+    rows = sorted(rows, key=lambda r: (r.mean is None, not r.complete, dropped.get(r.config_id, 0),
+                                       sign * r.mean if r.mean is not None else 0.0))  # fmt: skip
     out, previous, rank = [], None, 0
     for place, row in enumerate(rows, 1):
         if row.mean is None:
             out.append(dataclasses.replace(row, rank=None))
             continue
-        key = (row.complete, row.mean)
+        key = (row.complete, dropped.get(row.config_id, 0), row.mean)
         rank = rank if key == previous else place
         previous = key
         out.append(dataclasses.replace(row, rank=rank))
@@ -172,7 +184,10 @@ def _compare_with_top(rows: list[Row], units: dict[str, Units], found: Assessmen
         found_protocol = Resampling.repeated_kfold(protocol.folds, len({s for s, _ in matched}))
     compared = {}
     for row in assessed[1:]:
-        d = [units[row.config_id][u] - units[top.config_id][u] for u in matched]
+        shared = [u for u in matched if u in units[row.config_id]]  # a raced row may have fewer seeds
+        d = [units[row.config_id][u] - units[top.config_id][u] for u in shared]
+        if protocol.kind == "repeated_kfold":
+            found_protocol = Resampling.repeated_kfold(protocol.folds, len({s for s, _ in shared}))
         pd = paired_difference(d, found_protocol)
         ci = [pd.low, pd.high] if pd.low is not None else None
         compared[row.config_id] = Comparison(pd.mean, ci, pd.p_value, pd.basis, len(d))

@@ -117,9 +117,11 @@ def _unbounded(common: dict, means: np.ndarray, adv: np.ndarray, k: int, margin:
     )  # fmt: skip
 
 
-def _half_width(oriented: np.ndarray, alpha: float, protocol: Resampling, constant: str):
-    """(residual sd, critical constant, half-width w, basis) of the simultaneous intervals."""
-    k, n = oriented.shape
+def _half_width(oriented: np.ndarray, alpha: float, protocol: Resampling, constant: str, family: int):
+    """(residual sd, critical constant, half-width w, basis) of the simultaneous intervals;
+    the constant covers ``family`` configurations (at least the rows of ``oriented``)."""
+    rows, n = oriented.shape
+    k = max(rows, family)
     ms, df = _residual_ms(oriented)
     scale = float(np.abs(oriented - oriented.mean()).max())
     v = protocol.variance_factor(n)
@@ -144,6 +146,7 @@ def possibly_best(
     protocol: Resampling = FIXED,
     margin: float | None = None,
     constant: str = "range",
+    family: int | None = None,
 ) -> BestSet:
     """Constrained MCB on a complete k x n matrix y (configurations x matched seeds).
 
@@ -152,7 +155,9 @@ def possibly_best(
     w = d s sqrt(2 v) with d the one-sided Dunnett constant for k-1 comparisons (Hsu 1996),
     or w = q s sqrt(v) with q the studentized range quantile for k means (Tukey 1953).
     Row i: [min(0, a_i - w), max(0, a_i + w)] with a_i its advantage. A residual variance of
-    exactly 0 is not evidence of no noise: see ``_no_spread_half_width``.
+    exactly 0 is not evidence of no noise: see ``_no_spread_half_width``. ``family``: the
+    number of configurations the critical constant covers when y holds only some of them
+    (the survivors of a race, race.py); default and minimum: the rows of y.
     """
     _check_arguments(goal, constant, margin)
     data = np.asarray(y, dtype=float)
@@ -167,7 +172,7 @@ def possibly_best(
     adv = _advantage(oriented.mean(axis=1))
     if n == 1:
         return _unbounded(common, means, adv, k, margin, "one seed: no verdict")
-    sd, d, w, basis = _half_width(oriented, alpha, protocol, constant)
+    sd, d, w, basis = _half_width(oriented, alpha, protocol, constant, family or k)
     lower = np.minimum(0.0, adv - w)
     upper = np.maximum(0.0, adv + w)
     best = adv + w >= 0  # a row tied at the boundary is kept

@@ -68,14 +68,16 @@ def columns(doc: Leaderboard) -> tuple[list[str], list[list[str]]]:
     factor_names = doc.factor_names
     early = any(r.best_epoch_median is not None for r in doc.rows)
     ci_head = f"{1 - doc.evidence['alpha']:.0%} CI" if doc.evidence.get("alpha") else "95% CI"
+    raced = doc.race is not None
     header = ["rank", *factor_names, "n", "mean", "sd", ci_head, "test", *(["best ep."] if early else []),
-              STANDING_HEADER, "flags"]  # fmt: skip
+              *(["race"] if raced else []), STANDING_HEADER, "flags"]  # fmt: skip
     body = []
     margin = doc.evidence.get("margin")
     for row in doc.rows:
         epoch = ["-" if row.best_epoch_median is None else f"{row.best_epoch_median:g}"] if early else []
+        race = [row.race.text if row.race else "-"] if raced else []
         body.append([str(row.rank or "-"), *[row.labels[f] for f in factor_names], f"{row.n}/{row.counts.total}",
-                     number(row.mean), number(row.std), interval(row.ci95), number(row.test_mean), *epoch,
+                     number(row.mean), number(row.std), interval(row.ci95), number(row.test_mean), *epoch, *race,
                      standing(row, margin), ", ".join(f.text for f in row.flags)])  # fmt: skip
     return header, body
 
@@ -86,7 +88,7 @@ def _head(doc: Leaderboard) -> list[str]:
     lines = [
         f"{doc.recipe}: ranked by {doc.metric} ({higher} is better); {len(doc.rows)} configurations, "
         f"{j.total} jobs: {j.done} done, {j.diverged} diverged, {j.failed} failed, {j.timeout} timed out, "
-        f"{j.pending} pending"
+        f"{j.pending} pending" + (f", {j.skipped} not run (adaptive seeding)" if j.skipped else "")
     ]
     env = doc.environment
     if env.distinct > 1:
@@ -107,7 +109,7 @@ def _table(doc: Leaderboard) -> str:
     ).rstrip()
     lines = _head(doc) + ["", fmt(header), fmt(["-" * w for w in widths])]
     lines += [fmt(r) for r in body]
-    lines += [""] + [f"* {c}" for c in doc.cautions]
+    lines += [""] + [f"* {c}" for c in doc.cautions] + [f"* {a}" for a in _advice(doc)]
     lines += _legend_lines(doc, markdown=False)
     return "\n".join(lines) + "\n"
 
@@ -126,6 +128,12 @@ def _legend_lines(doc: Leaderboard, markdown: bool) -> list[str]:
     return ["", "Flags:"] + [f"  {names[code]}: {meaning}. Try: {what}." for code, (meaning, what) in entries.items()]
 
 
+def _advice(doc: Leaderboard) -> list[str]:
+    from runner.evidence.advice import advice_lines
+
+    return advice_lines(doc.advice, doc.evidence.get("alpha") or 0.05, doc.evidence.get("margin") or 0.0)
+
+
 def _markdown(doc: Leaderboard) -> str:
     header, body = columns(doc)
     esc = lambda s: s.replace("|", "\\|")
@@ -138,7 +146,7 @@ def _markdown(doc: Leaderboard) -> str:
         "|" + "|".join("---" for _ in header) + "|",
     ]
     lines += ["| " + " | ".join(esc(c) for c in r) + " |" for r in body]
-    lines += [""] + [f"- {c}" for c in doc.cautions]
+    lines += [""] + [f"- {c}" for c in doc.cautions] + [f"- {a}" for a in _advice(doc)]
     lines += _legend_lines(doc, markdown=True)
     return "\n".join(lines) + "\n"
 

@@ -37,6 +37,7 @@ from runner.recipe.locate import line_of
 from runner.recipe.settings import SECTIONS, Settings
 
 __all__ = [
+    "AdaptiveSettings",
     "DiagnosticThresholds",
     "Factor",
     "Recipe",
@@ -52,6 +53,7 @@ __all__ = [
 MAX_RECIPE_BYTES = 1 << 20  # a recipe is a short text; this bound stops /dev/zero and its kind
 
 TOP_LEVEL = (
+    "adaptive",
     "baseline",
     "data",
     "description",
@@ -140,6 +142,25 @@ VERDICTS = {
 }  # fmt: skip
 
 
+# [adaptive]: seeds on demand (runner/evidence/race.py). The recipe's seeds list is the most
+# any configuration gets; the race's looks use [verdicts] alpha and margin. Not part of any
+# job's identity: a raced job computes what the same job of the full grid computes.
+ADAPTIVE = {
+    "first_seeds": Param(Integer(2, 1000), 3,
+                         "seeds every configuration gets before any is dropped (must be fewer than the seeds)"),
+    "max_jobs": Param(Integer(0, None), 0,
+                      "most jobs the race may train; a round that would pass it is not started; 0 = no limit"),
+}  # fmt: skip
+
+
+@dataclass(frozen=True, slots=True)
+class AdaptiveSettings:
+    """The [adaptive] table: present means the grid is raced (seeds on demand)."""
+
+    first_seeds: int = 3
+    max_jobs: int = 0  # 0: only the seeds list bounds the race
+
+
 @dataclass(frozen=True, slots=True)
 class VerdictSettings:
     """The [verdicts] table."""
@@ -200,6 +221,7 @@ class Recipe:
     run: RunSettings = RunSettings()
     tracking: TrackingSettings = TrackingSettings()
     verdicts: VerdictSettings = VerdictSettings()
+    adaptive: AdaptiveSettings | None = None  # None: every configuration gets every seed
 
     @property
     def base_dir(self) -> Path:
@@ -277,6 +299,7 @@ def recipe_from_tables(raw: dict, text: str, path: Path) -> Recipe:
     run = RunSettings(**validate_table(raw.get("run", {}), RUN, "run"))
     tracking = TrackingSettings(**validate_table(raw.get("tracking", {}), TRACKING, "tracking"))
     verdicts = VerdictSettings(**validate_table(raw.get("verdicts", {}), VERDICTS, "verdicts"))
+    adaptive = _adaptive(raw, seeds)
     return Recipe(
         path=path.resolve(),
         text=text,
@@ -294,7 +317,23 @@ def recipe_from_tables(raw: dict, text: str, path: Path) -> Recipe:
         run=run,
         tracking=tracking,
         verdicts=verdicts,
+        adaptive=adaptive,
     )
+
+
+def _adaptive(raw: dict, seeds: tuple[int, ...]) -> AdaptiveSettings | None:
+    if "adaptive" not in raw:
+        return None
+    adaptive = AdaptiveSettings(**validate_table(raw["adaptive"], ADAPTIVE, "adaptive"))
+    if adaptive.first_seeds >= len(seeds):
+        raise RecipeError(
+            f"must be fewer than the recipe's {len(seeds)} seeds, or the race has no seed to hand out",
+            key="adaptive.first_seeds",
+            value=adaptive.first_seeds,
+            allowed=f"a whole number from 2 to {max(2, len(seeds) - 1)}",
+            hint="Add seeds to the seeds list (the most any configuration may get) or lower first_seeds",
+        )
+    return adaptive
 
 
 def resolve(sections: Mapping[str, Any], assignments: Mapping[str, Any]) -> Settings:

@@ -26,7 +26,7 @@ from runner.recipe.constraints import (
     Real,
     Text,
 )
-from runner.recipe.loader import DIAGNOSTICS, RUN, TRACKING, VERDICTS
+from runner.recipe.loader import ADAPTIVE, DIAGNOSTICS, RUN, TRACKING, VERDICTS
 from runner.recipe.settings import SECTIONS, all_paths, param_at
 
 __all__ = ["recipe_schema"]
@@ -176,6 +176,7 @@ def recipe_schema() -> dict:
             "baseline": {"type": "object", "additionalProperties": scalar},
             "diagnostics": _table(DIAGNOSTICS),
             "verdicts": _table(VERDICTS),
+            "adaptive": _table(ADAPTIVE),
             "run": _table(RUN),
             "tracking": _table(TRACKING),
         },

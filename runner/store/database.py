@@ -9,6 +9,8 @@ finishes, so a killed process leaves either the complete result or none of it: n
 half-written weights blob. Only finished jobs are stored.
 modules (the source text of each user network file seen, by hash) and job_modules (which
 one a job of model.kind = "python" trained: ``Store.job_module``).
+race_looks (each look of an adaptive run: who stays, who is dropped and why), lr_probes
+(the learning-rate range test's curves).
 """
 
 from __future__ import annotations
@@ -71,6 +73,10 @@ CREATE TABLE IF NOT EXISTS modules (
 CREATE TABLE IF NOT EXISTS job_modules (
     job_key TEXT PRIMARY KEY REFERENCES jobs(key) ON DELETE CASCADE,
     sha256 TEXT NOT NULL REFERENCES modules(sha256));
+CREATE TABLE IF NOT EXISTS race_looks (
+    race TEXT NOT NULL, round INTEGER NOT NULL, look TEXT NOT NULL, PRIMARY KEY (race, round));
+CREATE TABLE IF NOT EXISTS lr_probes (
+    probe TEXT PRIMARY KEY, optimizer TEXT NOT NULL, result TEXT NOT NULL);
 CREATE TABLE IF NOT EXISTS exports (
     uri TEXT NOT NULL, job_key TEXT NOT NULL, run_id TEXT NOT NULL, exported REAL NOT NULL,
     PRIMARY KEY (uri, job_key));
@@ -500,6 +506,38 @@ class Store:
         """(resolved settings in their plain form, seed) of a stored job, or None."""
         row = self.conn.execute("SELECT settings, seed FROM jobs WHERE key = ?", (key,)).fetchone()
         return None if row is None else (json.loads(row[0]), row[1])
+
+    def record_race_look(self, race: str, round_: int, look: dict[str, Any]) -> None:
+        """One look of race ``race`` (its decisions as plain JSON), in one statement: a killed
+        run leaves a look whole or not at all. A look is decided once and never rewritten."""
+        with self.writing("recording a race look", transaction=False) as c:
+            c.execute(
+                "INSERT OR IGNORE INTO race_looks VALUES (?, ?, ?)", (race, round_, json.dumps(look, sort_keys=True))
+            )
+
+    def race_looks(self, race: str) -> list[dict[str, Any]]:
+        """The stored looks of race ``race``, in round order."""
+        rows = self.conn.execute("SELECT look FROM race_looks WHERE race = ? ORDER BY round", (race,))
+        return [json.loads(r[0]) for r in rows]
+
+    def forget_race(self, race: str) -> None:
+        """Delete a race's looks (``recipe run --fresh``)."""
+        with self.writing("forgetting a race", transaction=False) as c:
+            c.execute("DELETE FROM race_looks WHERE race = ?", (race,))
+
+    def record_lr_probe(self, probe: str, optimizer: str, result: dict[str, Any]) -> None:
+        """A learning-rate range test's curve and suggestion, under the probe's identity."""
+        with self.writing("recording a learning-rate probe", transaction=False) as c:
+            c.execute(
+                "INSERT OR REPLACE INTO lr_probes VALUES (?, ?, ?)",
+                (probe, optimizer, json.dumps(result, sort_keys=True)),
+            )
+
+    def lr_probes(self, probes: Iterable[str]) -> dict[str, dict[str, Any]]:
+        """The stored range tests among ``probes``, by identity."""
+        wanted = set(probes)
+        rows = self.conn.execute("SELECT probe, result FROM lr_probes").fetchall()
+        return {p: json.loads(r) for p, r in rows if p in wanted}
 
     def integrity(self) -> str:
         return self.conn.execute("PRAGMA integrity_check").fetchone()[0]
