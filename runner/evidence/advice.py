@@ -75,16 +75,28 @@ def _count(n: int | None) -> str:
 
 
 def advice_lines(advice: Sequence[SeedsNeeded], alpha: float, margin: float) -> list[str]:
-    """The advice as sentences for the board and `recipe check`."""
-    out = []
+    """The advice as sentences for the board and `recipe check`: one per pair that more
+    seeds could separate, and one line for all the pairs no number of seeds separates."""
+    out, never = [], []
     for a in advice:
-        why = f" ({a.note})" if a.detect is None else ""
+        if a.detect is None and a.detect_simultaneous is None and not (margin and a.equivalence):
+            never.append(a)
+            continue
         text = (f"Seeds advice: to separate {a.versus} from {a.config} (gap {a.diff:+.4g}, sd of paired differences "
                 f"{a.sd:.3g} over {a.n_seeds} seeds) with {POWER:.0%} power: {_count(a.detect)} for a paired t-test "
-                f"at {alpha:g}, {_count(a.detect_simultaneous)} at the board's simultaneous level{why}")  # fmt: skip
+                f"at {alpha:g}, {_count(a.detect_simultaneous)} at the board's simultaneous level")  # fmt: skip
         if margin:
             text += f"; {_count(a.equivalence)} to show them within +-{margin:g}"
         out.append(text + ".")
+    if never:
+        names = "; ".join(a.config for a in never[:4]) + (f"; and {len(never) - 4} more" if len(never) > 4 else "")
+        largest = max(abs(a.diff) for a in never)
+        why = (never[0].note or "the gaps are too small for the spread").replace(
+            "no number of seeds up to", "none up to"
+        )
+        out.append(f"Seeds advice: no number of seeds separates {never[0].versus} from {len(never)} "
+                   f"configuration{'s' if len(never) > 1 else ''} ({names}; gaps up to {largest:.4g}) with "
+                   f"{POWER:.0%} power: {why}.")  # fmt: skip
     return out
 
 
