@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 import sys
+from typing import Any
 
 import click
 
@@ -140,8 +141,7 @@ def _run(
     # workers leaves it to them (their fork server starts once the plan asks for workers).
     from runner.datasets.feasibility import check_grid_splits
     from runner.evidence.leaderboard import leaderboard
-    from runner.execution.forkserver import default_workers
-    from runner.execution.planning import execute, executor_for, make_executor, plan, work_items
+    from runner.execution.planning import plan
     from runner.outputs.mlflow_export import RunLogger
     from runner.outputs.text import render
     from runner.recipe.grid import expand
@@ -159,42 +159,20 @@ def _run(
             _read_only_run(db, grid, fresh, retry_failed, quiet, fmt)
             return
         where, asked = on or recipe.run.on, workers or recipe.run.workers or None
-        # a cluster that cannot be reached is refused before the plan is shown
-        cluster = executor_for(where, [], grid, asked, threads, max_attempts, time_limit) if where != "local" else None
-        tracker = RunLogger(mlflow_uri or recipe.tracking.mlflow, grid, db)
+        # made before the plan is shown, so a cluster that cannot be reached is refused first
+        train = _Training(grid, db, where, asked, threads, max_attempts, time_limit, not no_stack)
+        train.tracker = tracker = RunLogger(mlflow_uri or recipe.tracking.mlflow, grid, db)
         if fresh:
             _confirm_fresh(db, grid, yes)
         todo = plan(grid, db, retry_failed)
         if not quiet:
             click.echo(_summary(grid, db, todo, retry_failed), err=True)
-        keep = recipe.run.keep_weights != "none"
-        if recipe.adaptive is not None and todo.to_run:  # seeds on demand: the race's rounds (execution/racing.py)
-            from runner.execution.racing import run_race
-
-            executor = cluster or make_executor(where, asked or default_workers(), threads, max_attempts, time_limit)
-            note = None if quiet else (lambda text: click.echo(text, err=True))
+        if todo.to_run:
             try:
-                run_race(grid, db, executor, _progress_for(grid, quiet, verbose), time_limit, tracker.stored,
-                         not no_stack, note, keep)  # fmt: skip
-            except KeyboardInterrupt as exc:
-                tracker.interrupted()
-                _interrupted(db, grid, todo, exc)
-        elif todo.to_run:
-            items = work_items(grid, db, todo.to_run, not no_stack, time_limit, keep)
-            executor = cluster or executor_for(where, items, grid, asked, threads, max_attempts, time_limit)
-            progress = _progress_for(grid, quiet, verbose)(len(todo.to_run))
-            try:
-                execute(
-                    grid,
-                    db,
-                    todo.to_run,
-                    executor,
-                    progress,
-                    time_limit,
-                    on_stored=tracker.stored,
-                    keep_weights=keep,
-                    items=items,
-                )
+                if recipe.adaptive is not None:
+                    train.race(quiet, verbose)
+                else:
+                    train.grid_jobs(todo.to_run, quiet, verbose)
             except KeyboardInterrupt as exc:
                 tracker.interrupted()
                 _interrupted(db, grid, todo, exc)
@@ -211,6 +189,47 @@ def _run(
             lock.release()
         if db is not None:
             db.close()
+
+
+class _Training:
+    """What `recipe run` trains once the plan is made: the grid's jobs, or a race's rounds."""
+
+    tracker: Any  # outputs.mlflow_export.RunLogger, set once the cluster is reached
+
+    def __init__(self, grid, db, where, asked, threads, max_attempts, time_limit, stack):
+        self.grid, self.db = grid, db
+        self.where, self.asked, self.threads = where, asked, threads
+        self.max_attempts, self.time_limit, self.stack = max_attempts, time_limit, stack
+        self.keep = grid.recipe.run.keep_weights != "none"
+        # a cluster that cannot be reached is refused before anything trains
+        self.cluster = self._executor([]) if where != "local" else None
+
+    def _executor(self, items):
+        from runner.execution.planning import executor_for
+
+        return executor_for(self.where, items, self.grid, self.asked, self.threads, self.max_attempts, self.time_limit)
+
+    def grid_jobs(self, todo, quiet: bool, verbose: bool) -> None:
+        from runner.execution.planning import execute, work_items
+
+        items = work_items(self.grid, self.db, todo, self.stack, self.time_limit, self.keep)
+        executor = self.cluster or self._executor(items)
+        progress = _progress_for(self.grid, quiet, verbose)(len(todo))
+        execute(self.grid, self.db, todo, executor, progress, self.time_limit, on_stored=self.tracker.stored,
+                keep_weights=self.keep, items=items)  # fmt: skip
+
+    def race(self, quiet: bool, verbose: bool) -> None:
+        """Seeds on demand: the race's rounds (execution/racing.py)."""
+        from runner.execution.forkserver import default_workers
+        from runner.execution.planning import make_executor
+        from runner.execution.racing import run_race
+
+        workers = self.asked or default_workers()
+        executor = self.cluster or make_executor(self.where, workers, self.threads, self.max_attempts, self.time_limit)
+        note = None if quiet else (lambda text: click.echo(text, err=True))
+        progress = _progress_for(self.grid, quiet, verbose)
+        run_race(self.grid, self.db, executor, progress, self.time_limit, self.tracker.stored, self.stack, note,
+                 self.keep)  # fmt: skip
 
 
 def _progress_for(grid, quiet: bool, verbose: bool):

@@ -1,7 +1,7 @@
 """Normal, Student t and F distribution functions in plain Python (math + numpy).
 
-Written out so the read-only commands need not import scipy.stats (about 1 s) or
-scipy.special (about 0.3 s) to print a verdict. The t and F functions go through the
+Written out so the read-only commands need not import scipy.stats or scipy.special (their
+import costs are in bench/RESULTS.md) to print a verdict. The t and F functions go through the
 regularized incomplete beta function, evaluated by its continued fraction (Didonato &
 Morris 1992's choice of side) with a log-beta that avoids cancellation for large degrees of
 freedom; quantiles are found by safeguarded Newton steps on the log of a tail. Tests hold

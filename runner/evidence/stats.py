@@ -2,7 +2,7 @@
 
 The formulas are written out here; tests check them against scipy.stats and statsmodels.
 The t distribution comes from runner.evidence.distributions, so importing this module does
-not import scipy.stats (about 1 s); only the Wilcoxon helper imports it, when called.
+not import scipy.stats (slow to import); only the Wilcoxon helper imports it, when called.
 """
 
 from __future__ import annotations
@@ -109,6 +109,6 @@ def wilcoxon_p(a: Sequence[float], b: Sequence[float]) -> float | None:
         return None
     if np.all(d == 0):
         return 1.0
-    from scipy import stats as _st  # 1 s to import: only when a Wilcoxon p is asked for
+    from scipy import stats as _st  # slow to import: only when a Wilcoxon p is asked for
 
     return float(_st.wilcoxon(d, zero_method="wilcox", alternative="two-sided").pvalue)

@@ -7,8 +7,8 @@ with one operation and a per-member column.
 
 Hidden layers run as torch.baddbmm over the member axis, (K, rows, in) -> (K, rows, out).
 The output layer is computed transposed, (K, out, in) @ (K, in, rows) -> (K, out, rows):
-with ten or so outputs a matrix product whose last axis is the output width runs several
-times slower on a CPU than one whose last axis is the rows.
+with ten or so outputs a matrix product whose last axis is the output width runs slower on
+a CPU than one whose last axis is the rows.
 
 The backward pass is the chain rule by hand, with torch's own derivative kernels for each
 activation (the ones autograd calls; tests compare every gradient with autograd on the
@@ -61,9 +61,9 @@ def block(t: torch.Tensor) -> torch.Tensor:
 
 
 # Products go through numpy's BLAS (OpenBLAS in numpy's wheels) on numpy views of the same
-# memory: on the machines measured it runs these small products 10-40% faster than
-# torch.bmm, except where the second operand is a transposed view, which is the hidden
-# layers' forward (torch.baddbmm there).
+# memory: measured faster than torch.bmm for these small products (bench/RESULTS.md),
+# except where the second operand is a transposed view, which is the hidden layers'
+# forward (torch.baddbmm there).
 
 
 def _T(a: np.ndarray) -> np.ndarray:
