@@ -637,3 +637,35 @@ def test_reading_results_runs_none_of_the_networks_code(tmp_path):
         assert proc.stdout.split()[-2:] == ["0", "False"], proc.stderr
         assert "4 done" in proc.stdout or "2/2" in proc.stdout
     assert not marker.exists()
+
+
+def test_a_user_network_leaves_as_a_bundle_that_runs_its_code_only_when_asked(tmp_path):
+    """export writes network.py beside the weights; predict refuses to run it unless told
+    to, then reproduces the stored accuracies (counted by sklearn.metrics from the file);
+    a changed network.py is refused."""
+    from sklearn.metrics import accuracy_score
+
+    _copy_networks(tmp_path)
+    path = write_recipe(tmp_path, ARGS_STUDY.format(args="widths = [4, 8, 3]"))
+    store = tmp_path / "s.sqlite"
+    assert invoke("run", path, "--store", store, "--workers", 1, "-q").exit_code == 0
+    out = tmp_path / "bundle"
+    assert invoke("export", path, "--store", store, "--out", out).exit_code == 0
+    assert (out / "network.py").read_text() == (tmp_path / "nets.py").read_text()
+    preds = tmp_path / "p.csv"
+    refused = invoke("predict", out, "iris", "--out", preds)
+    assert refused.exit_code == 2 and "--run-code" in refused.stderr and not preds.exists()
+    ran = invoke("predict", out, "iris", "--out", preds, "--run-code")
+    assert ran.exit_code == 0, ran.stderr
+    desc = json.loads((out / "model.json").read_text())
+    import csv
+
+    with open(preds, newline="") as f:
+        rows = list(csv.DictReader(f))
+    for split in ("val", "test"):
+        part = [r for r in rows if r["split"] == split]
+        got = accuracy_score([r["target"] for r in part], [r["predicted"] for r in part])
+        assert got == desc["metrics"][split]["accuracy"]
+    (out / "network.py").write_text((out / "network.py").read_text() + "\n# edited\n")
+    damaged = invoke("predict", out, "iris", "--out", preds, "--run-code")
+    assert damaged.exit_code == 2 and "does not match the description" in damaged.stderr

@@ -62,13 +62,14 @@ def export(recipe_path, store, config, rank, seed, refit, onnx, out):
 @click.argument("bundle", type=click.Path(file_okay=False))
 @click.argument("data")
 @click.option("--out", required=True, type=click.Path(dir_okay=False), help="Predictions CSV to write.")
-def predict(bundle, data, out):
+@click.option("--run-code", is_flag=True, help="Load a bundle whose network is Python code (its network.py runs).")
+def predict(bundle, data, out, run_code):
     """Apply BUNDLE to DATA (a CSV or NPZ file, or a bundled data set): one row out per row in."""
     try:
         from runner.outputs.predict import load_bundle
         from runner.outputs.predictions import predict_file
 
-        predictor = load_bundle(bundle)
+        predictor = load_bundle(bundle, run_code=run_code)
         scored = predict_file(predictor, data, Path(out))
     except UserError as err:
         fail(err)

@@ -48,6 +48,7 @@ FORMAT_VERSION = 1
 WEIGHTS = "weights.safetensors"
 DESCRIPTION = "model.json"
 CARD = "card.md"
+CODE = "network.py"  # a user's own network (model.kind = "python"): its source, as trained
 
 
 class BundleError(UserError):
@@ -83,20 +84,30 @@ class Bundle:
     source: dict[str, Any]  # recipe, job, seed, data fingerprint, how the weights were obtained
     metrics: dict[str, dict[str, float | None]]  # split -> metric -> value of this network
     path: Path | None = field(default=None, compare=False)
+    code: str | None = None  # model.kind = "python": the network file's text (runs when loaded)
 
     def description(self) -> dict[str, Any]:
         return {
             "format": FORMAT,
             "version": FORMAT_VERSION,
             "network": {
-                "model": _plain(self.model),
+                "model": {**_plain(self.model), "args": {k: _listed(v) for k, v in self.model.args}},
                 "input_shape": list(self.inputs.input_shape),
                 "outputs": self.n_out,
+                **({"code": {"file": CODE, "sha256": _sha(self.code)}} if self.code is not None else {}),
             },
             "preprocessing": _plain(self.inputs),
             "source": self.source,
             "metrics": self.metrics,
         }
+
+
+def _sha(text: str) -> str:
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def _listed(value: Any) -> Any:
+    return [_listed(v) for v in value] if isinstance(value, tuple) else value
 
 
 def _plain(obj: Any) -> dict[str, Any]:
@@ -114,7 +125,10 @@ def write_bundle(out: Path, bundle: Bundle, weights: dict[str, np.ndarray], card
     blob = encode(weights)
     desc = bundle.description()
     desc["weights_sha256"] = hashlib.sha256(blob).hexdigest()
-    for name, data in ((CARD, card.encode()), (WEIGHTS, blob), (DESCRIPTION, _json(desc))):
+    files = [(CARD, card.encode()), (WEIGHTS, blob), (DESCRIPTION, _json(desc))]
+    if bundle.code is not None:
+        files.insert(0, (CODE, bundle.code.encode()))
+    for name, data in files:
         tmp = out / f".{name}.tmp"
         tmp.write_bytes(data)
         tmp.replace(out / name)
@@ -175,6 +189,7 @@ def read_bundle(path: str | Path) -> tuple[Bundle, dict[str, np.ndarray]]:
     except UserError as err:
         raise BundleError(err.problem, where=where, key=err.key, value=err.value, allowed=err.allowed) from None
     settings = ModelSettings(**{k: tuple(v) if isinstance(v, list) else v for k, v in model.items()})
+    code = _code(root, network, settings, where)
     inputs = _inputs(_need(doc, "preprocessing", dict, where), where)
     bundle = Bundle(
         model=settings,
@@ -183,12 +198,33 @@ def read_bundle(path: str | Path) -> tuple[Bundle, dict[str, np.ndarray]]:
         source=_need(doc, "source", dict, where),
         metrics=_need(doc, "metrics", dict, where),
         path=root,
+        code=code,
     )
     try:
         weights = decode(blob)
     except Exception as exc:  # safetensors raises its own error kinds for a bad header
         raise BundleError(f"cannot read the weights ({exc})", where=str(root / WEIGHTS)) from None
     return bundle, weights
+
+
+def _code(root: Path, network: dict[str, Any], settings: ModelSettings, where: str) -> str | None:
+    """A user network's source beside the description, checked against its hash (not run)."""
+    if settings.kind != "python":
+        return None
+    entry = network.get("code")
+    if not isinstance(entry, dict) or entry.get("file") != CODE:
+        raise BundleError(f"a python network needs its source ({CODE}) named under code", where=where, key="network")
+    try:
+        text = (root / CODE).read_bytes().decode("utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise BundleError(f"cannot read the network's source ({exc})", where=str(root / CODE)) from None
+    if _sha(text) != entry.get("sha256"):
+        raise BundleError(
+            "the network's source does not match the description (changed or damaged)",
+            where=str(root / CODE),
+            hint="Export the bundle again with 'recipe export'",
+        )
+    return text
 
 
 def _inputs(raw: dict[str, Any], where: str) -> Inputs:

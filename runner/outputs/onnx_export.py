@@ -28,7 +28,7 @@ def _wrapped(bundle: Bundle, weights: dict[str, np.ndarray]):
     from runner.outputs.predict import load_module
 
     inputs = bundle.inputs
-    net = load_module(bundle, weights)
+    net = load_module(bundle, weights, run_code=True)  # exported from the study that ran it
 
     class Raw(torch.nn.Module):
         """Scaling, the network, then probabilities or target units."""

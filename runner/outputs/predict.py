@@ -27,15 +27,30 @@ from runner.outputs.bundle import Bundle, BundleError, read_bundle
 __all__ = ["Predictor", "load_bundle", "load_module"]
 
 
-def load_module(bundle: Bundle, weights: dict[str, np.ndarray]):
+def load_module(bundle: Bundle, weights: dict[str, np.ndarray], run_code: bool = False):
     """The bundle's network as an nn.Module in eval mode, with its weights loaded (strict:
-    every tensor named and shaped as the network has it)."""
+    every tensor named and shaped as the network has it). A user's own network is rebuilt
+    from the bundle's network.py, which runs that code: only with ``run_code``."""
     import torch
 
     from runner.training.models import build_model
 
-    g = torch.Generator()  # initial draws are overwritten by the weights; dropout is off in eval mode
-    net = build_model(bundle.model, bundle.inputs.input_shape, bundle.n_out, g, g)
+    if bundle.code is not None:
+        if not run_code:
+            raise BundleError(
+                "this bundle's network is Python code (network.py, from the study's own network file); "
+                "loading it runs that code",
+                where=str(bundle.path) if bundle.path else None,
+                hint="Read network.py, then pass --run-code to recipe predict (run_code=True to load_bundle)",
+            )
+        from runner.training.user_module import rebuild_network
+
+        m = bundle.model
+        assert m.file is not None and m.class_name is not None
+        net = rebuild_network(m.file, bundle.code, m.class_name, dict(m.args))
+    else:
+        g = torch.Generator()  # initial draws are overwritten by the weights; dropout is off in eval mode
+        net = build_model(bundle.model, bundle.inputs.input_shape, bundle.n_out, g, g)
     try:
         net.load_state_dict({k: torch.from_numpy(np.array(v)) for k, v in weights.items()}, strict=True)
     except RuntimeError as exc:
@@ -107,7 +122,7 @@ class Predictor:
         return self.outputs(X)[:, 0].astype(np.float64) * inputs.target_std + inputs.target_mean
 
 
-def load_bundle(path: str | Path) -> Predictor:
-    """The bundle in directory ``path``, ready to predict."""
+def load_bundle(path: str | Path, run_code: bool = False) -> Predictor:
+    """The bundle in directory ``path``, ready to predict (``run_code``: see load_module)."""
     bundle, weights = read_bundle(path)
-    return Predictor(bundle, load_module(bundle, weights))
+    return Predictor(bundle, load_module(bundle, weights, run_code))

@@ -178,7 +178,9 @@ def export_bundle(
         source |= {"trained_on": ["train"], "epochs": stored.best_epoch}
     source |= {"weights": how, "stacked_group": list(group), "reproduced": reproduced}
     source["environment"] = {k: v for k, v in source["environment"].items() if k != "pid"}
-    bundle = Bundle(job.config.settings.model, len(ds.classes) or 1, inputs, source, metrics)
+    module = job.config.module
+    bundle = Bundle(job.config.settings.model, len(ds.classes) or 1, inputs, source, metrics,
+                    code=module.source if module is not None else None)  # fmt: skip
     rows_count = {k: len(v) for k, v in rows.items()}
     write_bundle(out, bundle, weights, model_card(bundle, row, doc, rows_count))
     onnx_path = None
