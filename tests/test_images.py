@@ -228,3 +228,30 @@ def test_recipe_new_for_an_image_folder_writes_a_cnn_that_checks(tmp_path):
     assert result.exit_code == 0, result.output
     assert 'kind = "cnn"' in out.read_text()
     assert invoke("check", out, "--no-probe").exit_code == 0
+
+
+def test_a_folder_trained_bundle_predicts_the_folder(tmp_path):
+    """Image folder -> board -> bundle -> predictions on the folder: the rows are marked with
+    their splits and the test rows give the stored test accuracy exactly (counted by
+    sklearn.metrics from the predictions file)."""
+    import csv
+
+    from sklearn.metrics import accuracy_score
+
+    digits_folder(tmp_path / "png")
+    recipe = cnn_recipe(tmp_path, "folder", "png")
+    text = recipe.read_text().replace("seeds = [1, 2, 3]", "seeds = [1]").replace("epochs = 8", "epochs = 2")
+    recipe.write_text(text)
+    store = tmp_path / "s.sqlite"
+    assert invoke("run", recipe, "--store", store, "--workers", "1", "-q").exit_code == 0
+    out = tmp_path / "bundle"
+    assert invoke("export", recipe, "--store", store, "--out", out).exit_code == 0
+    preds = tmp_path / "p.csv"
+    result = invoke("predict", out, tmp_path / "png", "--out", preds)
+    assert result.exit_code == 0, result.stderr
+    with open(preds, newline="") as f:
+        rows = list(csv.DictReader(f))
+    assert len(rows) == 1797 and {r["split"] for r in rows} == {"train", "val", "test"}
+    test = [r for r in rows if r["split"] == "test"]
+    stored = json.loads((out / "model.json").read_text())["metrics"]["test"]["accuracy"]
+    assert accuracy_score([r["target"] for r in test], [r["predicted"] for r in test]) == stored

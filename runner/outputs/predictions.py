@@ -123,7 +123,7 @@ def _targets(cells: list, predictor: Predictor) -> np.ndarray:
 
 
 def read_rows(data: str, predictor: Predictor) -> Rows:
-    """The rows of ``data`` (a CSV or NPZ path, or a bundled data set's name)."""
+    """The rows of ``data`` (a CSV or NPZ path, an image folder, or a bundled data set's name)."""
     from runner.recipe.settings import BUNDLED
 
     path = Path(data)
@@ -132,10 +132,11 @@ def read_rows(data: str, predictor: Predictor) -> Rows:
         if ds is None:
             raise DataError("this bundle was not trained on that data set", value=data, allowed="a CSV or NPZ file")
         return Rows(ds.X, ds.y, ds.fingerprint, data)
-    try:
-        raw = path.read_bytes()
-    except OSError as exc:
-        raise DataError(f"cannot read data file ({exc.strerror})", where=data) from None
+    if path.is_dir():
+        return _image_folder(path, data, predictor)
+    from runner.datasets.files import MAX_DATA_BYTES, read_limited
+
+    raw = read_limited(path, MAX_DATA_BYTES, key=None, shown=data)
     if path.suffix.lower() != ".npz":
         return _csv(raw, data, predictor)
     try:
@@ -149,6 +150,19 @@ def read_rows(data: str, predictor: Predictor) -> Rows:
     return Rows(
         X.astype(np.float32), None if y is None else _targets(list(y), predictor), hashlib.sha256(raw).hexdigest(), data
     )
+
+
+def _image_folder(path: Path, label: str, predictor: Predictor) -> Rows:
+    """An image folder laid out as for training (one subfolder per class), read at the
+    training's size and colour; labels matched to the bundle's classes by name."""
+    from runner.datasets.images import read_image_folder
+    from runner.recipe.settings import Settings
+
+    data = Settings.from_dict(predictor.bundle.source["settings"]).data
+    X, y, classes, fp = read_image_folder(path, label, data.image_size, data.color)
+    known = {c: i for i, c in enumerate(predictor.bundle.inputs.classes)}
+    labels = np.array([known.get(c, -1) for c in classes], dtype=np.int64)
+    return Rows(X, labels[y], fp, label)
 
 
 def _training_dataset(data: str, predictor: Predictor):
