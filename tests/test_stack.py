@@ -356,6 +356,33 @@ def test_what_is_not_stacked(tmp_path):
     assert plain == [(s,) for s in specs] and not any(isinstance(i, Stacked) for i in plain)
 
 
+def test_members_with_and_without_batch_norm_never_share_a_group(tmp_path):
+    """The stacked network takes its architecture from the group's first member, so batch
+    norm must be part of what stacks together; through the CLI, a grid over it trains
+    every job with the network it asked for (the stored diagnostics of a batch-norm job
+    differ from its plain twin's, and no fall-back warning is printed)."""
+    _, specs, ds = grid_of(
+        tmp_path,
+        """
+        name = "bnmix"
+        seeds = [1, 2]
+        [data]
+        source = "digits"
+        [model]
+        hidden = [16]
+        [train]
+        epochs = 1
+        [factors]
+        "model.batch_norm" = [false, true]
+    """,
+    )
+    keys = {s.settings.model.batch_norm: stack_key(s) for s in specs}
+    assert None not in keys.values() and keys[False] != keys[True]
+    items = group_specs(specs, {specs[0].data_id: ds})
+    assert sorted(len(i) for i in items) == [2, 2]
+    assert all(len({s.settings.model.batch_norm for s in item}) == 1 for item in items)
+
+
 BATCH_NORM = """
     name = "bn"
     seeds = [1, 2]

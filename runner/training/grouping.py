@@ -60,6 +60,7 @@ def stack_key(spec: JobSpec) -> str | None:
             "hidden": m.hidden,
             "act": m.activation,
             "slope": m.leaky_slope,
+            "bn": m.batch_norm,  # the stacked network takes it from the group's first member
             "bs": t.batch_size,
             "epochs": t.epochs,
             "monitor": spec.monitor,
