@@ -17,7 +17,8 @@ from runner.files import write_output
 @click.option("--workers", type=click.IntRange(1), default=None, help="Workers to estimate for (default: cores).")
 @click.option("--no-probe", is_flag=True, help="Skip the timed probes (no run-time estimate).")
 @click.option("--no-stack", is_flag=True, help="Estimate for `recipe run --no-stack`: every job on its own.")
-def check(recipe_path, store, workers, no_probe, no_stack):
+@click.option("--lr-probe", is_flag=True, help="Run a learning-rate range test for each optimizer the grid uses.")
+def check(recipe_path, store, workers, no_probe, no_stack, lr_probe):
     """Validate RECIPE and print its plan: factors, jobs, what is stored, a time estimate."""
     try:
         recipe, grid = load_grid(recipe_path)
@@ -38,12 +39,54 @@ def check(recipe_path, store, workers, no_probe, no_stack):
         else:
             text, _ = plan_report(grid, None, workers, probe=not no_probe, stack=not no_stack)
             text += _advice(grid, None)
+        if lr_probe:
+            text += _lr_probes(grid, path)
     except UserError as err:
         fail(err)
     click.echo(f"{recipe_path}: valid.")
     for line in networks:
         click.echo(line)
     click.echo(text, nl=False)
+
+
+def _lr_probes(grid, path) -> str:
+    """A range test per optimizer of the grid (its first configuration with it, first seed),
+    the levels it suggests, and a warning for the recipe's own levels outside them; kept in
+    the store when there is one."""
+    from runner.execution.executors import prepare_process
+    from runner.training.lr_probe import probe
+
+    prepare_process(1, grid.datasets)
+    first: dict = {}
+    for job in grid:
+        first.setdefault(job.config.settings.train.optimizer, job)
+    lines = []
+    for optimizer, job in first.items():
+        found = probe(job.spec(), grid.datasets[job.config.data_id])
+        used = sorted({c.settings.train.lr for c in grid.configs if c.settings.train.optimizer == optimizer})
+        lines.append(_probe_line(optimizer, found, used))
+        if path.exists():
+            from runner.store.database import Store
+
+            with Store(path) as db:  # kept beside the results (a write: no read-only opening)
+                db.record_lr_probe(f"{job.key}:lr-probe-1", optimizer, found.to_json())
+    return "".join(line + "\n" for line in lines)
+
+
+def _probe_line(optimizer: str, found, used: list[float]) -> str:
+    where = (f"falls fastest near {found.steepest:.2g}" if found.steepest is not None
+             else "never falls clearly")  # fmt: skip
+    blow = f", blows up near {found.blowup:.2g}" if found.blowup is not None else ", never blows up below 10"
+    line = f"lr probe, {optimizer}: the training loss {where}{blow}"
+    if found.levels:
+        line += "; levels worth trying: " + ", ".join(f"{v:g}" for v in found.levels)
+    high = [v for v in used if found.blowup is not None and v >= found.blowup / 3]
+    low = [v for v in used if found.steepest is not None and v < found.steepest / 100]
+    if high:
+        line += f". Warning: the recipe's {', '.join(f'{v:g}' for v in high)} is near or past the blow-up"
+    if low:
+        line += f". Warning: the recipe's {', '.join(f'{v:g}' for v in low)} is far below where the loss falls fastest"
+    return line + " (one seeded run; a rule of thumb, not a verdict)."
 
 
 def _advice(grid, db) -> str:

@@ -98,7 +98,7 @@ def probe(spec: JobSpec, ds: Dataset, steps: int = STEPS, lr_min: float = LR_MIN
         at += batch
         out = net(X[rows])
         loss = F.cross_entropy(out, y[rows]) if classify else F.mse_loss(out.squeeze(1), y[rows])
-        value = float(loss)
+        value = float(loss.detach())
         rates.append(lr)
         raw.append(value)
         if not math.isfinite(value) or _blown(raw):
@@ -129,11 +129,17 @@ def summarize(optimizer: str, rates: list[float], raw: list[float]) -> Probe:
     kept = finite[:-1] if blown else finite
     smooth = _smooth(kept) if kept else []
     steepest = None
-    if len(smooth) >= 3:
-        lowest = int(np.argmin(smooth))
-        slopes = np.diff(smooth[: lowest + 1]) / np.diff(np.log(rates[: lowest + 1])) if lowest >= 1 else np.array([])
-        if len(slopes) and slopes.min() < 0:
-            steepest = float(rates[int(np.argmin(slopes)) + 1])
+    lowest = int(np.argmin(smooth)) if smooth else 0
+    logs = np.log(rates[: lowest + 1])
+    if lowest >= 2:
+        # the fall over a window of half a decade of rate (mini-batch noise averages out over
+        # it), the window's middle rate where it is steepest
+        span = max(1, int(np.searchsorted(logs, logs[0] + 0.5 * np.log(10))))
+        ends = range(span, lowest + 1)
+        slopes = [(smooth[i] - smooth[i - span]) / (logs[i] - logs[i - span]) for i in ends]
+        if slopes and min(slopes) < 0:
+            i = ends[int(np.argmin(slopes))]
+            steepest = float(np.exp((logs[i] + logs[i - span]) / 2))
     blowup = float(rates[len(finite) - 1]) if blown else None
     return Probe(optimizer, rates[: len(smooth)], smooth, steepest, blowup, suggest(steepest, blowup))
 
