@@ -2,8 +2,8 @@
 against it: full-batch gradient descent on least squares multiplies the error along the
 Hessian's top eigenvector by |1 - lr * L| each step (L its largest eigenvalue, computed here
 in closed form), so the loss cannot blow up below lr = 2/L, and a slower sweep finds the
-blow-up closer to 2/L. Through the CLI, `recipe check --lr-probe` says what to try and
-warns of a recipe level past the blow-up."""
+blow-up closer to 2/L. Through the CLI, `recipe check --lr-probe` says what to try, warns
+of a recipe level past the blow-up, and keeps the probe for the report's figure."""
 
 import json
 import sqlite3
@@ -72,3 +72,6 @@ def test_check_suggests_levels_and_warns_of_a_rate_past_the_blow_up(tmp_path):
     with sqlite3.connect(store) as c:
         (kept,) = c.execute("SELECT result FROM lr_probes").fetchone()
     assert json.loads(kept)["blowup"] is not None
+    report = tmp_path / "report.html"
+    assert invoke("report", path, "--store", store, "--out", report).exit_code == 0
+    assert 'id="fig-lr-probe"' in report.read_text()  # the stored probe is drawn

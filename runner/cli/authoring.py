@@ -54,14 +54,11 @@ def _lr_probes(grid, path) -> str:
     the levels it suggests, and a warning for the recipe's own levels outside them; kept in
     the store when there is one."""
     from runner.execution.executors import prepare_process
-    from runner.training.lr_probe import probe
+    from runner.training.lr_probe import probe, probed_jobs
 
     prepare_process(1, grid.datasets)
-    first: dict = {}
-    for job in grid:
-        first.setdefault(job.config.settings.train.optimizer, job)
     lines = []
-    for optimizer, job in first.items():
+    for optimizer, (ident, job) in probed_jobs(grid).items():
         found = probe(job.spec(), grid.datasets[job.config.data_id])
         used = sorted({c.settings.train.lr for c in grid.configs if c.settings.train.optimizer == optimizer})
         lines.append(_probe_line(optimizer, found, used))
@@ -69,7 +66,7 @@ def _lr_probes(grid, path) -> str:
             from runner.store.database import Store
 
             with Store(path) as db:  # kept beside the results (a write: no read-only opening)
-                db.record_lr_probe(f"{job.key}:lr-probe-1", optimizer, found.to_json())
+                db.record_lr_probe(ident, optimizer, found.to_json())
     return "".join(line + "\n" for line in lines)
 
 

@@ -163,3 +163,24 @@ def fractions_figure(doc: Leaderboard, key: str, title: str, plt):
     ax.set_xlabel(title, color=INK)
     _axes_look(ax)
     return fig
+
+
+def lr_probe_figure(probes: list[dict], plt):
+    """Each optimizer's range test: smoothed training loss against the rate (log scale), a
+    circle where it falls fastest and a cross where it blew up."""
+    if not probes:
+        return None
+    fig, ax = plt.subplots(figsize=(8.5, 3.6))
+    for i, p in enumerate(probes):
+        look = style(i)
+        ax.plot(p["rates"], p["losses"], label=p["optimizer"], linewidth=1.5, color=look.get("color"))
+        for rate, marker in ((p.get("steepest"), "o"), (p.get("blowup"), "x")):
+            if rate is not None and p["rates"]:
+                at = int(np.argmin(np.abs(np.log(np.asarray(p["rates"])) - np.log(rate))))
+                ax.plot([rate], [p["losses"][at]], marker=marker, color=look.get("color"), markersize=7)
+    ax.set_xscale("log")
+    ax.set_xlabel("learning rate", color=INK)
+    ax.set_ylabel("training loss (smoothed)", color=INK)
+    _axes_look(ax)
+    ax.legend(fontsize=7, frameon=False, loc="upper left", bbox_to_anchor=(1.01, 1.0))
+    return fig

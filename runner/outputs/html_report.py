@@ -227,8 +227,21 @@ def _figures(grid: Grid, store: Store, doc: Leaderboard, plt) -> list[str]:
             figures.fractions_figure(doc, "dead_fraction", "fraction of dead ReLU units", plt),
             "ReLU units never active on a probe batch at the end of training, on the full 0-1 scale.",
         ),
+        (
+            "lr-probe",
+            figures.lr_probe_figure(_lr_probes(grid, store), plt),
+            "Learning-rate range test of each optimizer (recipe check --lr-probe): smoothed training loss as the "
+            "rate grows every mini-batch; circle: where it falls fastest, cross: where it blew up.",
+        ),
     ]
     return [_figure(fig, caption, name, plt) for name, fig, caption in made if fig is not None]
+
+
+def _lr_probes(grid: Grid, store: Store) -> list[dict]:
+    from runner.training.lr_probe import probed_jobs
+
+    ids = {ident: optimizer for optimizer, (ident, _) in probed_jobs(grid).items()}
+    return list(store.lr_probes(ids).values())
 
 
 def build_report(grid: Grid, store: Store) -> str:

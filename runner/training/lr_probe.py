@@ -28,7 +28,7 @@ import numpy as np
 from runner.datasets.sources import Dataset
 from runner.training.job import JobSpec
 
-__all__ = ["LR_MAX", "LR_MIN", "Probe", "probe", "suggest"]
+__all__ = ["LR_MAX", "LR_MIN", "Probe", "probe", "probed_jobs", "suggest"]
 
 LR_MIN, LR_MAX = 1e-6, 10.0
 STEPS = 200
@@ -55,6 +55,17 @@ class Probe:
             "blowup": self.blowup,
             "levels": self.levels,
         }
+
+
+def probed_jobs(grid) -> dict[str, tuple[str, Any]]:
+    """Optimizer -> (the probe's identity in the store, the job it runs as): the grid's first
+    job with each optimizer."""
+    out: dict[str, tuple[str, Any]] = {}
+    for job in grid:
+        optimizer = job.config.settings.train.optimizer
+        if optimizer not in out:
+            out[optimizer] = (f"{job.key}:lr-probe-1", job)
+    return out
 
 
 def probe(spec: JobSpec, ds: Dataset, steps: int = STEPS, lr_min: float = LR_MIN, lr_max: float = LR_MAX) -> Probe:
