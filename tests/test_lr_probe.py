@@ -75,3 +75,22 @@ def test_check_suggests_levels_and_warns_of_a_rate_past_the_blow_up(tmp_path):
     report = tmp_path / "report.html"
     assert invoke("report", path, "--store", store, "--out", report).exit_code == 0
     assert 'id="fig-lr-probe"' in report.read_text()  # the stored probe is drawn
+
+
+def test_new_writes_the_probes_rates_into_a_starter(tmp_path):
+    from conftest import ROOT
+
+    from runner.training.lr_probe import probed_jobs
+
+    out = tmp_path / "kiln.toml"
+    result = invoke("new", ROOT / "data" / "kiln_batches.csv", "--out", out, "--lr-probe")
+    assert result.exit_code == 0, result.stderr
+    assert "range test" in out.read_text() and invoke("check", out, "--no-probe").exit_code == 0
+    grid = expand(load_recipe(out))
+    written: dict = {}
+    for config in grid.configs:
+        t = config.settings.train
+        written.setdefault(t.optimizer, set()).add(t.lr)
+    for optimizer, (_, job) in probed_jobs(grid).items():  # the probe ignores the job's own rate
+        levels = probe(job.spec(), grid.datasets[job.config.data_id]).levels
+        assert written[optimizer] == set(levels[:2]), (optimizer, written[optimizer], levels)

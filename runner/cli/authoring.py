@@ -49,6 +49,19 @@ def check(recipe_path, store, workers, no_probe, no_stack, lr_probe):
     click.echo(text, nl=False)
 
 
+def _suggested_rates(grid) -> dict[str, list[float]]:
+    """Per optimizer: the range test's steepest rate and the suggestion below it."""
+    from runner.execution.executors import prepare_process
+    from runner.training.lr_probe import probe, probed_jobs
+
+    prepare_process(1, grid.datasets)
+    out = {}
+    for optimizer, (_, job) in probed_jobs(grid).items():
+        levels = probe(job.spec(), grid.datasets[job.config.data_id]).levels
+        out[optimizer] = levels[:2][::-1] if len(levels) >= 2 else levels
+    return out
+
+
 def _lr_probes(grid, path) -> str:
     """A range test per optimizer of the grid (its first configuration with it, first seed),
     the levels it suggests, and a warning for the recipe's own levels outside them; kept in
@@ -122,18 +135,22 @@ def schema():
 )
 @click.option("--target", default=None, help="The target column (default: guessed from the data).")
 @click.option("--force", is_flag=True, help="Overwrite an existing file.")
-def new(source, out, target, force):
+@click.option("--lr-probe", is_flag=True, help="Choose each optimizer's learning rates by a range test on the data.")
+def new(source, out, target, force, lr_probe):
     """Write a commented starter recipe for SOURCE: a CSV or NPZ file, or a bundled data set."""
     from runner.recipe.grid import expand
     from runner.recipe.loader import parse_recipe
-    from runner.recipe.starter import starter_recipe
+    from runner.recipe.starter import starter_recipe, with_rates
 
     target_path = Path(out) if out else Path(f"{Path(source).stem}.toml")
     try:
         if target_path.exists() and not force:
             raise UserError("file exists", where=str(target_path), hint="Choose another --out or pass --force")
         text = starter_recipe(source, target_path, target)
-        expand(parse_recipe(text, target_path.resolve()))  # never write a starter that does not validate
+        grid = expand(parse_recipe(text, target_path.resolve()))  # never write a starter that does not validate
+        if lr_probe:
+            text = with_rates(text, _suggested_rates(grid))
+            expand(parse_recipe(text, target_path.resolve()))
         write_output(target_path, text)
     except UserError as err:
         fail(err)

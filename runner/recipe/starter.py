@@ -10,7 +10,7 @@ from runner.datasets.sources import MAX_CLASSES_AUTO, column_cells, is_image_sou
 from runner.errors import DataError
 from runner.recipe.settings import BUNDLED
 
-__all__ = ["starter_recipe", "target_candidates"]
+__all__ = ["starter_recipe", "target_candidates", "with_rates"]
 
 SAMPLE_BYTES = 16 << 20  # what `recipe new` reads of a data file to guess its target
 _LIKELY = ("target", "label", "class", "y", "outcome", "species", "result")
@@ -128,3 +128,25 @@ def starter_recipe(source: str, out: Path, target: str | None = None) -> str:
         "",
     ]
     return "\n".join(lines + data + model + train + factors)
+
+
+def with_rates(text: str, rates: dict[str, list[float]]) -> str:
+    """The starter's optimizer factor rewritten with these rates per optimizer (a range
+    test's suggestions: `recipe new --lr-probe`), in the order the starter lists them."""
+    optimizers = [o for o in ("sgd", "momentum", "adam") if rates.get(o)]
+    if not optimizers:
+        return text
+    pairs = [(o, r) for o in optimizers for r in rates[o][:2]]
+    block = "\n".join(
+        [
+            "# Learning rates from a range test of each optimizer (recipe check --lr-probe): where",
+            "# its training loss fell fastest, and a step below. A rule of thumb: check the board.",
+            "[factors.optimizer]",
+            "labels           = [" + ", ".join(f'"{o} {r:g}"' for o, r in pairs) + "]",
+            '"train.optimizer" = [' + ", ".join(f'"{o}"' for o, _ in pairs) + "]",
+            '"train.lr"        = [' + ", ".join(f"{r:g}" for _, r in pairs) + "]",
+        ]
+    )
+    start = text.index("# Every combination of levels is one configuration.")
+    end = text.index("[factors]\n", text.index("[factors.optimizer]"))
+    return text[:start] + "# Every combination of levels is one configuration.\n" + block + "\n\n" + text[end:]
