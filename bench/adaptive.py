@@ -215,7 +215,7 @@ def main(argv=None):
             line += "; above the goal: " + ", ".join(f"{s} {r:.3f}" for s, r, _ in above)
         print(line)
     missed += _mixed(args, reps)
-    print(f"\n{missed} rate(s) above their goal; {time.perf_counter() - start:.0f} s with {args.workers} workers")
+    print(f"\n{missed} goal(s) missed; {time.perf_counter() - start:.0f} s with {args.workers} workers")
     return 1 if missed else 0
 
 
