@@ -91,7 +91,8 @@ class Bundle:
             "format": FORMAT,
             "version": FORMAT_VERSION,
             "network": {
-                "model": {**_plain(self.model), "args": {k: _listed(v) for k, v in self.model.args}},
+                # unset settings (a user network's file and class, for the tool's own) are left out
+                "model": {k: v for k, v in self.model.to_dict().items() if v is not None},
                 "input_shape": list(self.inputs.input_shape),
                 "outputs": self.n_out,
                 **({"code": {"file": CODE, "sha256": _sha(self.code)}} if self.code is not None else {}),
@@ -104,10 +105,6 @@ class Bundle:
 
 def _sha(text: str) -> str:
     return hashlib.sha256(text.encode()).hexdigest()
-
-
-def _listed(value: Any) -> Any:
-    return [_listed(v) for v in value] if isinstance(value, tuple) else value
 
 
 def _plain(obj: Any) -> dict[str, Any]:
@@ -181,11 +178,7 @@ def read_bundle(path: str | Path) -> tuple[Bundle, dict[str, np.ndarray]]:
         )
     network = _need(doc, "network", dict, where)
     try:
-        given = _need(network, "model", dict, where)
-        # settings left unset are written as null or [] (model.file, model.args of the tool's own networks)
-        unset = {k for k, v in given.items() if k in MODEL and MODEL[k].default in (None, ()) and v in (None, [])}
-        given = {k: v for k, v in given.items() if k not in unset}
-        model = validate_table(given, MODEL, "network.model")
+        model = validate_table(_need(network, "model", dict, where), MODEL, "network.model")
     except UserError as err:
         raise BundleError(err.problem, where=where, key=err.key, value=err.value, allowed=err.allowed) from None
     settings = ModelSettings(**{k: tuple(v) if isinstance(v, list) else v for k, v in model.items()})

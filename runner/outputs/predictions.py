@@ -67,8 +67,12 @@ def _csv(raw: bytes, label: str, predictor: Predictor) -> Rows:
             allowed="a header naming every feature: " + ", ".join(inputs.features),
         )
     cols = [header.index(f) for f in inputs.features]
+    for r, row in enumerate(rows[1:]):
+        if len(row) != len(header):
+            line = numbered[r + 1][0]
+            raise DataError(f"row has {len(row)} fields, the header has {len(header)}", where=label, line=line)
     if inputs.encodings is not None:  # text and empty cells: encoded as the training split's were
-        X = _encoded([rows[1:][r] for r in range(len(rows) - 1)], header, cols, inputs, label, numbered)
+        X = _encoded(rows[1:], header, cols, inputs, label)
     else:
         X = _numeric(rows, header, cols, label, numbered)
     y = None
@@ -78,13 +82,9 @@ def _csv(raw: bytes, label: str, predictor: Predictor) -> Rows:
     return Rows(X, y, hashlib.sha256(raw).hexdigest(), label)
 
 
-def _encoded(rows: list[list[str]], header: list[str], cols: list[int], inputs, label: str, numbered) -> np.ndarray:
+def _encoded(rows: list[list[str]], header: list[str], cols: list[int], inputs, label: str) -> np.ndarray:
     from runner.datasets.encoding import Preprocessing
 
-    for r, row in enumerate(rows):
-        if len(row) != len(header):
-            line = numbered[r + 1][0]
-            raise DataError(f"row has {len(row)} fields, the header has {len(header)}", where=label, line=line)
     cells = {header[i]: [row[i] for row in rows] for i in cols}
     try:
         return Preprocessing.from_json(inputs.encodings).encode(cells)
@@ -98,8 +98,6 @@ def _numeric(rows: list[list[str]], header: list[str], cols: list[int], label: s
     X = np.empty((len(rows) - 1, len(cols)), dtype=np.float32)
     for r, row in enumerate(rows[1:]):
         line = numbered[r + 1][0]
-        if len(row) != len(header):
-            raise DataError(f"row has {len(row)} fields, the header has {len(header)}", where=label, line=line)
         for c, i in enumerate(cols):
             try:
                 X[r, c] = float(row[i])

@@ -244,6 +244,13 @@ class ModelSettings:
     kernel_size: int
     pool: str
 
+    def to_dict(self) -> dict[str, Any]:
+        """The plain form; the constructor arguments as a table, {"width": 64}, as the recipe
+        writes them."""
+        out = dataclasses.asdict(self)
+        out["args"] = {name: _plain(value) for name, value in self.args}
+        return out
+
 
 @dataclass(frozen=True, slots=True)
 class TrainSettings:
@@ -307,9 +314,11 @@ class Settings:
     def to_dict(self) -> dict[str, dict[str, Any]]:
         """The plain nested form: what job keys are hashed from and the store keeps. The
         constructor arguments appear as a table, {"width": 64}, as the recipe writes them."""
-        model = dataclasses.asdict(self.model)
-        model["args"] = {name: _plain(value) for name, value in self.model.args}
-        return {"data": dataclasses.asdict(self.data), "model": model, "train": dataclasses.asdict(self.train)}
+        return {
+            "data": dataclasses.asdict(self.data),
+            "model": self.model.to_dict(),
+            "train": dataclasses.asdict(self.train),
+        }
 
     def identity(self) -> dict[str, dict[str, Any]]:
         """``to_dict`` without NOT_IDENTITY, and without ADDED_LATER settings at their

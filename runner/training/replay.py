@@ -97,24 +97,18 @@ def refit_epochs(jobs: list[Job], store: Store) -> int:
 @dataclass(frozen=True)
 class Refit:
     result: JobResult
-    splits: Splits  # train = the seed's train+val rows, scaled on them
-    mean: np.ndarray  # the scaler fitted on train+val
-    scale: np.ndarray
+    splits: Splits  # train = the seed's train+val rows, encoded and scaled on them (its preprocessing)
     epochs: int
 
 
-def _merged(job: Job, grid: Grid) -> tuple[Splits, np.ndarray, np.ndarray]:
+def _merged(job: Job, grid: Grid) -> Splits:
     """The seed's train and val rows as one training split, encoded and scaled on them; val
     kept for the loop's per-epoch curve only (early stopping is off); test as it was."""
     ds = grid.datasets[job.config.data_id]
     data = job.config.settings.data
     rows = splits.split_rows(ds, data, job.seed, job.fold)
     merged = splits.SplitRows(np.concatenate([rows.train, rows.val]), rows.val, rows.test)
-    sp = splits.prepare_rows(ds, data, merged)
-    assert sp.preprocessing is not None
-    mean = np.asarray(sp.preprocessing.offset, np.float32)
-    scale = np.asarray(sp.preprocessing.divisor, np.float32)
-    return sp, mean, scale
+    return splits.prepare_rows(ds, data, merged)
 
 
 @contextlib.contextmanager
@@ -146,9 +140,9 @@ def refit(job: Job, grid: Grid, epochs: int, threads: int = 1) -> Refit:
     ds = grid.datasets[job.config.data_id]
     settings = job.config.settings.with_train(epochs=epochs, patience=0, time_limit=0.0, checkpoint_every=0)
     spec = dataclasses.replace(job.spec(keep_weights=True), settings=settings)
-    sp, mean, scale = _merged(job, grid)
+    sp = _merged(job, grid)
     with _deterministic(threads):
         start = time.perf_counter()
         backend = SingleBackend(spec, ds, splits=sp)
         result = train_members(backend, new_members([spec], environment()), start)[0]
-    return Refit(result=result, splits=sp, mean=mean, scale=scale, epochs=epochs)
+    return Refit(result=result, splits=sp, epochs=epochs)
