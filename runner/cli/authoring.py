@@ -49,37 +49,38 @@ def check(recipe_path, store, workers, no_probe, no_stack, lr_probe):
     click.echo(text, nl=False)
 
 
-def _suggested_rates(grid) -> dict[str, list[float]]:
-    """Per optimizer: the range test's steepest rate and the suggestion below it."""
+def _probe_grid(grid) -> dict:
+    """Optimizer -> (the probe's identity in the store, its range test): one per optimizer
+    of the grid, on its first configuration with it and first seed."""
     from runner.execution.executors import prepare_process
     from runner.training.lr_probe import probe, probed_jobs
 
     prepare_process(1, grid.datasets)
-    out = {}
-    for optimizer, (_, job) in probed_jobs(grid).items():
-        levels = probe(job.spec(), grid.datasets[job.config.data_id]).levels
-        out[optimizer] = levels[:2][::-1] if len(levels) >= 2 else levels
-    return out
+    return {
+        optimizer: (ident, probe(job.spec(), grid.datasets[job.config.data_id]))
+        for optimizer, (ident, job) in probed_jobs(grid).items()
+    }
+
+
+def _suggested_rates(grid) -> dict[str, list[float]]:
+    """Per optimizer: the range test's steepest rate and the suggestion below it."""
+    return {optimizer: found.levels[:2][::-1] for optimizer, (_, found) in _probe_grid(grid).items()}
 
 
 def _lr_probes(grid, path) -> str:
-    """A range test per optimizer of the grid (its first configuration with it, first seed),
-    the levels it suggests, and a warning for the recipe's own levels outside them; kept in
-    the store when there is one."""
-    from runner.execution.executors import prepare_process
-    from runner.training.lr_probe import probe, probed_jobs
+    """A range test per optimizer of the grid, the levels it suggests, and a warning for the
+    recipe's own levels outside them; kept in the store when there is one."""
+    probes = _probe_grid(grid)
+    if path.exists():
+        from runner.store.database import Store
 
-    prepare_process(1, grid.datasets)
+        with Store(path) as db:  # kept beside the results (a write: no read-only opening)
+            for optimizer, (ident, found) in probes.items():
+                db.record_lr_probe(ident, optimizer, found.to_json())
     lines = []
-    for optimizer, (ident, job) in probed_jobs(grid).items():
-        found = probe(job.spec(), grid.datasets[job.config.data_id])
+    for optimizer, (_, found) in probes.items():
         used = sorted({c.settings.train.lr for c in grid.configs if c.settings.train.optimizer == optimizer})
         lines.append(_probe_line(optimizer, found, used))
-        if path.exists():
-            from runner.store.database import Store
-
-            with Store(path) as db:  # kept beside the results (a write: no read-only opening)
-                db.record_lr_probe(ident, optimizer, found.to_json())
     return "".join(line + "\n" for line in lines)
 
 
