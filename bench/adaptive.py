@@ -25,16 +25,28 @@ It prints, per setting:
     goal <= 0.05), how often the race ends with it alone, and the jobs used as a share of the
     full grid's (k x seeds);
   with one-sided 95% Clopper-Pearson upper bounds on the error rates, then one line per goal.
+Then the same race on two real recipes of bundled data (REAL below: digits and breast_cancer,
+8 configurations x 10 seeds each, the default validation protocol): the full grid and the
+adaptive recipe each run through `recipe run` on fresh stores (share of the full grid's jobs
+the race trained; is its winner in the full board's possibly-best set?), then the race
+replayed through advance() on the full grid's stored values over REORDERINGS random orders
+of the seeds list (the seeds are exchangeable, so each order is a race the tool could have
+run), for how often that holds and the spread of the share.
 
-Run: python bench/adaptive.py [--quick] [--seed N]
+Run: python bench/adaptive.py [--quick] [--seed N] [--real-only]
 """
 
 from __future__ import annotations
 
 import argparse
+import dataclasses
+import json
 import math
 import os
+import subprocess
 import sys
+import tempfile
+import textwrap
 import time
 from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
@@ -48,6 +60,7 @@ from runner.evidence.protocols import FIXED, Resampling
 from runner.evidence.race import ONE_LEFT, RacePlan, advance
 from runner.evidence.selection import possibly_best
 
+ROOT = Path(__file__).resolve().parents[1]
 CONFIGS = (4, 8, 16)
 SEED_LISTS = (5, 10)
 FIRST_SEEDS = 3
@@ -154,6 +167,7 @@ def main(argv=None):
     parser.add_argument("--quick", action="store_true", help="200 races per setting and case (about a minute)")
     parser.add_argument("--seed", type=int, default=20240601)
     parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--real-only", action="store_true", help="only the two real recipes")
     args = parser.parse_args(argv)
     reps = 200 if args.quick else 2000
     command = " ".join(["python", "bench/adaptive.py", *(sys.argv[1:] if argv is None else argv)])
@@ -161,6 +175,10 @@ def main(argv=None):
     print(f"# bench/adaptive.py, {time.strftime('%Y-%m-%d %H:%M')}, {cpus} CPUs usable, {args.workers} workers")
     print(f"# command: {command}")
     start = time.perf_counter()
+    if args.real_only:
+        missed = _real(args)
+        print(f"\n{missed} goal(s) missed; {time.perf_counter() - start:.0f} s")
+        return 1 if missed else 0
     settings = [(name, k, n) for name in PROTOCOLS for k in CONFIGS for n in SEED_LISTS]
     tasks = [(*s, a, min(a + CHUNK, reps), args.seed) for s in settings for a in range(0, reps, CHUNK)]
     totals = {s: {case: np.zeros(3, dtype=int) for case in CASES} for s in settings}
@@ -215,6 +233,7 @@ def main(argv=None):
             line += "; above the goal: " + ", ".join(f"{s} {r:.3f}" for s, r, _ in above)
         print(line)
     missed += _mixed(args, reps)
+    missed += _real(args)
     print(f"\n{missed} goal(s) missed; {time.perf_counter() - start:.0f} s with {args.workers} workers")
     return 1 if missed else 0
 
@@ -237,6 +256,129 @@ def _mixed(args, reps) -> int:
         missed += not ok
         verdict = "met" if ok else "NOT met"
         print(f"  {name:<9} k={k:>2}: jobs {share:.2f} of the full grid, same decision {agree:.3f} ({verdict})")
+    return missed
+
+
+# Two real recipes of bundled data, 8 configurations x 10 seeds each (the default validation
+# protocol: each seed redraws the split). The grids are of the kind a user starts from: some
+# levels far from useful, some close.
+REAL = {
+    "digits, optimizer x learning rate": """
+        name = "bench-race-digits"
+        seeds = [1, 2, 3, 4, 5, 6, 7, 8, 9, 10]
+        [data]
+        source = "digits"
+        [model]
+        hidden = [32]
+        [train]
+        epochs = 6
+        batch_size = 64
+        [factors.optimizer]
+        labels = ["sgd 0.01", "sgd 0.1", "momentum 0.01", "momentum 0.1", "adam 0.0001", "adam 0.001",
+                  "adam 0.01", "rmsprop 0.001"]
+        "train.optimizer" = ["sgd", "sgd", "momentum", "momentum", "adam", "adam", "adam", "rmsprop"]
+        "train.lr" = [0.01, 0.1, 0.01, 0.1, 0.0001, 0.001, 0.01, 0.001]
+    """,
+    "breast_cancer, L2 x dropout": """
+        name = "bench-race-cancer"
+        seeds = [1, 2, 3, 4, 5, 6, 7, 8, 9, 10]
+        [data]
+        source = "breast_cancer"
+        [model]
+        hidden = [32, 32]
+        [train]
+        optimizer = "adam"
+        lr = 0.001
+        epochs = 30
+        batch_size = 32
+        [factors]
+        "train.l2" = [0.0, 0.0001, 0.01, 0.1]
+        "model.dropout" = [0.0, 0.5]
+    """,
+}
+REORDERINGS = 200
+
+
+def _recipe_run(recipe: Path, store: Path) -> dict:
+    """`recipe run` then `recipe board --format json` on ``store``, as a user runs them."""
+    env = {**os.environ, "PYTHONPATH": str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", "")}
+    for argv in (["run", str(recipe), "--store", str(store), "-q"], ["board", str(recipe), "--store", str(store),
+                                                                     "--format", "json"]):  # fmt: skip
+        done = subprocess.run([sys.executable, "-m", "runner", *argv], capture_output=True, text=True, env=env)
+        if done.returncode != 0:
+            raise SystemExit(f"recipe {' '.join(argv)} failed: {done.stderr.strip()}")
+    return json.loads(done.stdout)
+
+
+def _winner(doc: dict) -> str:
+    return doc["rows"][0]["config_id"]
+
+
+def _replay(full_recipe: Path, full_store: Path, raced_recipe: Path, accepted: set, rng) -> tuple[list, list]:
+    """The race replayed through advance() on the full grid's stored values, once per random
+    order of the seeds: (shares of the full grid's jobs, winner accepted?) per order."""
+    from runner.evidence.leaderboard import protocol_of
+    from runner.evidence.race_board import _inputs, race_plan
+    from runner.recipe.grid import expand
+    from runner.recipe.loader import load_recipe
+    from runner.store.database import Store
+
+    grid = expand(load_recipe(full_recipe))
+    plan = race_plan(expand(load_recipe(raced_recipe)))
+    with Store(full_store, create=False) as store:
+        protocol = protocol_of(grid, store.jobs({j.key for j in grid}))
+        values, finished = _inputs(grid, store, plan.metric)
+    shares, agree = [], []
+    for _ in range(REORDERINGS):
+        order = dataclasses.replace(plan, seeds=tuple(int(s) for s in rng.permutation(plan.seeds)))
+        seen = {c: {} for c in order.configs}
+        done = {c: set() for c in order.configs}
+        looks, trained = (), 0
+        while not (state := advance(order, seen, done, protocol, looks)).finished:
+            for c, seeds in state.wanted.items():
+                for s in seeds:
+                    done[c].add((s, None))
+                    trained += 1
+                    if (s, None) in values[c]:
+                        seen[c][(s, None)] = values[c][(s, None)]
+            looks = state.looks
+        assert trained == state.jobs_used() and all(finished[c] >= done[c] for c in done)
+        winner = max(state.alive, key=lambda c: np.mean(list(seen[c].values())) * (1 if plan.goal == "max" else -1))
+        shares.append(trained / plan.full_jobs)
+        agree.append(winner in accepted)
+    return shares, agree
+
+
+def _real(args) -> int:
+    """The race on two real recipes (REAL): through the CLI once, then replayed over seed orders."""
+    print(f"\nReal recipes (bundled data; 8 configurations x 10 seeds; first_seeds {FIRST_SEEDS}; default validation):")
+    print("  cli: the adaptive recipe through `recipe run` on a fresh store; replay: the race over")
+    print(f"  {REORDERINGS} random orders of the seeds on the full grid's stored values")
+    rng = np.random.default_rng(args.seed)
+    missed = 0
+    with tempfile.TemporaryDirectory(prefix="bench-adaptive-") as tmp:
+        for title, text in REAL.items():
+            full = Path(tmp) / f"{len(title)}-full.toml"
+            raced = Path(tmp) / f"{len(title)}-raced.toml"
+            body = textwrap.dedent(text)
+            full.write_text(body)
+            raced.write_text(body + f"[adaptive]\nfirst_seeds = {FIRST_SEEDS}\n")
+            full_doc = _recipe_run(full, full.with_suffix(".sqlite"))
+            raced_doc = _recipe_run(raced, raced.with_suffix(".sqlite"))
+            accepted = {r["config_id"] for r in full_doc["rows"] if r["possibly_best"]}
+            labels = {r["config_id"]: ", ".join(str(v) for v in r["labels"].values()) for r in full_doc["rows"]}
+            share = raced_doc["jobs"]["done"] / full_doc["jobs"]["total"]
+            ok = _winner(raced_doc) in accepted
+            print(f"  {title}: full grid's possibly-best set {sorted(labels[c] for c in accepted)}")
+            print(f"    cli:    {raced_doc['jobs']['done']} of {full_doc['jobs']['total']} jobs ({share:.2f}), winner "
+                  f"{labels[_winner(raced_doc)]!r} {'in' if ok else 'NOT in'} that set")  # fmt: skip
+            shares, agree = _replay(full, full.with_suffix(".sqlite"), raced, accepted, rng)
+            q = np.quantile(shares, [0.0, 0.5, 1.0])
+            met = np.mean(shares) <= 0.5 and np.mean(agree) >= 0.95
+            missed += not met
+            print(f"    replay: jobs {np.mean(shares):.2f} of the full grid (min {q[0]:.2f}, median {q[1]:.2f}, "
+                  f"max {q[2]:.2f}), winner in the set in {np.mean(agree):.3f} of orders "
+                  f"({'met' if met else 'NOT met'})")  # fmt: skip
     return missed
 
 
