@@ -329,6 +329,15 @@ def _log_density_edge(df: float, depth: float, side: float) -> float:
     return (lo + hi) / 2.0
 
 
+@lru_cache(maxsize=8)
+def _gauss_legendre(points: int) -> tuple[np.ndarray, np.ndarray]:
+    """Gauss-Legendre nodes and weights on [-1, 1] (numpy's; cached, so made read-only)."""
+    x, w = np.polynomial.legendre.leggauss(points)
+    x.setflags(write=False)
+    w.setflags(write=False)
+    return x, w
+
+
 @lru_cache(maxsize=256)
 def scaled_chi_nodes(df: float, panels: int = 24, per_panel: int = 8) -> tuple[np.ndarray, np.ndarray]:
     """Nodes s and weights w (summing to 1) with sum(w * g(s)) ~ E[g(S)] for S = sqrt(X/df),
@@ -342,7 +351,7 @@ def scaled_chi_nodes(df: float, panels: int = 24, per_panel: int = 8) -> tuple[n
     if not df >= 1:
         raise ValueError(f"degrees of freedom must be >= 1, got {df}")
     lo, hi = math.exp(_log_density_edge(df, 36.0, -1.0)), math.exp(_log_density_edge(df, 36.0, 1.0))
-    x, w = np.polynomial.legendre.leggauss(per_panel)
+    x, w = _gauss_legendre(per_panel)
     # below s = 1/2 (reached for small df) panels are equal in ln s, where the density's
     # power-law left tail and steep integrands such as Phi(c s) are smooth
     split = max(lo, 0.5)

@@ -84,15 +84,37 @@ def _solve_n(power_at, target: float, what: str) -> SeedAdvice:
             f"power {target:.2f} (with redrawn splits the variance has a floor)",
         )
     lo, hi = 2.0, 4.0
-    while power_at(hi) < target:
-        lo, hi = hi, hi * 2.0
-    for _ in range(60):
-        mid = (lo + hi) / 2.0
-        lo, hi = (mid, hi) if power_at(mid) < target else (lo, mid)
-        if hi - lo < 1e-6 * hi:
-            break
-    n = (lo + hi) / 2.0
+    f_lo, f_hi = power_at(lo) - target, power_at(hi) - target
+    while f_hi < 0:
+        lo, f_lo, hi = hi, f_hi, hi * 2.0
+        f_hi = power_at(hi) - target
+    n = _root_in(lambda x: power_at(x) - target, lo, hi, f_lo, f_hi)
     return SeedAdvice(n, math.ceil(n - 1e-9), True, f"{what} power {target:.2f} at {n:.2f} seeds")
+
+
+def _root_in(f, lo: float, hi: float, f_lo: float, f_hi: float) -> float:
+    """The root of a rising f in [lo, hi] (f_lo < 0 <= f_hi) to 1e-8 relative: the Illinois
+    variant of false position (Dowell & Jarratt 1971), which keeps a bracket like bisection
+    but needs about a third of its evaluations here (each one a quadrature)."""
+    side = 0
+    for _ in range(100):
+        x = hi - f_hi * (hi - lo) / (f_hi - f_lo)
+        if not lo < x < hi:
+            x = (lo + hi) / 2.0
+        fx = f(x)
+        if fx < 0:
+            lo, f_lo = x, fx
+            if side == -1:
+                f_hi /= 2.0
+            side = -1
+        else:
+            hi, f_hi = x, fx
+            if side == 1:
+                f_lo /= 2.0
+            side = 1
+        if hi - lo < 1e-8 * hi or fx == 0:
+            break
+    return x
 
 
 def seeds_to_detect(

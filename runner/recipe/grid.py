@@ -107,6 +107,8 @@ class Grid:
         self.task = task
         sizes = [len(recipe.seeds) * c.settings.data.split.fold_count for c in configs]
         self._starts = [sum(sizes[:i]) for i in range(len(sizes) + 1)]
+        self._jobs: list[Job | None] = [None] * self._starts[-1]  # made on first use: keys are hashed once
+        self._identities: dict[int, dict] = {}  # config position -> settings.identity()
 
     def __len__(self) -> int:
         return self._starts[-1]
@@ -115,13 +117,21 @@ class Grid:
         if not -len(self) <= i < len(self):
             raise IndexError(i)
         i %= len(self)
+        job = self._jobs[i]
+        if job is None:
+            job = self._jobs[i] = self._make(i)
+        return job
+
+    def _make(self, i: int) -> Job:
         c = bisect.bisect_right(self._starts, i) - 1
         config = self.configs[c]
         folds = config.settings.data.split.fold_count
         seed_index, fold = divmod(i - self._starts[c], folds)
         seed = self.recipe.seeds[seed_index]
         fold_or_none = fold if config.settings.data.split.validation == "folds" else None
-        key = job_key(config, seed, self.monitor, fold_or_none)
+        if c not in self._identities:
+            self._identities[c] = config.settings.identity()
+        key = job_key(config, seed, self.monitor, fold_or_none, self._identities[c])
         return Job(key=key, config=config, seed=seed, monitor=self.monitor, fold=fold_or_none)
 
     def with_rank_by(self, rank_by: str) -> Grid:
@@ -139,13 +149,15 @@ class Grid:
         return {f.name: f.label(i) for f, i in zip(self.recipe.factors, config.levels)}
 
 
-def job_key(config: Config, seed: int, monitor: str, fold: int | None = None) -> str:
+def job_key(config: Config, seed: int, monitor: str, fold: int | None = None, identity: dict | None = None) -> str:
     """The job's identity: its resolved settings, data, seed and fold (k-fold validation),
     the monitored metric when early stopping watches it (otherwise the metric changes
-    nothing the job computes), and a user network's source when there is one."""
+    nothing the job computes), and a user network's source when there is one.
+    ``identity``: ``config.settings.identity()`` when the caller has it already."""
     watched = monitor if config.settings.train.patience > 0 else None
-    ident = {"v": KEY_VERSION, "settings": config.settings.identity(), "data": config.data_id, "seed": seed,
-             "monitor": watched, "fold": fold}  # fmt: skip
+    settings = config.settings.identity() if identity is None else identity
+    ident = {"v": KEY_VERSION, "settings": settings, "data": config.data_id, "seed": seed, "monitor": watched,
+             "fold": fold}  # fmt: skip
     if config.module is not None:  # only then: other recipes keep their keys
         ident["module"] = config.module_id
     return hashlib.sha256(canonical(ident).encode()).hexdigest()[:24]
@@ -267,8 +279,9 @@ PROTOCOL_PATHS = ("data.split.test", "data.split.test_seed", "data.split.stratif
 def _check_one_protocol(configs: list[Config]) -> None:
     """Every configuration must share the test rows and the validation protocol: comparing
     configurations tested on different rows, or judged with different variances, means nothing."""
+    flat = [c.settings.flat() for c in configs]
     for path in PROTOCOL_PATHS:
-        values = {c.settings.flat()[path] for c in configs}
+        values = {f[path] for f in flat}
         if len(values) > 1:
             raise RecipeError(
                 "must be the same for every configuration (it decides the test rows or the validation protocol)",
