@@ -15,7 +15,8 @@ against training those 2 seeds alone in a fresh store (both whole commands).
 
 Goals (issue 22): wall <= 1.5x summed training from 64 jobs up and <= training + 2 s for
 every grid; the default never slower than --workers 1; extension <= 1.2x the new jobs'
-own run; no-op rerun and board under 1.5 s.
+own run; no-op rerun and board under 1.5 s. The first line also times the floor under every
+training run: a fresh interpreter importing torch; "tool" is wall - training - floor.
 
 Run: python bench/wall.py [--rounds N] [--only NAME ...] [--compare OTHER_CHECKOUT]
 (--compare times another checkout of the project alongside, each command alternating
@@ -190,6 +191,17 @@ def extension(folder: Path, rounds: int, tree: Path = ROOT) -> dict:
     return {"new_jobs": n, **best, "train_extend": trained["extend"], "train_alone": trained["alone"]}
 
 
+def import_floor(rounds: int = 3) -> float:
+    """Least wall time of a fresh interpreter that imports torch and exits: the part of any
+    training run's fixed cost that no change to the tool can remove."""
+    best = float("inf")
+    for _ in range(rounds):
+        start = time.perf_counter()
+        subprocess.run([sys.executable, "-c", "import torch"], check=True)
+        best = min(best, time.perf_counter() - start)
+    return best
+
+
 def verdict(ok: bool) -> str:
     return "ok" if ok else "MISSED"
 
@@ -206,6 +218,9 @@ def main() -> None:
     cpu = next((ln.split(":", 1)[1].strip() for ln in cpuinfo if ln.startswith("model name")), "?")
     print(f"# bench/wall.py, {time.strftime('%Y-%m-%d %H:%M')}, {cpu}, {cores} cores, load {os.getloadavg()[0]:.2f}")
     print(f"# least of {args.rounds} alternating rounds per figure; times in seconds")
+    floor = import_floor()
+    print(f"# floor: a fresh interpreter that imports torch and exits takes {floor:.2f} s (least of 3); every"
+          " run that trains pays it, so 'tool' below is wall - training - floor: what the tool adds")  # fmt: skip
     names = [n for n in GRIDS if args.only is None or n in args.only]
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
@@ -213,7 +228,7 @@ def main() -> None:
             write_csv(folder / "wall.csv")
         header = (
             f"{'grid':<11} {'jobs':>4} {'default':>8} {'--w 1':>7} {'train':>6} {'wall/tr':>7} "
-            f"{'wall-tr':>7} {'def/w1':>6} {'no-op':>6} {'board':>6}  goals; how the default trains"
+            f"{'wall-tr':>7} {'tool':>5} {'def/w1':>6} {'no-op':>6} {'board':>6}  goals; how the default trains"
         )
         print(header)
         missed = 0
@@ -229,7 +244,8 @@ def main() -> None:
                 label = name if t == 0 else "  (other)"
                 print(
                     f"{label:<11} {r['jobs']:>4} {r['default']:>8.2f} {r['w1']:>7.2f} {r['train']:>6.2f} "
-                    f"{ratio:>7.2f} {extra:>7.2f} {r['default'] / r['w1']:>6.2f} {r['noop']:>6.2f} {r['board']:>6.2f}  "
+                    f"{ratio:>7.2f} {extra:>7.2f} {extra - floor:>5.2f} {r['default'] / r['w1']:>6.2f} "
+                    f"{r['noop']:>6.2f} {r['board']:>6.2f}  "
                     f"wall {verdict(goals[0])}, default {verdict(goals[1])}, read {verdict(goals[2])}; {r['note']}"
                 )
                 sys.stdout.flush()
