@@ -127,3 +127,33 @@ def test_a_small_plan_trains_in_process_and_a_pool_run_leaves_torch_to_its_worke
     assert state[0] == "0" and state[1] != "None", err[-300:]  # three items, two worker processes
     assert state[2] == "False", "the main process of a pool run imports no torch"
     assert "on 2 worker processes" in err
+
+
+@pytest.mark.slow
+def test_a_command_that_loaded_torch_ends_with_its_output_whole(tmp_path):
+    # the console script skips the interpreter's teardown once torch is loaded (runner/cli):
+    # the output must still be whole, in-process and from a pool run, through pipes
+    for name, text, extra in (("light", LIGHT, []), ("wide", LIGHT + '[factors]\n"model.hidden" = [[8], [9], [10]]\n',
+                                                       ["--workers", "2"])):  # fmt: skip
+        path = write_recipe(tmp_path, text, name=f"{name}.toml")
+        store = str(tmp_path / f"{name}.sqlite")
+        ran = subprocess.run([PYTHON, "-m", "runner", "run", str(path), "--store", store, *extra],
+                             env=subprocess_env(), capture_output=True, text=True)  # fmt: skip
+        assert ran.returncode == 0, ran.stderr[-300:]
+        board = subprocess.run([PYTHON, "-m", "runner", "board", str(path), "--store", store],
+                               env=subprocess_env(), capture_output=True, text=True, check=True)  # fmt: skip
+        assert ran.stdout == board.stdout and ran.stdout.endswith("\n")
+
+
+@pytest.mark.slow
+def test_the_quick_exit_keeps_exit_handlers_and_the_meaning_of_exit_codes():
+    # SystemExit's meaning (None is 0, an int is itself, a text is printed and means 1), with
+    # every atexit handler run and buffered output flushed before the process ends
+    for code, status, err in (("None", 0, ""), ("3", 3, ""), ("'no such file'", 1, "no such file\n")):
+        script = (
+            "import atexit, sys, torch\nfrom runner.cli import _exit_now\n"
+            "atexit.register(lambda: sys.stdout.write('handler ran\\n'))\n"
+            f"sys.stdout.write('buffered ')\n_exit_now({code})\nsys.stdout.write('not reached')\n"
+        )
+        proc = subprocess.run([PYTHON, "-c", script], env=subprocess_env(), capture_output=True, text=True)
+        assert (proc.returncode, proc.stdout, proc.stderr) == (status, "buffered handler ran\n", err)
