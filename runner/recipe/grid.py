@@ -7,6 +7,7 @@ runs: an impossible combination is a RecipeError, not a failed job.
 from __future__ import annotations
 
 import bisect
+import contextlib
 import dataclasses
 import hashlib
 import itertools
@@ -177,8 +178,8 @@ def expand(recipe: Recipe) -> Grid:
 
 def _expand(recipe: Recipe) -> Grid:
     factors = recipe.factors
-    datasets: dict[str, Dataset] = {}
-    by_source: dict[tuple, Dataset] = {}
+    datasets: dict[str, Dataset] = {}  # fingerprint -> dataset
+    by_source: dict[tuple, Dataset] = {}  # how the data is read -> dataset
     modules: dict[str, ModuleSource] = {}
     configs: list[Config] = []
     task = None
@@ -189,62 +190,73 @@ def _expand(recipe: Recipe) -> Grid:
         if _excluded(assign, recipe.exclude):
             continue
         where = ", ".join(f"{f.name} = {f.label(i)}" for f, i in zip(factors, combo))
-        try:
+        with _in_configuration(where):
             settings = resolve(recipe.sections, assign)
             _check_rules(settings)
             module = _module(settings, recipe, modules)
-        except RecipeError as err:
-            if where:
-                err.hint = (err.hint + "; " if err.hint else "") + f"in the configuration {where}"
-            raise
-        skey = source_key(settings.data)
-        if skey not in by_source:
-            try:
-                by_source[skey] = load_dataset(settings.data, recipe.base_dir)
-            except DataError as err:
-                raise err.located(where=err.where or recipe.path.name) from None
-        ds = by_source[skey]
-        if datasets.get(ds.fingerprint, ds) is not ds:
-            # The same bytes read another way (e.g. a factor over data.target): another
-            # dataset, so another id, or its jobs would be handed the first one's rows.
-            ds = by_source[skey] = same_bytes_other_reading(ds, skey)
-        datasets[ds.fingerprint] = ds
+        ds = _dataset(settings, recipe, by_source, datasets, where)
         if task is None:
             task = ds.task
         elif ds.task != task:
-            raise RecipeError(
-                "all configurations must share one task (classification or regression)",
-                key="data.source",
-                value=ds.label,
-            )
-        if settings.model.kind == "cnn" and ds.image_shape is None:
-            raise RecipeError(
-                'model.kind = "cnn" needs image data',
-                key="model.kind",
-                value="cnn",
-                allowed='"digits" or an NPZ file with X of shape (N, H, W) or (N, C, H, W)',
-            )
-        if settings.model.kind != "python":  # a user's network is sized once it is built
-            try:
-                check_footprint(settings, ds.shape[0], tuple(ds.shape[1:]), max(1, len(ds.classes)))
-            except RecipeError as err:
-                if where:
-                    err.hint = (err.hint + "; " if err.hint else "") + f"in the configuration {where}"
-                raise
+            raise RecipeError("all configurations must share one task (classification or regression)",
+                              key="data.source", value=ds.label)  # fmt: skip
+        with _in_configuration(where):
+            _check_model_fits_data(settings, ds)
         ident = {"settings": settings.identity(), "data": ds.fingerprint}
         if module is not None:
             ident["module"] = module.sha256
-        configs.append(
-            Config(
-                index=len(configs),
-                id=hashlib.sha256(canonical(ident).encode()).hexdigest()[:12],
-                levels=combo,
-                assignments=assign,
-                settings=settings,
-                data_id=ds.fingerprint,
-                module=module,
-            )
+        config_id = hashlib.sha256(canonical(ident).encode()).hexdigest()[:12]
+        configs.append(Config(index=len(configs), id=config_id, levels=combo, assignments=assign, settings=settings,
+                              data_id=ds.fingerprint, module=module))  # fmt: skip
+    _check_grid(configs, modules)
+    assert task is not None  # configs is not empty
+    return Grid(recipe, configs, datasets, _rank_by(recipe, task), task)
+
+
+@contextlib.contextmanager
+def _in_configuration(where: str):
+    """A RecipeError raised inside names the configuration it arose in (when factors vary)."""
+    try:
+        yield
+    except RecipeError as err:
+        if where:
+            err.hint = (err.hint + "; " if err.hint else "") + f"in the configuration {where}"
+        raise
+
+
+def _dataset(settings: Settings, recipe: Recipe, by_source: dict[tuple, Dataset], datasets: dict[str, Dataset],
+             where: str) -> Dataset:  # fmt: skip
+    """The configuration's data, read once per way of reading it."""
+    skey = source_key(settings.data)
+    if skey not in by_source:
+        try:
+            by_source[skey] = load_dataset(settings.data, recipe.base_dir)
+        except DataError as err:
+            raise err.located(where=err.where or recipe.path.name) from None
+    ds = by_source[skey]
+    if datasets.get(ds.fingerprint, ds) is not ds:
+        # The same bytes read another way (e.g. a factor over data.target): another
+        # dataset, so another id, or its jobs would be handed the first one's rows.
+        ds = by_source[skey] = same_bytes_other_reading(ds, skey)
+    datasets[ds.fingerprint] = ds
+    return ds
+
+
+def _check_model_fits_data(settings: Settings, ds: Dataset) -> None:
+    if settings.model.kind == "cnn" and ds.image_shape is None:
+        raise RecipeError(
+            'model.kind = "cnn" needs image data',
+            key="model.kind",
+            value="cnn",
+            allowed='"digits" or an NPZ file with X of shape (N, H, W) or (N, C, H, W)',
         )
+    if settings.model.kind != "python":  # a user's network is sized once it is built
+        check_footprint(settings, ds.shape[0], tuple(ds.shape[1:]), max(1, len(ds.classes)))
+
+
+def _check_grid(configs: list[Config], modules: dict[str, ModuleSource]) -> None:
+    """What only the whole grid shows: settings no configuration uses, nothing left to run,
+    configurations judged on different rows."""
     unused = [k for k in ("file", "class_name", "args") if any(getattr(c.settings.model, k) for c in configs)]
     if not modules and unused:
         raise RecipeError(
@@ -258,8 +270,10 @@ def _expand(recipe: Recipe) -> Grid:
             key="exclude",
             hint="Loosen or remove an [[exclude]] rule",
         )
-    assert task is not None  # configs is not empty
     _check_one_protocol(configs)
+
+
+def _rank_by(recipe: Recipe, task: Task) -> str:
     rank_by = recipe.rank_by or ("val.accuracy" if task is Task.CLASSIFICATION else "val.rmse")
     metric = rank_by.split(".", 1)[1]
     if METRICS[metric][0] != task:
@@ -269,7 +283,7 @@ def _expand(recipe: Recipe) -> Grid:
             value=rank_by,
             allowed=", ".join(f'"val.{m}"' for m in for_task(task)),
         )
-    return Grid(recipe, configs, datasets, rank_by, task)
+    return rank_by
 
 
 PROTOCOL_PATHS = ("data.split.test", "data.split.test_seed", "data.split.stratify", "data.split.validation",
