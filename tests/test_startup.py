@@ -155,5 +155,61 @@ def test_the_quick_exit_keeps_exit_handlers_and_the_meaning_of_exit_codes():
             "atexit.register(lambda: sys.stdout.write('handler ran\\n'))\n"
             f"sys.stdout.write('buffered ')\n_exit_now({code})\nsys.stdout.write('not reached')\n"
         )
-        proc = subprocess.run([PYTHON, "-c", script], env=subprocess_env(), capture_output=True, text=True)
+        proc = subprocess.run([PYTHON, "-c", script], env=_buffered(), capture_output=True, text=True)
         assert (proc.returncode, proc.stdout, proc.stderr) == (status, "buffered handler ran\n", err)
+
+
+def _buffered() -> dict:
+    """The subprocess environment with Python's own output buffering (some shells and CI
+    set PYTHONUNBUFFERED, under which a missing flush could not be seen)."""
+    env = subprocess_env()
+    env.pop("PYTHONUNBUFFERED", None)
+    return env
+
+
+@pytest.mark.slow
+def test_the_quick_exit_steps_aside_for_live_threads_and_reports_lost_output():
+    # another non-daemon thread still working: a normal exit, which waits for it
+    script = (
+        "import sys, threading, time, torch\nfrom runner.cli import _exit_now\n"
+        "threading.Thread(target=lambda: (time.sleep(0.3), print('thread done'))).start()\n"
+        "_exit_now(0)\nprint('returned')\n"
+    )
+    proc = subprocess.run([PYTHON, "-c", script], env=subprocess_env(), capture_output=True, text=True)
+    assert proc.returncode == 0 and sorted(proc.stdout.split("\n")) == ["", "returned", "thread done"]
+    # buffered output that cannot be written (here its descriptor is gone) is an error, as
+    # Python's own exit makes it (status 120)
+    script = "import os, sys, torch\nfrom runner.cli import _exit_now\nsys.stdout.write('x')\nos.close(1)\n"
+    proc = subprocess.run([PYTHON, "-c", script + "_exit_now(0)\n"], env=_buffered(), capture_output=True, text=True)
+    assert proc.returncode == 120 and "could not be written" in proc.stderr
+    normal = subprocess.run([PYTHON, "-c", script], env=_buffered(), capture_output=True, text=True)
+    assert normal.returncode == 120  # the reference: Python's own exit, same script
+
+
+PROBE = """
+from runner.execution.forkserver import worker_context
+
+
+def quick_exit():
+    import runner.execution.preload as preload
+    return preload.QUICK_EXIT
+
+
+if __name__ == "__main__":
+    with worker_context().Pool(1) as pool:
+        print(pool.apply(quick_exit))
+    import runner.execution.preload as preload
+    print(preload.QUICK_EXIT)
+"""
+
+
+@pytest.mark.slow
+def test_only_the_fork_server_ends_at_once(tmp_path):
+    # the fork server's quick exit is registered in the server (a worker forked from it
+    # sees it), and importing the preload module anywhere else changes nothing
+    script = tmp_path / "probe.py"
+    script.write_text(PROBE)
+    proc = subprocess.run([PYTHON, str(script)], env=subprocess_env(), capture_output=True, text=True, timeout=120)
+    assert proc.stdout.split() == ["True", "False"], proc.stderr[-500:]
+    plain = subprocess.run([PYTHON, "-c", "import sys, runner.execution.preload\nsys.exit(3)"], env=subprocess_env())
+    assert plain.returncode == 3

@@ -49,7 +49,12 @@ def _exit_now(code: object) -> None:
         sys.stderr.write(f"{code}\n")
         status = 1
     run_handlers()
-    for stream in (sys.stdout, sys.stderr):
-        with contextlib.suppress(OSError, ValueError):  # a closed pipe (e.g. `recipe board | head`)
-            stream.flush()
+    try:
+        sys.stdout.flush()
+    except (OSError, ValueError):  # output lost (a closed pipe, a full disk): as Python itself says it
+        status = status or 120
+        with contextlib.suppress(OSError, ValueError):
+            sys.stderr.write("error: the command's output could not be written in full\n")
+    with contextlib.suppress(OSError, ValueError):
+        sys.stderr.flush()
     os._exit(status)

@@ -21,6 +21,17 @@ signal.signal(signal.SIGINT, signal.SIG_IGN)
 _SERVER = os.getpid()
 
 
+def _in_fork_server() -> bool:
+    """Whether this import is the fork server's (multiprocessing.forkserver.main imports the
+    preload modules): anywhere else, importing this module must not change how a process ends."""
+    frame = sys._getframe(1)
+    while frame is not None:
+        if frame.f_code.co_name == "main" and frame.f_globals.get("__name__") == "multiprocessing.forkserver":
+            return True
+        frame = frame.f_back  # type: ignore[assignment]
+    return False
+
+
 def _exit_now() -> None:
     """The server ends when the runner has gone. Registered before torch is imported, this
     handler runs after torch's own and then skips the teardown of every module (about 0.5 s
@@ -34,7 +45,9 @@ def _exit_now() -> None:
     os._exit(0)
 
 
-atexit.register(_exit_now)
+QUICK_EXIT = _in_fork_server()  # True in the fork server only (tests/test_startup.py reads it from a worker)
+if QUICK_EXIT:
+    atexit.register(_exit_now)
 
 import runner.execution.executors  # noqa: E402
 import runner.training.loop  # noqa: E402
