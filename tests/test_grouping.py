@@ -130,3 +130,57 @@ def test_extending_seeds_trains_only_the_new_jobs_and_equals_a_run_from_scratch(
     assert invoke("run", five, "--store", scratch, "--workers", 1, "-q").exit_code == 0
     assert stored_metrics(store) == stored_metrics(scratch)  # bit for bit
     assert _curves(store) == _curves(scratch)
+
+
+USER_NETWORK = """
+name = "extend-CLS"
+seeds = SEEDS
+[data]
+source = "digits"
+[model]
+kind = "python"
+file = "nets.py"
+class_name = "CLS"
+args = ARGS
+[train]
+epochs = 2
+batch_size = 32
+LR
+"""
+
+
+@pytest.mark.parametrize(
+    ("cls", "args"),
+    [
+        ("Dense", "{ widths = [64, 32, 10], p = 0.2, input_p = 0.1 }"),
+        ("Dense", "{ widths = [64, 32, 10], batch_norm = true }"),
+        ("Conv", "{ channels = [4, 8], hidden = [16], classes = 10 }"),
+    ],
+)
+def test_a_user_network_trained_alone_or_extended_equals_a_run_from_scratch(tmp_path, cls, args):
+    # users' networks stack through torch.func (stacked_modules.py), and groups are formed
+    # from what is left to run: a job trained alone (a group of one, which vmap batches
+    # through other convolution kernels unless the backend runs it as two copies), then
+    # three more in a group of three, must store the numbers a group of four stores
+    from conftest import DATA
+
+    (tmp_path / "nets.py").write_text((DATA / "networks" / "nets.py").read_text())
+    text = USER_NETWORK.replace("CLS", cls).replace("ARGS", args)
+    lone = write_recipe(tmp_path, text.replace("SEEDS", "[1]").replace("LR", "lr = 1e-3"), name="lone.toml")
+    grid = text.replace("SEEDS", "[1, 2]").replace("LR", '[factors]\n"train.lr" = [1e-3, 3e-2]')
+    full = write_recipe(tmp_path, grid, name="full.toml")
+    store, scratch = tmp_path / "s.sqlite", tmp_path / "scratch.sqlite"
+    first = invoke("run", lone, "--store", store, "--workers", 1)
+    assert first.exit_code == 0 and "1 stacked group of 1 job" in first.stderr, first.stderr
+    extended = invoke("run", full, "--store", store, "--workers", 1)
+    assert extended.exit_code == 0 and "stacked group of 3 jobs" in extended.stderr, extended.stderr
+    assert invoke("run", full, "--store", scratch, "--workers", 1, "-q").exit_code == 0  # one group of 4
+    assert _numbers(store) == _numbers(scratch)  # bit for bit
+
+
+def _numbers(store) -> tuple[list, list]:
+    """Every stored curve and metric value by job key (the lone job's labels differ)."""
+    with sqlite3.connect(store) as c:
+        curves = sorted(c.execute("SELECT job_key, name, epoch, value FROM curves"))
+        metrics = sorted(c.execute("SELECT job_key, split, name, value FROM metrics"))
+    return curves, metrics

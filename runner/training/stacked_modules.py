@@ -132,15 +132,27 @@ class ModuleStackBackend:
         return torch.from_numpy(((y - sp.y_mean) / sp.y_std).astype(np.float32))
 
     def _forward(self, X: torch.Tensor, masks: list[torch.Tensor]) -> torch.Tensor:
-        """All members' outputs (K, rows, outputs) for their rows X (K, rows, ...)."""
+        """All members' outputs (K, rows, outputs) for their rows X (K, rows, ...).
+
+        A group of one runs as two copies of its member: vmap over a single member batches a
+        convolution through other kernels than over two or more (their outputs 2e-7 apart on
+        a small CNN), while from two members up a member's numbers do not depend on the group
+        (tests/test_grouping.py). Only the first copy's outputs are used, so the second adds
+        exact zeros to the gradients; batch-norm statistics are taken from the first copy."""
         params = dict(zip(self.names, self.params))
+        buffers = self.buffers
+        lone = self.members == 1
+        if lone:
+            params = {name: torch.cat([p, p]) for name, p in params.items()}
+            buffers = {name: torch.cat([b, b]) for name, b in buffers.items()}
+            X, masks = torch.cat([X, X]), [torch.cat([m, m]) for m in masks]
 
         def one(p, b, x, m):
             self.masks.pending = list(m)
             return functional_call(self.base, (p, b), (x,))
 
         try:
-            return vmap(one, randomness="error")(params, self.buffers, X, masks)
+            out = vmap(one, randomness="error")(params, buffers, X, masks)
         except RuntimeError as exc:
             if "random" not in str(exc):
                 raise
@@ -148,6 +160,12 @@ class ModuleStackBackend:
                 "the network draws random numbers in forward (other than through nn.Dropout), which "
                 "cannot come from each member's own seed here"
             ) from None
+        if lone:
+            with torch.no_grad():
+                for name, b in self.buffers.items():
+                    b.copy_(buffers[name][:1])
+            out = out[:1]
+        return out
 
     def _losses(self, out: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
         """Each member's mean loss (K,), as the single path's cross-entropy or MSE."""
