@@ -133,15 +133,12 @@ def test_extending_seeds_trains_only_the_new_jobs_and_equals_a_run_from_scratch(
 
 
 USER_NETWORK = """
-name = "extend-CLS"
+name = "extend"
 seeds = SEEDS
 [data]
 source = "digits"
 [model]
-kind = "python"
-file = "nets.py"
-class_name = "CLS"
-args = ARGS
+MODEL
 [train]
 epochs = 2
 batch_size = 32
@@ -149,23 +146,28 @@ LR
 """
 
 
+_USER = 'kind = "python"\nfile = "nets.py"\n'
+
+
 @pytest.mark.parametrize(
-    ("cls", "args"),
+    "model",
     [
-        ("Dense", "{ widths = [64, 32, 10], p = 0.2, input_p = 0.1 }"),
-        ("Dense", "{ widths = [64, 32, 10], batch_norm = true }"),
-        ("Conv", "{ channels = [4, 8], hidden = [16], classes = 10 }"),
+        _USER + 'class_name = "Dense"\nargs = { widths = [64, 32, 10], p = 0.2, input_p = 0.1 }',
+        _USER + 'class_name = "Dense"\nargs = { widths = [64, 32, 10], batch_norm = true }',
+        _USER + 'class_name = "Conv"\nargs = { channels = [4, 8], hidden = [16], classes = 10 }',
+        'kind = "cnn"\nchannels = [4, 8]\nhidden = [16]\ndropout = 0.1\ninit = "he_normal"',
     ],
+    ids=["user-mlp", "user-batch-norm", "user-cnn", "tool-cnn"],
 )
-def test_a_user_network_trained_alone_or_extended_equals_a_run_from_scratch(tmp_path, cls, args):
-    # users' networks stack through torch.func (stacked_modules.py), and groups are formed
-    # from what is left to run: a job trained alone (a group of one, which vmap batches
-    # through other convolution kernels unless the backend runs it as two copies), then
-    # three more in a group of three, must store the numbers a group of four stores
+def test_a_network_stacked_through_torch_func_trained_alone_or_extended_equals_a_run_from_scratch(tmp_path, model):
+    # users' networks and the tool's CNN stack through torch.func (stacked_modules.py), and
+    # groups are formed from what is left to run: a job trained alone (a group of one, which
+    # vmap batches through other convolution kernels unless the backend runs it as two
+    # copies), then three more in a group of three, must store what a group of four stores
     from conftest import DATA
 
     (tmp_path / "nets.py").write_text((DATA / "networks" / "nets.py").read_text())
-    text = USER_NETWORK.replace("CLS", cls).replace("ARGS", args)
+    text = USER_NETWORK.replace("MODEL", model)
     lone = write_recipe(tmp_path, text.replace("SEEDS", "[1]").replace("LR", "lr = 1e-3"), name="lone.toml")
     grid = text.replace("SEEDS", "[1, 2]").replace("LR", '[factors]\n"train.lr" = [1e-3, 3e-2]')
     full = write_recipe(tmp_path, grid, name="full.toml")

@@ -211,3 +211,45 @@ def test_regression_members_agree_with_the_single_path(tmp_path):
     _, specs, ds = grid_of(tmp_path, text)
     rel = _agree(group_specs(specs, {ds.fingerprint: ds}), ds, max_sensitive=0)
     assert float(np.median(rel)) < ONE_EPOCH_MEDIAN_RTOL
+
+
+TOOL_CNN = """
+    name = "tool-cnn"
+    seeds = [1]
+    [data]
+    source = "digits"
+    [model]
+    kind = "cnn"
+    channels = [4, 8]
+    hidden = [16]
+    dropout = 0.1
+    input_dropout = 0.1
+    [train]
+    epochs = 1
+    batch_size = 32
+    clip_norm = 1.0
+    l2 = 1e-4
+    [factors]
+    "train.optimizer" = ["sgd", "nesterov", "adam", "adamw"]
+    "train.lr" = [1e-3, 3e-2]
+    "model.init" = ["glorot_uniform", "he_normal"]
+"""
+
+
+def test_the_tools_cnn_stacks_through_torch_func_and_agrees_with_the_single_path(tmp_path):
+    """The tool's own CNN (model.kind = "cnn") stacks on the user-network backend: mixed
+    optimizers, rates, initializers, input and hidden dropout, L2 and clipping, against each
+    job run alone on the single path (channels-last torch.nn with torch.optim)."""
+    _, specs, ds = grid_of(tmp_path, TOOL_CNN)
+    items = group_specs(specs, {ds.fingerprint: ds})
+    assert [len(i) for i in items] == [16] and len({stack_key(s) for s in specs}) == 1
+    rel = _agree(items, ds, max_sensitive=1)
+    assert float(np.median(rel)) < ONE_EPOCH_MEDIAN_RTOL
+    # what trains alone: batch norm (its statistics under vmap depend on the group), an
+    # optimizer the backend does not step (rmsprop)
+    no_optimizer = TOOL_CNN.replace('"train.optimizer" = ["sgd", "nesterov", "adam", "adamw"]\n', "")
+    batch_norm = no_optimizer.replace("    [train]\n", "    batch_norm = true\n    [train]\n")
+    rmsprop = no_optimizer.replace("    [train]\n", '    [train]\n    optimizer = "rmsprop"\n')
+    for alone in (batch_norm, rmsprop):
+        _, specs, _ = grid_of(tmp_path, alone)
+        assert {stack_key(s) for s in specs} == {None}

@@ -44,6 +44,8 @@ def stack_key(spec: JobSpec) -> str | None:
     m, t = spec.settings.model, spec.settings.train
     if m.kind == "python" and spec.module is not None:
         return _module_key(spec)
+    if m.kind == "cnn":
+        return _cnn_key(spec)
     if (
         m.kind != "mlp"
         or t.optimizer not in STACKED_OPTIMIZERS
@@ -99,11 +101,41 @@ def _module_key(spec: JobSpec) -> str | None:
     )
 
 
+def _cnn_key(spec: JobSpec) -> str | None:
+    """The tool's CNN stacks through the same torch.func backend as a user's network
+    (stacked_modules.py), with jobs of the same layers, dropout rates, data, batch size and
+    epochs; the initializer may differ (each member is built with its own). With batch norm
+    it trains alone: under vmap a member's batch-norm statistics came out different in a
+    group of three and of four (tests/test_grouping.py keeps the stacked kinds to the same
+    bits in any group)."""
+    m, t = spec.settings.model, spec.settings.train
+    if (
+        m.batch_norm
+        or t.optimizer not in MODULE_STACKED_OPTIMIZERS
+        or t.checkpoint_every
+        or t.time_limit
+        or spec.time_limit
+        or spec.checkpoint
+    ):
+        return None
+    layers = {k: v for k, v in m.to_dict().items() if k not in ("init", "init_scale")}
+    return canonical(
+        {
+            "data": spec.data_id,
+            "split": spec.settings.data,
+            "cnn": layers,
+            "bs": t.batch_size,
+            "epochs": t.epochs,
+            "monitor": spec.monitor,
+        }
+    )
+
+
 def member_bytes(spec: JobSpec, ds: Dataset) -> int:
     """A generous estimate of one member's tensors: parameters with gradients, optimizer
     moments, a best-epoch copy and momentum buffer (6 copies), its data splits, and the
     activations of one mini-batch with their gradients and masks (4 copies)."""
-    if spec.settings.model.kind == "python":  # the network's sizes are known once it is built
+    if spec.settings.model.kind in ("python", "cnn"):  # the network's sizes are known once it is built
         from runner.training.stacked_modules import member_bytes as network_bytes
 
         return network_bytes(spec, ds)

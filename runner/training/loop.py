@@ -342,7 +342,7 @@ def train_job(spec: JobSpec, ds: Dataset, keep_model: bool = False, on_epoch: On
 def train_group(specs: Sequence[JobSpec], ds: Dataset, on_epoch: OnEpoch | None = None) -> list[JobResult]:
     """Train same-shaped jobs together on the stacked path. If the stacked computation
     itself fails, each job is retrained on its own and its result carries a note saying so."""
-    if specs[0].settings.model.kind == "python":  # a user's network: through torch.func
+    if specs[0].settings.model.kind in ("python", "cnn"):  # a user's network or a CNN: through torch.func
         from runner.training.stacked_modules import ModuleStackBackend as StackedBackend
     else:
         from runner.training.stacked import StackedBackend

@@ -321,7 +321,8 @@ def member_bytes(spec: JobSpec, ds: Dataset) -> int:
     gradients, masks). Measured by building the network once and running one row through it."""
     model = spec.settings.model
     n_out = len(ds.classes) if ds.task is Task.CLASSIFICATION else 1
-    key = (spec.module.sha256, model.class_name, model.args, ds.X.shape[1:], n_out)
+    source = spec.module.sha256 if spec.module is not None else None  # None: the tool's own CNN
+    key = (source, model, ds.X.shape[1:], n_out)
     if key not in _FOOTPRINT:
         with torch.random.fork_rng(devices=[]):
             gens = (torch.Generator().manual_seed(0), torch.Generator().manual_seed(1))
