@@ -104,14 +104,10 @@ def _module_key(spec: JobSpec) -> str | None:
 def _cnn_key(spec: JobSpec) -> str | None:
     """The tool's CNN stacks through the same torch.func backend as a user's network
     (stacked_modules.py), with jobs of the same layers, dropout rates, data, batch size and
-    epochs; the initializer may differ (each member is built with its own). With batch norm
-    it trains alone: under vmap a member's batch-norm statistics came out different in a
-    group of three and of four (tests/test_grouping.py keeps the stacked kinds to the same
-    bits in any group)."""
+    epochs; the initializer may differ (each member is built with its own)."""
     m, t = spec.settings.model, spec.settings.train
     if (
-        m.batch_norm
-        or t.optimizer not in MODULE_STACKED_OPTIMIZERS
+        t.optimizer not in MODULE_STACKED_OPTIMIZERS
         or t.checkpoint_every
         or t.time_limit
         or spec.time_limit

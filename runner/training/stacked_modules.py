@@ -26,6 +26,7 @@ Results agree with the single path to float32 summation order, not bit for bit.
 from __future__ import annotations
 
 import copy
+import math
 from typing import Any
 
 import numpy as np
@@ -75,6 +76,20 @@ class _MaskedDropout(nn.Module):
         return self.masks.apply(x, self.p)
 
 
+def _batch_norm_step(net: nn.Module, width: int = 16) -> int:
+    """Group sizes the backend pads to: a multiple of this many members. Under vmap a batch
+    norm of C channels runs over K x C channels at once, and its vectorized loops end in a
+    tail whose other rounding falls on whichever member's channels end the run (a CNN with
+    4 channels: a member's statistics differed in a group of 3, not of 2 or 4). With K x C a
+    multiple of ``width`` floats (the widest vector, AVX-512's 16) no member is in a tail."""
+    step = 1
+    for m in net.modules():
+        if isinstance(m, nn.modules.batchnorm._BatchNorm):
+            c = width // math.gcd(width, m.num_features)
+            step = step * c // math.gcd(step, c)
+    return step
+
+
 def _weight_names(net: nn.Module) -> list[str]:
     """Parameter names of the Linear/Conv weights (what penalties and weight decay act on)."""
     return [f"{name}.weight" if name else "weight" for name, m in net.named_modules() if isinstance(m, WEIGHTED)]
@@ -104,6 +119,7 @@ class ModuleStackBackend:
         self.probe = min(diagnostics.PROBE_ROWS, n)
         self.base = copy.deepcopy(self.nets[0])
         self.masks = _Masks()
+        self.pad_to = _batch_norm_step(self.base)
         for parent in list(self.base.modules()):
             for name, child in list(parent.named_children()):
                 if isinstance(child, Dropout):
@@ -134,18 +150,25 @@ class ModuleStackBackend:
     def _forward(self, X: torch.Tensor, masks: list[torch.Tensor]) -> torch.Tensor:
         """All members' outputs (K, rows, outputs) for their rows X (K, rows, ...).
 
-        A group of one runs as two copies of its member: vmap over a single member batches a
-        convolution through other kernels than over two or more (their outputs 2e-7 apart on
-        a small CNN), while from two members up a member's numbers do not depend on the group
-        (tests/test_grouping.py). Only the first copy's outputs are used, so the second adds
-        exact zeros to the gradients; batch-norm statistics are taken from the first copy."""
+        The group is padded with copies of its first member so that a member's numbers do
+        not depend on the group (tests/test_grouping.py): a group of one runs as two, since
+        vmap over a single member batches a convolution through other kernels (outputs 2e-7
+        apart on a small CNN); with batch norm the group is padded to ``pad_to`` members (see
+        ``_batch_norm_step``). Only the real members' outputs are used, so the copies add
+        exact zeros to the gradients; batch-norm statistics are kept for the real members."""
         params = dict(zip(self.names, self.params))
         buffers = self.buffers
-        lone = self.members == 1
+        K = self.members
+        pad = (-K) % self.pad_to or (1 if K == 1 else 0)
+        lone = pad > 0
+
+        def padded(t):
+            return torch.cat([t, t[:1].expand(pad, *t.shape[1:])])
+
         if lone:
-            params = {name: torch.cat([p, p]) for name, p in params.items()}
-            buffers = {name: torch.cat([b, b]) for name, b in buffers.items()}
-            X, masks = torch.cat([X, X]), [torch.cat([m, m]) for m in masks]
+            params = {name: padded(p) for name, p in params.items()}
+            buffers = {name: padded(b) for name, b in buffers.items()}
+            X, masks = padded(X), [padded(m) for m in masks]
 
         def one(p, b, x, m):
             self.masks.pending = list(m)
@@ -163,8 +186,8 @@ class ModuleStackBackend:
         if lone:
             with torch.no_grad():
                 for name, b in self.buffers.items():
-                    b.copy_(buffers[name][:1])
-            out = out[:1]
+                    b.copy_(buffers[name][:K])
+            out = out[:K]
         return out
 
     def _losses(self, out: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
