@@ -75,10 +75,10 @@ def stack_key(spec: JobSpec) -> str | None:
 MODULE_STACKED_OPTIMIZERS = ("adam", "adamw", "momentum", "nesterov", "sgd")
 
 
-def _module_key(spec: JobSpec) -> str | None:
-    """A user's network stacks with jobs of the same file, class and arguments (so the same
-    shapes), data, batch size and epochs (stacked_modules.py)."""
-    m, t = spec.settings.model, spec.settings.train
+def _network_key(spec: JobSpec, network: dict) -> str | None:
+    """Jobs on the torch.func backend (stacked_modules.py) stack with jobs of the same
+    ``network`` (what fixes its shapes and forward pass), data, batch size and epochs."""
+    t = spec.settings.train
     if (
         t.optimizer not in MODULE_STACKED_OPTIMIZERS
         or t.checkpoint_every
@@ -87,44 +87,22 @@ def _module_key(spec: JobSpec) -> str | None:
         or spec.checkpoint
     ):
         return None
-    return canonical(
-        {
-            "data": spec.data_id,
-            "split": spec.settings.data,
-            "module": spec.module.sha256,
-            "class": m.class_name,
-            "args": m.args,
-            "bs": t.batch_size,
-            "epochs": t.epochs,
-            "monitor": spec.monitor,
-        }
-    )
+    shared = {"data": spec.data_id, "split": spec.settings.data, "bs": t.batch_size, "epochs": t.epochs,
+              "monitor": spec.monitor}  # fmt: skip
+    return canonical(shared | network)
+
+
+def _module_key(spec: JobSpec) -> str | None:
+    """A user's network: the same file, class and arguments (so the same shapes)."""
+    m = spec.settings.model
+    return _network_key(spec, {"module": spec.module.sha256, "class": m.class_name, "args": m.args})
 
 
 def _cnn_key(spec: JobSpec) -> str | None:
-    """The tool's CNN stacks through the same torch.func backend as a user's network
-    (stacked_modules.py), with jobs of the same layers, dropout rates, data, batch size and
-    epochs; the initializer may differ (each member is built with its own)."""
-    m, t = spec.settings.model, spec.settings.train
-    if (
-        t.optimizer not in MODULE_STACKED_OPTIMIZERS
-        or t.checkpoint_every
-        or t.time_limit
-        or spec.time_limit
-        or spec.checkpoint
-    ):
-        return None
-    layers = {k: v for k, v in m.to_dict().items() if k not in ("init", "init_scale")}
-    return canonical(
-        {
-            "data": spec.data_id,
-            "split": spec.settings.data,
-            "cnn": layers,
-            "bs": t.batch_size,
-            "epochs": t.epochs,
-            "monitor": spec.monitor,
-        }
-    )
+    """The tool's CNN: the same layers and dropout rates; the initializer may differ (each
+    member is built with its own)."""
+    layers = {k: v for k, v in spec.settings.model.to_dict().items() if k not in ("init", "init_scale")}
+    return _network_key(spec, {"cnn": layers})
 
 
 def member_bytes(spec: JobSpec, ds: Dataset) -> int:

@@ -160,12 +160,11 @@ class ModuleStackBackend:
         buffers = self.buffers
         K = self.members
         pad = (-K) % self.pad_to or (1 if K == 1 else 0)
-        lone = pad > 0
 
         def padded(t):
             return torch.cat([t, t[:1].expand(pad, *t.shape[1:])])
 
-        if lone:
+        if pad:
             params = {name: padded(p) for name, p in params.items()}
             buffers = {name: padded(b) for name, b in buffers.items()}
             X, masks = padded(X), [padded(m) for m in masks]
@@ -183,7 +182,7 @@ class ModuleStackBackend:
                 "the network draws random numbers in forward (other than through nn.Dropout), which "
                 "cannot come from each member's own seed here"
             ) from None
-        if lone:
+        if pad:
             with torch.no_grad():
                 for name, b in self.buffers.items():
                     b.copy_(buffers[name][:K])
