@@ -213,3 +213,39 @@ def test_only_the_fork_server_ends_at_once(tmp_path):
     assert proc.stdout.split() == ["True", "False"], proc.stderr[-500:]
     plain = subprocess.run([PYTHON, "-c", "import sys, runner.execution.preload\nsys.exit(3)"], env=subprocess_env())
     assert plain.returncode == 3
+
+
+FIRST_ITEM = """
+import sys
+from runner.execution.forkserver import worker_context
+
+
+def first_item(path):
+    from runner.execution.estimate import work_items
+    from runner.execution.executors import _work, prepare_process
+    from runner.recipe.grid import expand
+    from runner.recipe.loader import load_recipe
+
+    grid = expand(load_recipe(path))
+    items = work_items(grid, list(grid), stack=True)
+    prepare_process(1, grid.datasets, worker=True)
+    before = set(sys.modules)
+    _work(items[0])
+    return sorted(set(sys.modules) - before)
+
+
+if __name__ == "__main__":
+    with worker_context().Pool(1) as pool:
+        print(" ".join(pool.apply(first_item, (sys.argv[1],))) or "nothing")
+"""
+
+
+@pytest.mark.slow
+def test_a_workers_first_job_imports_nothing_its_fork_server_could_have(tmp_path):
+    # a module a worker imports on its first job costs every worker (and every replacement
+    # for one that died) that time on the job's clock; the fork server imports it once
+    script = tmp_path / "first_item.py"
+    script.write_text(FIRST_ITEM)
+    path = write_recipe(tmp_path, LIGHT)
+    proc = subprocess.run([PYTHON, str(script), str(path)], env=subprocess_env(), capture_output=True, text=True)
+    assert proc.stdout.split() == ["nothing"], proc.stdout[-500:] + proc.stderr[-500:]

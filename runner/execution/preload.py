@@ -2,10 +2,12 @@
 
 Everything a worker needs is imported here once, so every worker, and every replacement for a
 worker that died, starts in milliseconds with it already done: torch, the worker loop, the
-stacked path (scikit-learn is not needed: the splits are drawn by datasets/partition.py, and
-bundled data sets are read from scikit-learn's files by datasets/bundled.py). What
-torch.optim imports on first use is left to the workers that run single jobs
-(executors.ready_for): stacked groups never need it.
+stacked path, and what numpy loads only on first use (numpy.random and numpy.ma: about 0.1 s
+on a first job's clock otherwise). scikit-learn is not needed: the splits are drawn by
+datasets/partition.py, and bundled data sets are read from scikit-learn's files by
+datasets/bundled.py. What torch.optim imports on first use is left to the workers that run
+single jobs (executors.ready_for): stacked groups never need it. tests/test_startup.py
+checks that a worker's first job imports nothing.
 """
 
 import atexit
@@ -49,7 +51,13 @@ QUICK_EXIT = _in_fork_server()  # True in the fork server only (tests/test_start
 if QUICK_EXIT:
     atexit.register(_exit_now)
 
+import numpy.ma  # noqa: E402  (numpy loads these on first use: np.unique calls np.ma.is_masked)
+import numpy.random  # noqa: E402, F401
+
+import runner.datasets.partition  # noqa: E402  (the splits, drawn in each job)
+import runner.evidence.distributions  # noqa: E402  (training.summaries' F quantile)
 import runner.execution.executors  # noqa: E402
+import runner.training.grouping  # noqa: E402
 import runner.training.loop  # noqa: E402
 import runner.training.stacked  # noqa: E402
 
