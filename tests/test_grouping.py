@@ -155,10 +155,11 @@ _USER = 'kind = "python"\nfile = "nets.py"\n'
         _USER + 'class_name = "Dense"\nargs = { widths = [64, 32, 10], p = 0.2, input_p = 0.1 }',
         _USER + 'class_name = "Dense"\nargs = { widths = [64, 32, 10], batch_norm = true }',
         _USER + 'class_name = "Conv"\nargs = { channels = [4, 8], hidden = [16], classes = 10 }',
+        _USER + 'class_name = "Conv"\nargs = { channels = [4, 8], hidden = [16], classes = 10, batch_norm = true }',
         'kind = "cnn"\nchannels = [4, 8]\nhidden = [16]\ndropout = 0.1\ninit = "he_normal"',
         'kind = "cnn"\nchannels = [4, 8]\nhidden = [16]\nbatch_norm = true',
     ],
-    ids=["user-mlp", "user-batch-norm", "user-cnn", "tool-cnn", "tool-cnn-batch-norm"],
+    ids=["user-mlp", "user-batch-norm", "user-cnn", "user-cnn-batch-norm", "tool-cnn", "tool-cnn-batch-norm"],
 )
 def test_a_network_stacked_through_torch_func_trained_alone_or_extended_equals_a_run_from_scratch(tmp_path, model):
     # users' networks and the tool's CNN stack through torch.func (stacked_modules.py), and

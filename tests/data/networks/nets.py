@@ -31,11 +31,12 @@ class Dense(nn.Module):
 class Conv(nn.Module):
     """The tool's CNN (model.kind = "cnn", max pooling, square images) written by hand."""
 
-    def __init__(self, channels, hidden, classes, size=8, kernel=3):
+    def __init__(self, channels, hidden, classes, size=8, kernel=3, batch_norm=False):
         super().__init__()
         layers, c_in = [], 1
         for c in channels:
-            layers += [nn.Conv2d(c_in, c, kernel, padding=kernel // 2), nn.ReLU()]
+            layers.append(nn.Conv2d(c_in, c, kernel, padding=kernel // 2))
+            layers += [nn.BatchNorm2d(c), nn.ReLU()] if batch_norm else [nn.ReLU()]
             if size >= 2:
                 layers.append(nn.MaxPool2d(2))
                 size //= 2
