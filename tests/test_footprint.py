@@ -8,7 +8,7 @@ import pytest
 import torch
 from conftest import PYTHON, invoke, subprocess_env, write_recipe
 
-from runner.recipe.footprint import PARAM_COPIES, job_bytes, model_size
+from runner.recipe.footprint import PARAM_COPIES, job_bytes, model_size, network_counts
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
 from runner.training.models import build_model
@@ -35,6 +35,38 @@ def test_parameter_count_equals_torchs(tmp_path, source, model):
     net = build_model(settings.model, shape, n_out, gen, gen)
     params, _ = model_size(settings, shape, n_out)
     assert params == sum(p.numel() for p in net.parameters())
+
+
+COUNTED = [
+    *MODELS,
+    ("digits", '[model]\nkind = "cnn"\nchannels = [4, 8]\nhidden = [6]\nbatch_norm = true\ndropout = 0.2'),
+    ("digits", '[model]\nkind = "cnn"\nchannels = [5]\nhidden = []\ninput_dropout = 0.1\nactivation = "tanh"'),
+    ("iris", "[model]\nhidden = [8, 4]\nbatch_norm = true\ndropout = 0.3\ninput_dropout = 0.1"),
+]
+
+
+@pytest.mark.parametrize(("source", "model"), COUNTED)
+def test_network_counts_equal_the_built_networks_and_torchs_flop_counter(tmp_path, source, model):
+    """The counts `recipe run` sizes groups by without torch: parameters as torch counts them,
+    every module's output per example as forward hooks on the built network see it, and
+    multiply-adds as half the FLOPs of torch.utils.flop_counter (reference: torch's counter,
+    2 FLOPs per multiply-add of its convolution and matrix-product formulas)."""
+    from torch.utils.flop_counter import FlopCounterMode
+
+    from runner.training.stacked_modules import network_counts as built_counts
+
+    path = write_recipe(tmp_path, f'name = "m"\nseeds = [1]\n[data]\nsource = "{source}"\n{model}\n')
+    grid = expand(load_recipe(path))
+    spec = next(iter(grid)).spec()
+    ds = grid.datasets[spec.data_id]
+    shape, n_out = tuple(ds.X.shape[1:]), len(ds.classes)
+    counted = network_counts(spec.settings.model, shape, n_out)
+    assert counted == built_counts(spec, ds)
+    gen = torch.Generator().manual_seed(0)
+    net = build_model(spec.settings.model, shape, n_out, gen, gen).eval()
+    with FlopCounterMode(display=False) as flops, torch.no_grad():
+        net(torch.zeros(1, *shape))
+    assert counted[2] * 2 == flops.get_total_flops()
 
 
 @pytest.mark.slow

@@ -130,6 +130,18 @@ def test_a_small_plan_trains_in_process_and_a_pool_run_leaves_torch_to_its_worke
 
 
 @pytest.mark.slow
+def test_a_pool_run_of_the_tools_cnn_sizes_its_groups_without_torch(tmp_path):
+    # stacked CNN groups are sized by counting (footprint.network_counts), not by building a
+    # network here: a torch import in this process would delay the fork server by seconds
+    cnn = LIGHT.replace('source = "iris"', 'source = "digits"').replace("hidden = [8]", 'kind = "cnn"\nchannels = [2]')
+    path = write_recipe(tmp_path, cnn + '[factors]\n"model.hidden" = [[4], [5]]\n', name="cnn.toml")
+    state, err = _cli_alone(["run", str(path), "--store", str(tmp_path / "c.sqlite"), "--workers", "2"])
+    assert state[0] == "0" and state[1] != "None", err[-300:]
+    assert state[2] == "False", "the main process of a pool run imports no torch"
+    assert "2 stacked groups of 1 job on 2 worker processes" in err
+
+
+@pytest.mark.slow
 def test_a_command_that_loaded_torch_ends_with_its_output_whole(tmp_path):
     # the console script skips the interpreter's teardown once torch is loaded (runner/cli):
     # the output must still be whole, in-process and from a pool run, through pipes

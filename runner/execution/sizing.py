@@ -17,39 +17,45 @@ import math
 from collections.abc import Sequence
 
 from runner.datasets.sources import Dataset
+from runner.recipe.footprint import network_counts
 from runner.training.job import JobSpec
 
 __all__ = ["LONG_ITEM", "choose_workers", "cut_long_groups", "item_seconds", "predicted_wall"]
 
 # The constants are rough on purpose (the choice only has to be right away from the break-
 # even point, where both choices cost about the same); their measurements are in
-# bench/RESULTS.md ("Choosing the worker count").
+# bench/RESULTS.md ("Choosing the worker count", "Sizing groups stacked through torch.func").
 FLOP_RATE = 20e9  # arithmetic per second of a single job's training step, one core
 STACKED_FLOP_RATE = 40e9  # the same of a stacked group's (bigger products, fewer calls)
 STACKED_STEP = 150e-6  # seconds of per-call overhead per stacked group step (plus per member)
 STACKED_MEMBER_STEP = 20e-6
 SINGLE_STEP = 500e-6  # the single-job path: autograd and torch.optim per step
+# Groups stacked through torch.func (the tool's CNN, users' networks) spend their time in
+# per-number work (vmap's convolutions, pooling, activations, batch norm), not in products:
+# seconds per number a module outputs, and per multiply-add, for each example a member's
+# pass sees (a training example counts 3 passes: forward, backward, update; a validation
+# example 1); and per step of the group. Fitted to 12 groups of 0.5 to 13 s (within 0.75-1.31x).
+MODULE_ELEMENT = 7.1e-9
+MODULE_MAC = 8.3e-11
+MODULE_STEP = 4.7e-3
 POOL_START = 0.5  # seconds a pool adds: forking, sending data, each worker's first calls
 BUSY_SLOWDOWN = 1.4  # each of several busy workers runs this much slower than one alone
 LONG_ITEM = 60.0  # seconds: a stacked group estimated longer is cut (cut_long_groups)
 MIN_MEMBERS = 4  # a group's time per member is about flat from here up (bench/RESULTS.md)
 
 
-def _macs(spec: JobSpec, ds: Dataset) -> tuple[int, int]:
-    """(multiply-adds per row of one forward pass, classes or 1)."""
-    m = spec.settings.model
-    outputs = max(1, len(ds.classes))
-    shape = ds.shape[1:]
-    macs, width = 0, math.prod(shape)
-    if m.kind == "cnn" and len(shape) == 3:
-        channels, h, w = shape
-        for c in m.channels:
-            macs += h * w * m.kernel_size**2 * channels * c
-            if m.pool != "none" and min(h, w) >= 2:
-                h, w = h // 2, w // 2
-            channels, width = c, c * h * w
-    widths = [width, *m.hidden, outputs]
-    return macs + sum(a * b for a, b in zip(widths, widths[1:])), outputs
+def _counts(spec: JobSpec, ds: Dataset) -> tuple[int, int]:
+    """(numbers all the network's modules output per example, multiply-adds per example).
+    The tool's own networks are counted without torch; a user's network is built once (the
+    process that validated it has torch already)."""
+    model = spec.settings.model
+    if model.kind == "python":
+        from runner.training.stacked_modules import network_counts as built_counts
+
+        _, elements, macs = built_counts(spec, ds)
+        return elements, macs
+    _, elements, macs = network_counts(model, tuple(ds.shape[1:]), max(1, len(ds.classes)))
+    return elements, macs
 
 
 def item_seconds(item: Sequence[JobSpec], ds: Dataset) -> float:
@@ -62,7 +68,10 @@ def item_seconds(item: Sequence[JobSpec], ds: Dataset) -> float:
     n_val = max(1, round(rows * split.val))
     n_train = max(1, rows - n_val - round(rows * split.test))
     steps = train.epochs * math.ceil(n_train / train.batch_rows(n_train))
-    macs, _ = _macs(spec, ds)
+    elements, macs = _counts(spec, ds)
+    if isinstance(item, Stacked) and spec.settings.model.kind in ("cnn", "python"):
+        passes = train.epochs * (3 * n_train + n_val)
+        return len(item) * passes * (elements * MODULE_ELEMENT + macs * MODULE_MAC) + steps * MODULE_STEP
     flops = len(item) * train.epochs * (6 * macs * n_train + 2 * macs * n_val)
     if isinstance(item, Stacked):
         return flops / STACKED_FLOP_RATE + steps * (STACKED_STEP + len(item) * STACKED_MEMBER_STEP)

@@ -15,9 +15,9 @@ import os
 from pathlib import Path
 
 from runner.errors import RecipeError
-from runner.recipe.settings import Settings
+from runner.recipe.settings import ModelSettings, Settings
 
-__all__ = ["check_footprint", "job_bytes", "memory_limit", "model_size"]
+__all__ = ["check_footprint", "job_bytes", "memory_limit", "model_size", "network_counts"]
 
 # Copies of every parameter a job holds at once: the weights, their gradients, two optimizer
 # moments (Adam), the whole-size temporaries of torch's multi-tensor optimizer step (two),
@@ -52,6 +52,41 @@ def model_size(settings: Settings, in_shape: tuple[int, ...], n_out: int) -> tup
         sizes.append(h)
         width_in = h
     return params, sizes
+
+
+def network_counts(model: ModelSettings, in_shape: tuple[int, ...], n_out: int) -> tuple[int, int, int]:
+    """(parameters, numbers all its modules output per example, multiply-adds per example) of
+    the tool's own network (model.kind "mlp" or "cnn") exactly as training/models.py builds
+    it: every module's output is counted, the activations, batch norms, pooling, dropout and
+    flatten included. No torch, so `recipe run` can size stacked groups of the tool's CNN
+    without importing it; tests/test_footprint.py holds the counts equal to the built
+    network's and the multiply-adds to torch's FLOP counter."""
+    params = elements = macs = 0
+    if model.input_dropout > 0:
+        elements += math.prod(in_shape)
+    if model.kind == "cnn" and len(in_shape) == 3:
+        channels, height, width = in_shape
+        k = model.kernel_size
+        for c in model.channels:
+            height, width = height + 2 * (k // 2) - k + 1, width + 2 * (k // 2) - k + 1
+            out = c * height * width
+            params += (channels * k * k + 1) * c + 2 * c * model.batch_norm
+            macs += out * channels * k * k
+            elements += out * (2 + model.batch_norm)  # the convolution, its batch norm, its activation
+            if model.pool != "none" and min(height, width) >= 2:
+                height, width = height // 2, width // 2
+                elements += c * height * width
+            channels = c
+        width_in = channels * height * width
+    else:
+        width_in = math.prod(in_shape)
+    elements += width_in  # flatten
+    for h in model.hidden:
+        params += (width_in + 1) * h + 2 * h * model.batch_norm
+        macs += width_in * h
+        elements += h * (2 + model.batch_norm + (model.dropout > 0))  # linear, batch norm, activation, dropout
+        width_in = h
+    return params + (width_in + 1) * n_out, elements + n_out, macs + width_in * n_out
 
 
 def job_bytes(settings: Settings, rows: int, in_shape: tuple[int, ...], n_out: int) -> int:

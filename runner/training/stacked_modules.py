@@ -46,7 +46,7 @@ from runner.training.models import WEIGHTED, Dropout, build_model
 from runner.training.scoring import score_members
 from runner.training.streams import streams
 
-__all__ = ["ModuleStackBackend", "member_bytes"]
+__all__ = ["ModuleStackBackend", "member_bytes", "network_counts"]
 
 
 class _Masks:
@@ -333,35 +333,46 @@ class ModuleStackBackend:
         raise NotImplementedError("stacked groups take no mid-job checkpoints (grouping.stack_key)")
 
 
-_FOOTPRINT: dict[tuple, tuple[int, int]] = {}
+_COUNTS: dict[tuple, tuple[int, int, int]] = {}
 
 
-def member_bytes(spec: JobSpec, ds: Dataset) -> int:
-    """A generous estimate of one member's tensors, as grouping.member_bytes makes for the
-    tool's MLP: parameters in 6 copies (gradients, optimizer moments, a best-epoch copy), its
-    data, and 4 copies of every module's output for one mini-batch (activations, their
-    gradients, masks). Measured by building the network once and running one row through it."""
+def network_counts(spec: JobSpec, ds: Dataset) -> tuple[int, int, int]:
+    """(parameters, numbers all its modules output per example, multiply-adds per example of
+    its dense and convolution layers) of a job's network, measured by building it once and
+    running one example through it (footprint.network_counts counts the tool's own without
+    building it, and a test holds the two equal)."""
     model = spec.settings.model
     n_out = len(ds.classes) if ds.task is Task.CLASSIFICATION else 1
     source = spec.module.sha256 if spec.module is not None else None  # None: the tool's own CNN
-    key = (source, model, ds.X.shape[1:], n_out)
-    if key not in _FOOTPRINT:
+    in_shape = tuple(ds.shape[1:])
+    key = (source, model, in_shape, n_out)
+    if key not in _COUNTS:
         with torch.random.fork_rng(devices=[]):
             gens = (torch.Generator().manual_seed(0), torch.Generator().manual_seed(1))
-            net = build_model(model, tuple(ds.X.shape[1:]), n_out, gens[0], gens[1], spec.module)
+            net = build_model(model, in_shape, n_out, gens[0], gens[1], spec.module)
             sizes: list[int] = []
-            hooks = [
-                m.register_forward_hook(lambda _m, _i, o: sizes.append(o.numel() if torch.is_tensor(o) else 0))
-                for m in net.modules()
-                if not list(m.children())
-            ]
+            macs: list[int] = []
+
+            def count(m: nn.Module, _inputs, out) -> None:
+                sizes.append(out.numel() if torch.is_tensor(out) else 0)
+                if isinstance(m, nn.Linear):
+                    macs.append(m.in_features * m.out_features)
+                elif isinstance(m, (nn.Conv1d, nn.Conv2d, nn.Conv3d)):
+                    macs.append(out.numel() * (m.in_channels // m.groups) * math.prod(m.kernel_size))
+
+            hooks = [m.register_forward_hook(count) for m in net.modules() if not list(m.children())]
             net.eval()
             with torch.no_grad():
-                net(torch.zeros(1, *ds.X.shape[1:]))
+                net(torch.zeros(1, *in_shape))
             for h in hooks:
                 h.remove()
-        _FOOTPRINT[key] = (sum(p.numel() for p in net.parameters()), sum(sizes))
-    params, per_row = _FOOTPRINT[key]
-    bs = spec.settings.train.batch_size
-    batch = len(ds.y) if bs == "full" else min(int(bs), len(ds.y))
-    return 4 * (6 * params + int(np.prod(ds.X.shape)) + 4 * batch * per_row)
+        _COUNTS[key] = (sum(p.numel() for p in net.parameters()), sum(sizes), sum(macs))
+    return _COUNTS[key]
+
+
+def member_bytes(spec: JobSpec, ds: Dataset) -> int:
+    """grouping.member_bytes of a user's network: its counts measured (network_counts)."""
+    from runner.training.grouping import network_bytes
+
+    params, per_row, _ = network_counts(spec, ds)
+    return network_bytes(spec, ds, params, per_row)
