@@ -84,6 +84,7 @@ def test_groups_stacked_through_torch_func_are_sized_by_what_their_modules_outpu
         grid = expand(parse_recipe(textwrap.dedent(recipe), tmp_path / f"{name}.toml"))
         items = group_specs([j.spec() for j in grid], grid.datasets)
         assert [len(it) for it in items] == [16, 16]
-        sized[name] = choose_workers(items, grid.datasets, cores=2), item_seconds(items[0], grid.datasets[items[0][0].data_id])
+        ds = grid.datasets[items[0][0].data_id]
+        sized[name] = choose_workers(items, grid.datasets, cores=2), item_seconds(items[0], ds)
     assert sized["cnn"][0] == 2
     assert sized["cnn"][1] > 3 * sized["mlp"][1]
