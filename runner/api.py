@@ -216,24 +216,31 @@ def run(
     import sys
 
     from runner.evidence.leaderboard import leaderboard
-    from runner.execution.executors import default_workers
-    from runner.execution.planning import execute, make_executor, plan
+    from runner.execution.planning import plan
     from runner.execution.progress import Progress
     from runner.execution.retention import retain
+    from runner.execution.session import Training
     from runner.outputs.mlflow_export import RunLogger
     from runner.store.database import Store
 
     study = Study(recipe_path, store)
     recipe, grid = study.recipe, study.grid
     with Store(study.store_path) as db:
+        train = Training(grid, db, on or recipe.run.on, workers or recipe.run.workers or None, threads, max_attempts,
+                         time_limit, stack)  # fmt: skip
         todo = plan(grid, db, retry_failed)
-        progress = Progress(len(todo.to_run), grid.rank_by, grid.goal, stream=sys.stderr, live=False, quiet=quiet)
-        workers = workers or recipe.run.workers or default_workers()
-        executor = make_executor(on or recipe.run.on, workers, threads, max_attempts, time_limit)
-        tracker = RunLogger(mlflow or recipe.tracking.mlflow, grid, db)
+        train.tracker = tracker = RunLogger(mlflow or recipe.tracking.mlflow, grid, db)
         keep = recipe.run.keep_weights
+
+        def progress_for(n: int) -> Progress:
+            return Progress(n, grid.rank_by, grid.goal, stream=sys.stderr, live=False, quiet=quiet)
+
+        def note(text: str) -> None:
+            if not quiet:
+                print(text, file=sys.stderr)
+
         try:
-            execute(grid, db, todo.to_run, executor, progress, time_limit, tracker.stored, stack, keep != "none")
+            train.run(todo.to_run, progress_for, note)
         except KeyboardInterrupt:
             tracker.interrupted()
             raise

@@ -93,6 +93,23 @@ def test_a_finished_race_trains_nothing_when_run_again(tmp_path):
     assert stored_metrics(store) == before and _looks(store) == looks
 
 
+def test_a_race_sizes_each_round_and_the_api_races_as_the_cli_does(tmp_path):
+    # each round gets the executor its own work items pay for (a small race starts no
+    # worker pool: it was 1.5x slower than --workers 1 when every round had one), and the
+    # Python API's run() races an adaptive recipe as `recipe run` does (it trained the full grid)
+    from runner.api import run
+
+    recipe = write_recipe(tmp_path, RACE)
+    cli = invoke("run", recipe, "--store", tmp_path / "cli.sqlite")
+    assert cli.exit_code == 0, cli.stderr
+    rounds = [ln for ln in cli.stderr.splitlines() if ln.startswith("training ")]
+    assert len(rounds) >= 2 and all(ln.endswith(" in this process") for ln in rounds), rounds
+    run(recipe, store=tmp_path / "api.sqlite", quiet=True)
+    assert _board(recipe, tmp_path / "api.sqlite")["jobs"]["done"] < 24
+    assert stored_metrics(tmp_path / "api.sqlite") == stored_metrics(tmp_path / "cli.sqlite")
+    assert _looks(tmp_path / "api.sqlite") == _looks(tmp_path / "cli.sqlite")
+
+
 def test_ablation_of_a_race_uses_the_first_round_seeds_only(tmp_path):
     """Dropped configurations cannot bias the ablation: it equals the ablation of the same
     grid on the first three seeds (every configuration got them before any decision)."""

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import math
 import sys
-from typing import Any
 
 import click
 
@@ -142,6 +141,7 @@ def _run(
     from runner.datasets.feasibility import check_grid_splits
     from runner.evidence.leaderboard import leaderboard
     from runner.execution.planning import plan
+    from runner.execution.session import Training
     from runner.outputs.mlflow_export import RunLogger
     from runner.outputs.text import render
     from runner.recipe.grid import expand
@@ -160,7 +160,7 @@ def _run(
             return
         where, asked = on or recipe.run.on, workers or recipe.run.workers or None
         # made before the plan is shown, so a cluster that cannot be reached is refused first
-        train = _Training(grid, db, where, asked, threads, max_attempts, time_limit, not no_stack)
+        train = Training(grid, db, where, asked, threads, max_attempts, time_limit, not no_stack)
         train.tracker = tracker = RunLogger(mlflow_uri or recipe.tracking.mlflow, grid, db)
         if fresh:
             _confirm_fresh(db, grid, yes)
@@ -169,10 +169,8 @@ def _run(
             click.echo(_summary(grid, db, todo, retry_failed), err=True)
         if todo.to_run:
             try:
-                if recipe.adaptive is not None:
-                    train.race(quiet, verbose)
-                else:
-                    train.grid_jobs(todo.to_run, quiet, verbose)
+                note = None if quiet else (lambda text: click.echo(text, err=True))
+                train.run(todo.to_run, _progress_for(grid, quiet, verbose), note)
             except KeyboardInterrupt as exc:
                 tracker.interrupted()
                 _interrupted(db, grid, todo, exc)
@@ -189,47 +187,6 @@ def _run(
             lock.release()
         if db is not None:
             db.close()
-
-
-class _Training:
-    """What `recipe run` trains once the plan is made: the grid's jobs, or a race's rounds."""
-
-    tracker: Any  # outputs.mlflow_export.RunLogger, set once the cluster is reached
-
-    def __init__(self, grid, db, where, asked, threads, max_attempts, time_limit, stack):
-        self.grid, self.db = grid, db
-        self.where, self.asked, self.threads = where, asked, threads
-        self.max_attempts, self.time_limit, self.stack = max_attempts, time_limit, stack
-        self.keep = grid.recipe.run.keep_weights != "none"
-        # a cluster that cannot be reached is refused before anything trains
-        self.cluster = self._executor([]) if where != "local" else None
-
-    def _executor(self, items):
-        from runner.execution.planning import executor_for
-
-        return executor_for(self.where, items, self.grid, self.asked, self.threads, self.max_attempts, self.time_limit)
-
-    def grid_jobs(self, todo, quiet: bool, verbose: bool) -> None:
-        from runner.execution.planning import execute, work_items
-
-        items = work_items(self.grid, self.db, todo, self.stack, self.time_limit, self.keep)
-        executor = self.cluster or self._executor(items)
-        progress = _progress_for(self.grid, quiet, verbose)(len(todo))
-        execute(self.grid, self.db, todo, executor, progress, self.time_limit, on_stored=self.tracker.stored,
-                keep_weights=self.keep, items=items)  # fmt: skip
-
-    def race(self, quiet: bool, verbose: bool) -> None:
-        """Seeds on demand: the race's rounds (execution/racing.py)."""
-        from runner.execution.forkserver import default_workers
-        from runner.execution.planning import make_executor
-        from runner.execution.racing import run_race
-
-        workers = self.asked or default_workers()
-        executor = self.cluster or make_executor(self.where, workers, self.threads, self.max_attempts, self.time_limit)
-        note = None if quiet else (lambda text: click.echo(text, err=True))
-        progress = _progress_for(self.grid, quiet, verbose)
-        run_race(self.grid, self.db, executor, progress, self.time_limit, self.tracker.stored, self.stack, note,
-                 self.keep)  # fmt: skip
 
 
 def _progress_for(grid, quiet: bool, verbose: bool):

@@ -6,16 +6,19 @@ the round it stopped in and decides nothing twice; then the jobs the round still
 trained through ``planning.execute``. Stacked groups are formed over the round's own jobs
 (every configuration still racing x the round's seeds), whatever is left of them to run, so
 a resumed round forms the groups an uninterrupted one forms and gives the same numbers.
+Each round gets the executor its own work items pay for (``executor_for``): a race's first
+round may want workers, its last rounds of a few jobs train in this process.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable
+from typing import Any
 
 from runner.errors import UserError
 from runner.evidence.race import RaceState
 from runner.evidence.race_board import current, race_plan
-from runner.execution.planning import execute
+from runner.execution.planning import execute, work_items
 from runner.execution.progress import Progress
 from runner.recipe.grid import Grid, Job
 from runner.store import Store
@@ -71,7 +74,7 @@ def _round_jobs(grid: Grid, state: RaceState, finished: set[str]) -> tuple[list[
 def run_race(
     grid: Grid,
     store: Store,
-    executor,
+    executor_for: Callable[[list], Any],
     progress_for: Callable[[int], Progress | None],
     time_limit: float | None = None,
     on_stored=None,
@@ -79,8 +82,9 @@ def run_race(
     note: Callable[[str], None] | None = None,
     keep_weights: bool = True,
 ) -> RaceState:
-    """Run the race to its end; ``progress_for(n)`` makes the progress of a round of n jobs,
-    ``note`` prints a line per look."""
+    """Run the race to its end; ``executor_for(items)`` gives the executor for a round's work
+    items, ``progress_for(n)`` makes the progress of a round of n jobs, ``note`` prints a
+    line per look."""
     plan = race_plan(grid)
     assert plan is not None
     key = plan.key()
@@ -108,5 +112,7 @@ def run_race(
         last_todo = keys
         if note is not None:
             note(f"round {state.round}: {len(state.alive)} configurations, {len(todo)} jobs to run")
-        execute(_RoundGrid(grid, jobs), store, todo, executor, progress_for(len(todo)), time_limit, on_stored, stack,  # type: ignore[arg-type]
-                keep_weights)  # fmt: skip
+        round_grid = _RoundGrid(grid, jobs)
+        items = work_items(round_grid, store, todo, stack, time_limit, keep_weights)  # type: ignore[arg-type]
+        execute(round_grid, store, todo, executor_for(items), progress_for(len(todo)), time_limit, on_stored,  # type: ignore[arg-type]
+                stack, keep_weights, items)  # fmt: skip

@@ -1,0 +1,70 @@
+"""What `recipe run` and the Python API's ``run`` train once the plan is made.
+
+``Training.run(todo, progress_for, note)`` trains a grid's unfinished jobs on the executor
+their work items pay for (execution/sizing.py), or, for an adaptive recipe, its race round
+by round (execution/racing.py), each round on the executor its own items pay for. An
+explicit worker count or a cluster overrides the choice; a cluster is reached when the
+Training is made, so one that cannot be reached is refused before anything trains.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any
+
+from runner.execution.planning import execute, executor_for, work_items
+from runner.execution.progress import Progress
+from runner.recipe.grid import Grid, Job
+from runner.store import Store
+
+__all__ = ["Training"]
+
+
+class Training:
+    tracker: Any = None  # outputs.mlflow_export.RunLogger: told of every stored job, if set
+
+    def __init__(
+        self,
+        grid: Grid,
+        store: Store,
+        where: str,
+        asked: int | None,
+        threads: int = 1,
+        max_attempts: int = 2,
+        time_limit: float | None = None,
+        stack: bool = True,
+    ):
+        self.grid, self.store = grid, store
+        self.where, self.asked, self.threads = where, asked, threads
+        self.max_attempts, self.time_limit, self.stack = max_attempts, time_limit, stack
+        self.keep = grid.recipe.run.keep_weights != "none"
+        self.cluster = self._executor([]) if where != "local" else None
+
+    def _executor(self, items: list):
+        if self.cluster is not None:
+            return self.cluster
+        return executor_for(self.where, items, self.grid, self.asked, self.threads, self.max_attempts,
+                            self.time_limit)  # fmt: skip
+
+    def _stored(self):
+        return None if self.tracker is None else self.tracker.stored
+
+    def run(
+        self,
+        todo: list[Job],
+        progress_for: Callable[[int], Progress | None],
+        note: Callable[[str], None] | None = None,
+    ) -> None:
+        """Train ``todo`` (the plan's jobs to run); ``progress_for(n)`` makes the progress of
+        n jobs (a race makes one per round), ``note`` prints a race's lines."""
+        if not todo:
+            return
+        if self.grid.recipe.adaptive is not None:
+            from runner.execution.racing import run_race
+
+            run_race(self.grid, self.store, self._executor, progress_for, self.time_limit, self._stored(), self.stack,
+                     note, self.keep)  # fmt: skip
+            return
+        items = work_items(self.grid, self.store, todo, self.stack, self.time_limit, self.keep)
+        execute(self.grid, self.store, todo, self._executor(items), progress_for(len(todo)), self.time_limit,
+                on_stored=self._stored(), keep_weights=self.keep, items=items)  # fmt: skip
