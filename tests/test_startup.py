@@ -95,6 +95,9 @@ LIGHT = """
     [train]
     epochs = 2
 """
+LIGHT_CNN = LIGHT.replace('source = "iris"', 'source = "digits"').replace(
+    "hidden = [8]", 'kind = "cnn"\nchannels = [2]'
+)  # stacked through torch.func
 
 
 @pytest.mark.slow
@@ -133,8 +136,7 @@ def test_a_small_plan_trains_in_process_and_a_pool_run_leaves_torch_to_its_worke
 def test_a_pool_run_of_the_tools_cnn_sizes_its_groups_without_torch(tmp_path):
     # stacked CNN groups are sized by counting (footprint.network_counts), not by building a
     # network here: a torch import in this process would delay the fork server by seconds
-    cnn = LIGHT.replace('source = "iris"', 'source = "digits"').replace("hidden = [8]", 'kind = "cnn"\nchannels = [2]')
-    path = write_recipe(tmp_path, cnn + '[factors]\n"model.hidden" = [[4], [5]]\n', name="cnn.toml")
+    path = write_recipe(tmp_path, LIGHT_CNN + '[factors]\n"model.hidden" = [[4], [5]]\n', name="cnn.toml")
     state, err = _cli_alone(["run", str(path), "--store", str(tmp_path / "c.sqlite"), "--workers", "2"])
     assert state[0] == "0" and state[1] != "None", err[-300:]
     assert state[2] == "False", "the main process of a pool run imports no torch"
@@ -240,7 +242,7 @@ def first_item(path):
 
     grid = expand(load_recipe(path))
     items = work_items(grid, list(grid), stack=True)
-    prepare_process(1, grid.datasets, worker=True)
+    prepare_process(1, grid.datasets)  # not worker=True: a worker ignoring SIGTERM can hang Pool.terminate
     before = set(sys.modules)
     _work(items[0])
     return sorted(set(sys.modules) - before)
@@ -253,11 +255,18 @@ if __name__ == "__main__":
 
 
 @pytest.mark.slow
-def test_a_workers_first_job_imports_nothing_its_fork_server_could_have(tmp_path):
+@pytest.mark.parametrize("network", ["mlp", "cnn"])
+def test_a_workers_first_job_imports_nothing_its_fork_server_could_have(tmp_path, network):
     # a module a worker imports on its first job costs every worker (and every replacement
     # for one that died) that time on the job's clock; the fork server imports it once
     script = tmp_path / "first_item.py"
     script.write_text(FIRST_ITEM)
-    path = write_recipe(tmp_path, LIGHT)
-    proc = subprocess.run([PYTHON, str(script), str(path)], env=subprocess_env(), capture_output=True, text=True)
+    text = LIGHT
+    if network == "cnn":  # stacked through torch.func
+        text = LIGHT.replace('source = "iris"', 'source = "digits"').replace(
+            "hidden = [8]", 'kind = "cnn"\nchannels = [2]'
+        )
+    path = write_recipe(tmp_path, text)
+    proc = subprocess.run([PYTHON, str(script), str(path)], env=subprocess_env(), capture_output=True, text=True,
+                          timeout=300)  # fmt: skip
     assert proc.stdout.split() == ["nothing"], proc.stdout[-500:] + proc.stderr[-500:]

@@ -60,5 +60,6 @@ import runner.execution.executors  # noqa: E402
 import runner.training.grouping  # noqa: E402
 import runner.training.loop  # noqa: E402
 import runner.training.stacked  # noqa: E402
+import runner.training.stacked_modules  # noqa: E402  (the tool's CNN and users' networks)
 
 runner.execution.executors.deterministic_kernels()

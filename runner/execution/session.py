@@ -38,7 +38,9 @@ class Training:
         self.where, self.asked, self.threads = where, asked, threads
         self.max_attempts, self.time_limit, self.stack = max_attempts, time_limit, stack
         self.keep = grid.recipe.run.keep_weights != "none"
-        self.cluster = self._executor([]) if where != "local" else None
+        self.cluster = None
+        if where != "local":
+            self.cluster = self._executor([])
 
     def _executor(self, items: list):
         if self.cluster is not None:

@@ -38,7 +38,8 @@ SINGLE_STEP = 500e-6  # the single-job path: autograd and torch.optim per step
 # per-number work (vmap's convolutions, pooling, activations, batch norm), not in products:
 # seconds per number a module outputs, and per multiply-add, for each example a member's
 # pass sees (a training example counts 3 passes: forward, backward, update; a validation
-# example 1); and per step of the group. Fitted to 12 groups of 0.5 to 13 s (within 0.75-1.31x).
+# example 1); and per step of the group. Fitted to 12 groups of 0.5 to 13 s (0.68-1.36x of the
+# trained time over two runs of bench/sizing.py).
 MODULE_ELEMENT = 7.1e-9
 MODULE_MAC = 8.3e-11
 MODULE_STEP = 4.7e-3
@@ -48,15 +49,17 @@ LONG_ITEM = 60.0  # seconds: a stacked group estimated longer is cut (cut_long_g
 MIN_MEMBERS = 4  # a group's time per member is about flat from here up (bench/RESULTS.md)
 
 
-def _counts(spec: JobSpec, ds: Dataset) -> tuple[int, int]:
+def _counts(spec: JobSpec, ds: Dataset, stacked: bool) -> tuple[int, int]:
     """(numbers all the network's modules output per example, multiply-adds per example).
     The tool's own networks are counted without torch; a user's network is built once (the
     process that validated it has torch already)."""
     model = spec.settings.model
     if model.kind == "python":
+        if not stacked:  # a lone job's network is not built here: only its steps are counted
+            return 0, 0
         from runner.training.stacked_modules import network_counts as built_counts
 
-        _, elements, macs = built_counts(spec, ds)
+        _, elements, macs = built_counts(spec, ds)  # as member_bytes has built it to group it
         return elements, macs
     _, elements, macs = network_counts(model, tuple(ds.shape[1:]), max(1, len(ds.classes)))
     return elements, macs
@@ -72,7 +75,7 @@ def item_seconds(item: Sequence[JobSpec], ds: Dataset) -> float:
     n_val = max(1, round(rows * split.val))
     n_train = max(1, rows - n_val - round(rows * split.test))
     steps = train.epochs * math.ceil(n_train / train.batch_rows(n_train))
-    elements, macs = _counts(spec, ds)
+    elements, macs = _counts(spec, ds, isinstance(item, Stacked))
     if isinstance(item, Stacked) and spec.settings.model.kind in ("cnn", "python"):
         passes = train.epochs * (3 * n_train + n_val)
         return len(item) * passes * (elements * MODULE_ELEMENT + macs * MODULE_MAC) + steps * MODULE_STEP
