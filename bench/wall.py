@@ -1,9 +1,11 @@
 """Benchmark: what the user waits for. Wall time of whole `recipe` commands, against the
 training time inside them, timed in one run on this machine.
 
-For a digits MLP grid of 1, 16, 64 and 256 jobs and a 16-job grid on a 20,000-row CSV
+For a digits MLP grid of 1, 16, 64 and 256 jobs, a 16-job grid on a 20,000-row CSV
 (synthetic: written by ``write_csv`` below from a seeded generator; invented numbers, not
-measurements of anything), each `recipe run` is a fresh process on a fresh store:
+measurements of anything) and an adaptive recipe (16 digits configurations raced over up to
+6 seeds; "jobs" counts those it trained), each `recipe run` is a fresh process on a fresh
+store:
   - wall time with the default options and with ``--workers 1`` (alternating, ROUNDS rounds
     each, the least of each: the machine is shared, so paired rounds keep a burst of load
     from deciding a ratio),
@@ -83,6 +85,8 @@ GRIDS = {
     "digits-64": (DIGITS, [1, 2, 3, 4], LR + "\n" + OPT),
     "digits-256": (DIGITS, [1, 2, 3, 4], LR + "\n" + OPT + "\n" + L2),
     "csv20k-16": (CSV, [1, 2, 3, 4], LR),
+    # an adaptive recipe: 16 configurations raced over 6 seeds, its rounds trained as they come
+    "digits-race": (DIGITS + "[adaptive]\nfirst_seeds = 3\n", [1, 2, 3, 4, 5, 6], LR + "\n" + OPT),
 }
 
 
