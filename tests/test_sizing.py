@@ -74,9 +74,10 @@ def test_long_groups_are_cut_and_keep_their_members_in_order(tmp_path, monkeypat
 def test_groups_stacked_through_torch_func_are_sized_by_what_their_modules_output(tmp_path):
     # a CNN's stacked group spends its time in vmap's per-number work (convolutions,
     # pooling, activations), not in products: several times an MLP group of the same
-    # multiply-adds (bench/RESULTS.md, "Sizing groups stacked through torch.func": a CNN
-    # group of 25,408 multiply-adds per example took 2.9-3.1 s for 3 epochs, an MLP group
-    # of 8,832 took 0.81-0.84 s for 10), and two such groups pay for a pool
+    # multiply-adds (bench/RESULTS.md: a 16-member CNN group of 25,408 multiply-adds per
+    # example took 2.9-3.1 s for 3 epochs, where a stacked MLP group of 8,832 took
+    # 0.81-0.84 s for 10, about 0.8 s for 3 epochs scaled to 25,408), and two such groups
+    # pay for a pool
     text = GRID.format(seeds=[1, 2, 3, 4, 5, 6, 7, 8], epochs=3)
     cnn = text.replace("hidden = [64, 64]", 'kind = "cnn"\nchannels = [8, 16]\nhidden = [32]')
     mlp = text.replace("hidden = [64, 64]", "hidden = [368, 4]")  # about the CNN's 25,400 multiply-adds per row

@@ -261,12 +261,7 @@ def test_a_workers_first_job_imports_nothing_its_fork_server_could_have(tmp_path
     # for one that died) that time on the job's clock; the fork server imports it once
     script = tmp_path / "first_item.py"
     script.write_text(FIRST_ITEM)
-    text = LIGHT
-    if network == "cnn":  # stacked through torch.func
-        text = LIGHT.replace('source = "iris"', 'source = "digits"').replace(
-            "hidden = [8]", 'kind = "cnn"\nchannels = [2]'
-        )
-    path = write_recipe(tmp_path, text)
+    path = write_recipe(tmp_path, LIGHT_CNN if network == "cnn" else LIGHT)
     proc = subprocess.run([PYTHON, str(script), str(path)], env=subprocess_env(), capture_output=True, text=True,
                           timeout=300)  # fmt: skip
     assert proc.stdout.split() == ["nothing"], proc.stdout[-500:] + proc.stderr[-500:]

@@ -3,8 +3,9 @@
 ``Training.run(todo, progress_for, note)`` trains a grid's unfinished jobs on the executor
 their work items pay for (execution/sizing.py), or, for an adaptive recipe, its race round
 by round (execution/racing.py), each round on the executor its own items pay for. An
-explicit worker count or a cluster overrides the choice; a cluster is reached when the
-Training is made, so one that cannot be reached is refused before anything trains.
+explicit worker count or a cluster overrides the choice. A cluster's executor is made with
+the Training, so a scheduler that cannot be reached is refused before anything trains;
+`dask-local` starts its LocalCluster each time the executor runs (once per race round).
 """
 
 from __future__ import annotations

@@ -49,17 +49,20 @@ LONG_ITEM = 60.0  # seconds: a stacked group estimated longer is cut (cut_long_g
 MIN_MEMBERS = 4  # a group's time per member is about flat from here up (bench/RESULTS.md)
 
 
-def _counts(spec: JobSpec, ds: Dataset, stacked: bool) -> tuple[int, int]:
+def _counts(spec: JobSpec, ds: Dataset) -> tuple[int, int]:
     """(numbers all the network's modules output per example, multiply-adds per example).
     The tool's own networks are counted without torch; a user's network is built once (the
     process that validated it has torch already)."""
     model = spec.settings.model
     if model.kind == "python":
-        if not stacked:  # a lone job's network is not built here: only its steps are counted
-            return 0, 0
         from runner.training.stacked_modules import network_counts as built_counts
 
-        _, elements, macs = built_counts(spec, ds)  # as member_bytes has built it to group it
+        # built on one example in eval mode, as grouping.member_bytes builds it; a network
+        # that cannot run that way may still train, and an estimate must not stop the run
+        try:
+            _, elements, macs = built_counts(spec, ds)
+        except Exception:
+            return 0, 0  # only its steps are counted
         return elements, macs
     _, elements, macs = network_counts(model, tuple(ds.shape[1:]), max(1, len(ds.classes)))
     return elements, macs
@@ -75,7 +78,7 @@ def item_seconds(item: Sequence[JobSpec], ds: Dataset) -> float:
     n_val = max(1, round(rows * split.val))
     n_train = max(1, rows - n_val - round(rows * split.test))
     steps = train.epochs * math.ceil(n_train / train.batch_rows(n_train))
-    elements, macs = _counts(spec, ds, isinstance(item, Stacked))
+    elements, macs = _counts(spec, ds)
     if isinstance(item, Stacked) and spec.settings.model.kind in ("cnn", "python"):
         passes = train.epochs * (3 * n_train + n_val)
         return len(item) * passes * (elements * MODULE_ELEMENT + macs * MODULE_MAC) + steps * MODULE_STEP
