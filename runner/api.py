@@ -219,13 +219,14 @@ def run(
     from runner.execution.planning import plan
     from runner.execution.progress import Progress
     from runner.execution.retention import retain
-    from runner.execution.session import Training
+    from runner.execution.session import Training, check_retry
     from runner.outputs.mlflow_export import RunLogger
     from runner.store import RunnerLock
     from runner.store.database import Store
 
     study = Study(recipe_path, store)
     recipe, grid = study.recipe, study.grid
+    check_retry(grid, retry_failed)
     with Store(study.store_path) as db, RunnerLock(db):  # held over a race's rounds, as recipe run holds it
         train = Training(grid, db, on or recipe.run.on, workers or recipe.run.workers or None, threads, max_attempts,
                          time_limit, stack)  # fmt: skip

@@ -11,6 +11,8 @@ import pytest
 from conftest import invoke, stored_metrics, write_recipe
 from scipy.stats import studentized_range
 
+from runner.api import run
+from runner.errors import UserError
 from runner.evidence.protocols import FIXED
 from runner.evidence.race import RacePlan, advance, look
 
@@ -97,8 +99,6 @@ def test_a_race_sizes_each_round_and_the_api_races_as_the_cli_does(tmp_path):
     # each round gets the executor its own work items pay for (a small race starts no
     # worker pool: it was 1.5x slower than --workers 1 when every round had one), and the
     # Python API's run() races an adaptive recipe as `recipe run` does (it trained the full grid)
-    from runner.api import run
-
     recipe = write_recipe(tmp_path, RACE)
     cli = invoke("run", recipe, "--store", tmp_path / "cli.sqlite")
     assert cli.exit_code == 0, cli.stderr
@@ -134,8 +134,14 @@ def test_bad_adaptive_settings_are_one_line_errors(tmp_path):
     result = invoke("run", small, "--store", tmp_path / "b.sqlite", "--workers", 1)
     assert result.exit_code == 2 and "adaptive.max_jobs: is below the first round's 12 jobs" in result.stderr
     ok = write_recipe(tmp_path, RACE, name="c.toml")
-    result = invoke("run", ok, "--store", tmp_path / "c.sqlite", "--retry-failed")
-    assert result.exit_code == 2 and "--retry-failed cannot be used with [adaptive]" in result.stderr
+    assert invoke("run", ok, "--store", tmp_path / "c.sqlite", "--workers", 1, "-q").exit_code == 0
+    before = stored_metrics(tmp_path / "c.sqlite")
+    for extra in ([], ["-q"], ["--fresh", "--yes"]):  # refused quiet or not, before --fresh deletes anything
+        result = invoke("run", ok, "--store", tmp_path / "c.sqlite", "--retry-failed", *extra)
+        assert result.exit_code == 2 and "--retry-failed cannot be used with [adaptive]" in result.stderr, extra
+    assert stored_metrics(tmp_path / "c.sqlite") == before
+    with pytest.raises(UserError, match=r"cannot be used with \[adaptive\]"):  # the Python API refuses it too
+        run(ok, store=tmp_path / "c.sqlite", retry_failed=True, quiet=True)
 
 
 def test_job_budget_stops_the_race_before_a_round_that_would_pass_it(tmp_path):

@@ -141,7 +141,7 @@ def _run(
     from runner.datasets.feasibility import check_grid_splits
     from runner.evidence.leaderboard import leaderboard
     from runner.execution.planning import plan
-    from runner.execution.session import Training
+    from runner.execution.session import Training, check_retry
     from runner.outputs.mlflow_export import RunLogger
     from runner.outputs.text import render
     from runner.recipe.grid import expand
@@ -149,6 +149,7 @@ def _run(
     db = lock = None
     try:
         grid = expand(recipe)
+        check_retry(grid, retry_failed)  # before the store is opened or --fresh deletes anything
         check_grid_splits(grid)  # every split the jobs will make, before any job trains
         for line in own_networks(grid):
             if not quiet:
@@ -166,7 +167,7 @@ def _run(
             _confirm_fresh(db, grid, yes)
         todo = plan(grid, db, retry_failed)
         if not quiet:
-            click.echo(_summary(grid, db, todo, retry_failed), err=True)
+            click.echo(_summary(grid, db, todo), err=True)
         if todo.to_run:
             try:
                 note = None if quiet else (lambda text: click.echo(text, err=True))
@@ -269,15 +270,9 @@ def _retain(grid, db, doc, keep: str, quiet: bool) -> None:
         click.echo(retained.describe(), err=True)
 
 
-def _summary(grid, db, todo, retry_failed: bool) -> str:
+def _summary(grid, db, todo) -> str:
     if grid.recipe.adaptive is None:
         return todo.summary_line()
-    if retry_failed:
-        raise UserError(
-            "--retry-failed cannot be used with [adaptive]: the race has already decided on those jobs",
-            key="--retry-failed",
-            hint="Start the race over with --fresh, or run without [adaptive]",
-        )
     from runner.execution.racing import summary_line
 
     return summary_line(grid, db)

@@ -13,12 +13,24 @@ from __future__ import annotations
 from collections.abc import Callable
 from typing import Any
 
+from runner.errors import UserError
 from runner.execution.planning import execute, executor_for, work_items
 from runner.execution.progress import Progress
 from runner.recipe.grid import Grid, Job
 from runner.store import Store
 
-__all__ = ["Training"]
+__all__ = ["Training", "check_retry"]
+
+
+def check_retry(grid: Grid, retry_failed: bool) -> None:
+    """Refuse --retry-failed (``retry_failed=True`` in the API) on an adaptive recipe: its
+    race has already looked at those jobs' results and decided on them."""
+    if retry_failed and grid.recipe.adaptive is not None:
+        raise UserError(
+            "--retry-failed cannot be used with [adaptive]: the race has already decided on those jobs",
+            key="--retry-failed",
+            hint="Start the race over with --fresh, or run without [adaptive]",
+        )
 
 
 class Training:
