@@ -24,7 +24,6 @@ __all__ = [
     "Stacked",
     "group_specs",
     "member_bytes",
-    "network_bytes",
     "stack_key",
     "training_note",
 ]
@@ -108,30 +107,21 @@ def _cnn_key(spec: JobSpec) -> str | None:
 
 def member_bytes(spec: JobSpec, ds: Dataset) -> int:
     """A generous estimate of one member's tensors: parameters with gradients, optimizer
-    moments, a best-epoch copy and momentum buffer (6 copies), its data splits, and the
-    activations of one mini-batch with their gradients and masks (4 copies)."""
+    moments, a best-epoch copy and momentum buffer (6 copies), its data, and the activations
+    of one mini-batch with their gradients and masks (4 copies of ``per_row`` numbers per
+    example). No array is loaded (bundled.py describes a bundled set's shape)."""
     model = spec.settings.model
-    if model.kind == "python":  # the network's sizes are known once it is built
-        from runner.training.stacked_modules import member_bytes as built_bytes
+    if model.kind == "python":  # a user's network: its counts are known once it is built
+        from runner.training.stacked_modules import network_counts as built_counts
 
-        return built_bytes(spec, ds)
-    if model.kind == "cnn":  # counted without torch, as the built network would count them
+        params, per_row, _ = built_counts(spec, ds)
+    elif model.kind == "cnn":  # counted without torch, as the built network would count them
         from runner.recipe.footprint import network_counts
 
         params, per_row, _ = network_counts(model, tuple(ds.shape[1:]), max(1, len(ds.classes)))
-        return network_bytes(spec, ds, params, per_row)
-    rows, features = ds.shape[0], int(np.prod(ds.shape[1:]))  # no array loaded (bundled.py)
-    widths = [features, *model.hidden, max(1, len(ds.classes))]
-    params = sum((a + 1) * b for a, b in zip(widths, widths[1:]))
-    bs = spec.settings.train.batch_size
-    batch = rows if bs == "full" else min(int(bs), rows)
-    return 4 * (6 * params + rows * features + 4 * batch * sum(widths))
-
-
-def network_bytes(spec: JobSpec, ds: Dataset, params: int, per_row: int) -> int:
-    """member_bytes of a network stacked through torch.func: parameters in 6 copies, its
-    data, and 4 copies of every module's output (``per_row`` numbers per example) for one
-    mini-batch (activations, their gradients, masks)."""
+    else:  # the tool's MLP: each layer's width once
+        widths = [int(np.prod(ds.shape[1:])), *model.hidden, max(1, len(ds.classes))]
+        params, per_row = sum((a + 1) * b for a, b in zip(widths, widths[1:])), sum(widths)
     bs = spec.settings.train.batch_size
     batch = ds.shape[0] if bs == "full" else min(int(bs), ds.shape[0])
     return 4 * (6 * params + int(np.prod(ds.shape)) + 4 * batch * per_row)

@@ -46,7 +46,7 @@ from runner.training.models import WEIGHTED, Dropout, build_model
 from runner.training.scoring import score_members
 from runner.training.streams import streams
 
-__all__ = ["ModuleStackBackend", "member_bytes", "network_counts"]
+__all__ = ["ModuleStackBackend", "network_counts"]
 
 
 class _Masks:
@@ -368,11 +368,3 @@ def network_counts(spec: JobSpec, ds: Dataset) -> tuple[int, int, int]:
                 h.remove()
         _COUNTS[key] = (sum(p.numel() for p in net.parameters()), sum(sizes), sum(macs))
     return _COUNTS[key]
-
-
-def member_bytes(spec: JobSpec, ds: Dataset) -> int:
-    """grouping.member_bytes of a user's network: its counts measured (network_counts)."""
-    from runner.training.grouping import network_bytes
-
-    params, per_row, _ = network_counts(spec, ds)
-    return network_bytes(spec, ds, params, per_row)
