@@ -228,8 +228,7 @@ def run(
     recipe, grid = study.recipe, study.grid
     check_retry(grid, retry_failed)
     with Store(study.store_path) as db, RunnerLock(db):  # held over a race's rounds, as recipe run holds it
-        train = Training(grid, db, on or recipe.run.on, workers or recipe.run.workers or None, threads, max_attempts,
-                         time_limit, stack)  # fmt: skip
+        train = Training(grid, db, on, workers, threads, max_attempts, time_limit, stack)
         todo = plan(grid, db, retry_failed)
         train.tracker = tracker = RunLogger(mlflow or recipe.tracking.mlflow, grid, db)
         keep = recipe.run.keep_weights

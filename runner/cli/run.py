@@ -159,9 +159,8 @@ def _run(
         if lock is None:
             _read_only_run(db, grid, fresh, retry_failed, quiet, fmt)
             return
-        where, asked = on or recipe.run.on, workers or recipe.run.workers or None
         # made before the plan is shown, so a cluster that cannot be reached is refused first
-        train = Training(grid, db, where, asked, threads, max_attempts, time_limit, not no_stack)
+        train = Training(grid, db, on, workers, threads, max_attempts, time_limit, not no_stack)
         train.tracker = tracker = RunLogger(mlflow_uri or recipe.tracking.mlflow, grid, db)
         if fresh:
             _confirm_fresh(db, grid, yes)

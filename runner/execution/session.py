@@ -40,19 +40,22 @@ class Training:
         self,
         grid: Grid,
         store: Store,
-        where: str,
-        asked: int | None,
+        on: str | None = None,
+        workers: int | None = None,
         threads: int = 1,
         max_attempts: int = 2,
         time_limit: float | None = None,
         stack: bool = True,
     ):
+        """``on`` and ``workers`` as given (--on, --workers), else the recipe's [run] table;
+        no worker count anywhere leaves it to the plan (sizing.py)."""
         self.grid, self.store = grid, store
-        self.where, self.asked, self.threads = where, asked, threads
+        run = grid.recipe.run
+        self.where, self.asked, self.threads = on or run.on, workers or run.workers or None, threads
         self.max_attempts, self.time_limit, self.stack = max_attempts, time_limit, stack
-        self.keep = grid.recipe.run.keep_weights != "none"
+        self.keep = run.keep_weights != "none"
         self.cluster = None
-        if where != "local":
+        if self.where != "local":
             self.cluster = self._executor([])
 
     def _executor(self, items: list):
