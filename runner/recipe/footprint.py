@@ -29,24 +29,35 @@ PARAM_COPIES = 8
 ACTIVATION_COPIES = 4
 
 
+def _conv_layers(model: ModelSettings, in_shape: tuple[int, ...]) -> tuple[list[tuple[int, int, int, int]], int]:
+    """The tool's conv layers as training/models.py builds them (same padding, optional 2x2
+    pooling): per layer (channels in, channels out, numbers it outputs per example, numbers
+    after its pooling, 0 without), and the width the dense layers then see. An MLP (or a
+    CNN on data that is not images, refused by grid.py) has none."""
+    if model.kind != "cnn" or len(in_shape) != 3:
+        return [], math.prod(in_shape)
+    layers = []
+    channels, height, width = in_shape
+    k = model.kernel_size
+    for c in model.channels:
+        height, width = height + 2 * (k // 2) - k + 1, width + 2 * (k // 2) - k + 1
+        out, pooled = c * height * width, 0
+        if model.pool != "none" and min(height, width) >= 2:
+            height, width = height // 2, width // 2
+            pooled = c * height * width
+        layers.append((channels, c, out, pooled))
+        channels = c
+    return layers, channels * height * width
+
+
 def model_size(settings: Settings, in_shape: tuple[int, ...], n_out: int) -> tuple[int, list[int]]:
     """(parameter count, each layer's output size per example) of the model, as built by
     training/models.py: conv layers with same padding and optional 2x2 pooling, then dense."""
     m = settings.model
-    params, sizes = 0, []
-    if m.kind == "cnn" and len(in_shape) == 3:
-        channels, height, width = in_shape
-        k = m.kernel_size
-        for c in m.channels:
-            params += (channels * k * k + 1) * c
-            height, width = height + 2 * (k // 2) - k + 1, width + 2 * (k // 2) - k + 1
-            sizes.append(c * height * width)
-            if m.pool != "none" and min(height, width) >= 2:
-                height, width = height // 2, width // 2
-            channels = c
-        width_in = channels * height * width
-    else:
-        width_in = math.prod(in_shape)
+    k = m.kernel_size
+    convs, width_in = _conv_layers(m, in_shape)
+    params = sum((c_in * k * k + 1) * c for c_in, c, _, _ in convs)
+    sizes = [out for _, _, out, _ in convs]
     for h in (*m.hidden, n_out):
         params += (width_in + 1) * h
         sizes.append(h)
@@ -61,25 +72,15 @@ def network_counts(model: ModelSettings, in_shape: tuple[int, ...], n_out: int) 
     flatten included. No torch, so `recipe run` can size stacked groups of the tool's CNN
     without importing it; tests/test_footprint.py holds the counts equal to the built
     network's and the multiply-adds to torch's FLOP counter."""
+    k = model.kernel_size
+    convs, width_in = _conv_layers(model, in_shape)
     params = elements = macs = 0
     if model.input_dropout > 0:
         elements += math.prod(in_shape)
-    if model.kind == "cnn" and len(in_shape) == 3:
-        channels, height, width = in_shape
-        k = model.kernel_size
-        for c in model.channels:
-            height, width = height + 2 * (k // 2) - k + 1, width + 2 * (k // 2) - k + 1
-            out = c * height * width
-            params += (channels * k * k + 1) * c + 2 * c * model.batch_norm
-            macs += out * channels * k * k
-            elements += out * (2 + model.batch_norm)  # the convolution, its batch norm, its activation
-            if model.pool != "none" and min(height, width) >= 2:
-                height, width = height // 2, width // 2
-                elements += c * height * width
-            channels = c
-        width_in = channels * height * width
-    else:
-        width_in = math.prod(in_shape)
+    for c_in, c, out, pooled in convs:
+        params += (c_in * k * k + 1) * c + 2 * c * model.batch_norm
+        macs += out * c_in * k * k
+        elements += out * (2 + model.batch_norm) + pooled  # convolution, batch norm, activation, pooling
     elements += width_in  # flatten
     for h in model.hidden:
         params += (width_in + 1) * h + 2 * h * model.batch_norm
