@@ -37,10 +37,8 @@ from wall import write_csv
 
 from runner.execution import sizing
 from runner.execution.estimate import work_items
-from runner.recipe.footprint import network_counts
 from runner.recipe.grid import expand
 from runner.recipe.loader import load_recipe
-from runner.training.stacked_modules import network_counts as built_counts
 
 ROOT = Path(__file__).resolve().parents[1]
 RECIPE = """
@@ -112,10 +110,7 @@ def measure(folder: Path, i: int, case: tuple) -> dict:
     subprocess.run(command, env=env, check=True, capture_output=True, cwd=folder)
     with sqlite3.connect(store) as c:
         (seconds,) = c.execute("SELECT sum(duration) FROM jobs").fetchone()
-    if spec.settings.model.kind == "python":
-        _, elements, macs = built_counts(spec, ds)
-    else:
-        _, elements, macs = network_counts(spec.settings.model, tuple(ds.shape[1:]), max(1, len(ds.classes)))
+    elements, macs = sizing._counts(spec, ds)  # what the estimate itself counts
     split, train = spec.settings.data.split, spec.settings.train
     rows = ds.shape[0]
     n_val = max(1, round(rows * split.val))
